@@ -1,0 +1,4 @@
+pub mod constants;
+pub mod lineshape;
+pub mod signal;
+pub mod units;

@@ -1,0 +1,80 @@
+//! The HDF5 run-file format, version 1: one night (or part of one) of tuning steps.
+//!
+//! Layout (names are part of the interface; see README "Run-file format"):
+//! root attributes `format` = "axsift-run", `format_version` = 1, `bin_width_hz`,
+//! `magnet_field_t`, `cavity_volume_m3`, `form_factor`, `run_label`; dataset `spectra`
+//! `[n_steps, n_bins]` (f32 or f64, raw linear power per bin, chunked by row); group `steps`
+//! with 1-D datasets `start_freq_hz`, `cavity_freq_hz`, `loaded_q`, `coupling_beta`,
+//! `noise_temp_k`, `n_averages`, `timestamp_s`; optional `mask` `[n_steps, n_bins]` u8.
+
+mod read;
+mod write;
+
+pub use read::RunReader;
+pub use write::RunWriter;
+
+use std::path::PathBuf;
+
+/// Value of the root `format` attribute.
+pub const FORMAT_NAME: &str = "axsift-run";
+/// The format version this build reads and writes.
+pub const FORMAT_VERSION: u32 = 1;
+/// Largest number of bins per step accepted before any allocation.
+pub const MAX_BINS_PER_STEP: usize = 1 << 22;
+/// Largest number of steps per file accepted before any allocation.
+pub const MAX_STEPS_PER_FILE: usize = 10_000_000;
+
+/// Facility-wide parameters stored as root attributes of a run file.
+#[derive(Debug, Clone, PartialEq)]
+pub struct RunHeader {
+    /// Width of one spectral bin, Hz.
+    pub bin_width_hz: f64,
+    /// Magnet field in the cavity, tesla.
+    pub magnet_field_t: f64,
+    /// Cavity volume, cubic metres.
+    pub cavity_volume_m3: f64,
+    /// Mode form factor C (dimensionless, 0..1).
+    pub form_factor: f64,
+    /// Free-text label of the run.
+    pub run_label: String,
+}
+
+/// Per-step receiver and cavity parameters (one row of the `steps` group).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct StepMeta {
+    /// RF frequency of the centre of bin 0, Hz.
+    pub start_freq_hz: f64,
+    /// Cavity resonance frequency, Hz.
+    pub cavity_freq_hz: f64,
+    /// Loaded quality factor Q_L.
+    pub loaded_q: f64,
+    /// Antenna coupling beta.
+    pub coupling_beta: f64,
+    /// System noise temperature referred to the cavity output, kelvin.
+    pub noise_temp_k: f64,
+    /// Number of averaged spectra N (dimensionless).
+    pub n_averages: u64,
+    /// Start of the step, Unix seconds.
+    pub timestamp_s: f64,
+}
+
+/// A run-file problem, naming the file and, where known, the step and field.
+#[derive(Debug, thiserror::Error)]
+pub enum RunFileError {
+    /// The HDF5 library refused the file or an object in it.
+    #[error("{path}: {what}: {source}")]
+    Hdf5 {
+        path: PathBuf,
+        what: String,
+        #[source]
+        source: hdf5::Error,
+    },
+    /// A field is missing, of the wrong shape, or out of its valid range.
+    #[error("{path}: field `{field}`{}: {message}", step.map(|s| format!(", step {s}")).unwrap_or_default())]
+    Invalid {
+        path: PathBuf,
+        field: String,
+        step: Option<usize>,
+        message: String,
+    },
+}
