@@ -5,5 +5,6 @@
 //! This version provides the physics (constants, signal power, halo lineshapes, unit
 //! conversions) and the HDF5 run-file format.
 
+pub mod dsp;
 pub mod physics;
 pub mod runfile;

@@ -33,9 +33,7 @@ pub enum SavgolError {
         window: usize,
     },
     /// The polynomial order is not below the window length.
-    #[error(
-        "polynomial order {order} is too high; it must be less than window_bins = {window}"
-    )]
+    #[error("polynomial order {order} is too high; it must be less than window_bins = {window}")]
     OrderTooHigh {
         /// The rejected polynomial order.
         order: usize,
@@ -95,7 +93,7 @@ impl SavitzkyGolay {
                 window: window_bins,
             });
         }
-        if window_bins % 2 == 0 {
+        if window_bins.is_multiple_of(2) {
             return Err(SavgolError::EvenWindow {
                 window: window_bins,
             });
@@ -318,8 +316,7 @@ impl SmoothingPlan {
             out[p] = buf[p + half].re;
         }
 
-        self.filter
-            .fit_edge(&input[..w], 0..half, &mut out[..half]);
+        self.filter.fit_edge(&input[..w], 0..half, &mut out[..half]);
         self.filter
             .fit_edge(&input[n - w..], w - half..w, &mut out[n - half..]);
         Ok(())
