@@ -1,10 +1,17 @@
 //! axsift: nightly reduction of axion haloscope data.
 //!
-//! Raw per-step power spectra go in; a baseline-free, optimally filtered grand
-//! spectrum over all scanned RF frequencies and a list of rescan candidates come out.
-//! This version provides the physics (constants, signal power, halo lineshapes, unit
-//! conversions) and the HDF5 run-file format.
+//! Raw per-step power spectra go in (HDF5 run files, [`runfile`]); a pipeline file
+//! ([`config`]) names the stages ([`stage`]) that turn them into a baseline-free, optimally
+//! filtered grand spectrum over all scanned RF frequencies and a list of rescan candidates
+//! ([`pipeline`]); [`output`] writes the results. [`sim`] writes realistic run files of an
+//! invented facility for demos and tests. [`physics`] holds constants, signal power, halo
+//! lineshapes and unit conversions; [`dsp`] the Savitzky-Golay smoother.
 
+pub mod config;
 pub mod dsp;
+pub mod output;
 pub mod physics;
+pub mod pipeline;
 pub mod runfile;
+pub mod sim;
+pub mod stage;

@@ -1,0 +1,95 @@
+//! Human-readable summaries printed on the terminal.
+
+use super::{Provenance, Summary};
+use crate::pipeline::Reduction;
+use crate::runfile::RunReader;
+use std::fmt::Write;
+use std::path::PathBuf;
+
+/// Candidates listed on the terminal (all of them are in `candidates.csv`).
+const MAX_LISTED: usize = 15;
+
+/// What is printed under every rescan plan.
+pub const ADVISORY: &str = "Advice only: axsift reads data and suggests where to look again. It does not \
+control the magnet, cryostat or RF chain; retune and ramp only under the laboratory's own safety rules.";
+
+/// The morning summary of a reduction: steps, coverage, grand-spectrum statistics, candidates.
+pub fn night_report(r: &Reduction, provenance: &Provenance, written: &[PathBuf]) -> String {
+    let s: Summary = r.summary(provenance);
+    let mut out = String::new();
+    let _ = writeln!(out, "Steps: {} read, {} used, {} cut", s.n_steps_in, s.n_steps_used, s.cuts.len());
+    for c in s.cuts.iter().take(MAX_LISTED) {
+        let _ = writeln!(out, "  cut step {} ({} row {}) by {}: {}", c.step, c.file.display(), c.row, c.stage, c.reason);
+    }
+    let _ = writeln!(
+        out,
+        "RF coverage: {:.6} - {:.6} MHz, {} bins of {} Hz",
+        s.rf_start_hz / 1e6,
+        s.rf_stop_hz / 1e6,
+        s.n_rf_bins,
+        r.spectrum.bin_width_hz
+    );
+    let _ = writeln!(
+        out,
+        "Grand spectrum: mean {:+.4}, std {:.4} over {} bins (raw spread of A/sigma_A: predicted {:.4}, measured {:.4})",
+        s.grand_mean, s.grand_std, s.n_valid_bins, s.predicted_raw_spread, s.measured_raw_spread
+    );
+    let _ = writeln!(
+        out,
+        "Threshold {:.3}: {} bins above it (noise alone would give about {:.1}), merged into {} rescan candidate(s)",
+        s.threshold, s.n_bins_above_threshold, s.expected_null_bins_above, s.n_candidates
+    );
+    if !s.candidates.is_empty() {
+        let _ = writeln!(out, "\n  {:>3}  {:>20}  {:>12}  {:>24}  {:>6}", "#", "RF frequency (MHz)", "significance", "retune cavity to (MHz)", "steps");
+        let mut ranked: Vec<_> = s.candidates.iter().collect();
+        ranked.sort_by(|a, b| b.significance.total_cmp(&a.significance));
+        for (i, c) in ranked.iter().take(MAX_LISTED).enumerate() {
+            let _ = writeln!(
+                out,
+                "  {:>3}  {:>20.6}  {:>12.2}  {:>24.6}  {:>6}",
+                i + 1,
+                c.frequency_hz / 1e6,
+                c.significance,
+                c.revisit_cavity_hz / 1e6,
+                c.covering_steps.len()
+            );
+        }
+        if ranked.len() > MAX_LISTED {
+            let _ = writeln!(out, "  ... {} more in candidates.csv", ranked.len() - MAX_LISTED);
+        }
+        let _ = writeln!(out, "\n{ADVISORY}");
+    }
+    let _ = writeln!(out, "\nOutputs:");
+    for p in written {
+        let _ = writeln!(out, "  {}", p.display());
+    }
+    out
+}
+
+/// A short description of a validated run file.
+pub fn run_file_report(r: &RunReader) -> String {
+    let steps = r.steps();
+    let h = r.header();
+    let mut out = String::new();
+    let _ = writeln!(out, "{}: valid axsift run file, run \"{}\"", r.path().display(), h.run_label);
+    let _ = writeln!(out, "  {} steps x {} bins of {} Hz", steps.len(), r.n_bins(), h.bin_width_hz);
+    let _ = writeln!(out, "  magnet {} T, cavity {} m^3, form factor {}", h.magnet_field_t, h.cavity_volume_m3, h.form_factor);
+    if let (Some(first), Some(last)) = (steps.first(), steps.last()) {
+        let span = (r.n_bins().saturating_sub(1)) as f64 * h.bin_width_hz;
+        let _ = writeln!(out, "  RF {:.6} - {:.6} MHz", first.start_freq_hz / 1e6, (last.start_freq_hz + span) / 1e6);
+        let median = |f: fn(&crate::runfile::StepMeta) -> f64| {
+            let mut v: Vec<f64> = steps.iter().map(f).collect();
+            v.sort_by(f64::total_cmp);
+            v[v.len() / 2]
+        };
+        let _ = writeln!(
+            out,
+            "  median T_sys {:.3} K, Q_L {:.0}, beta {:.2}, N {:.0}",
+            median(|s| s.noise_temp_k),
+            median(|s| s.loaded_q),
+            median(|s| s.coupling_beta),
+            median(|s| s.n_averages as f64)
+        );
+    }
+    out
+}

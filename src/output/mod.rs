@@ -1,0 +1,178 @@
+//! Writing a reduction's outputs: results HDF5, candidates CSV, summary JSON and a plot.
+//!
+//! Every file is written under a temporary name in the output folder and renamed into
+//! place only after all of them were written, so a failed run never replaces good results.
+
+pub mod console;
+mod plot;
+pub mod progress;
+
+use crate::pipeline::Reduction;
+use hdf5::types::VarLenUnicode;
+use sha2::{Digest, Sha256};
+use std::path::{Path, PathBuf};
+use std::str::FromStr;
+
+/// Provenance written into every output.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct Provenance {
+    /// axsift version.
+    pub tool_version: String,
+    /// SHA-256 of the pipeline file's text.
+    pub config_sha256: String,
+    /// Input run files with their SHA-256.
+    pub inputs: Vec<(String, String)>,
+}
+
+impl Provenance {
+    /// Hashes the config text and the input files.
+    pub fn new(config_text: &str, inputs: &[PathBuf]) -> std::io::Result<Self> {
+        let inputs = inputs
+            .iter()
+            .map(|p| Ok((p.display().to_string(), hex(&Sha256::digest(std::fs::read(p)?)))))
+            .collect::<std::io::Result<_>>()?;
+        Ok(Self { tool_version: env!("CARGO_PKG_VERSION").into(), config_sha256: hex(&Sha256::digest(config_text)), inputs })
+    }
+}
+
+fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+/// The `summary.json` content.
+#[derive(Debug, serde::Serialize)]
+pub struct Summary<'a> {
+    pub n_steps_in: usize,
+    pub n_steps_used: usize,
+    pub n_rf_bins: usize,
+    /// Bins holding a finite grand-spectrum value.
+    pub n_valid_bins: usize,
+    pub rf_start_hz: f64,
+    pub rf_stop_hz: f64,
+    pub grand_mean: f64,
+    pub grand_std: f64,
+    pub predicted_raw_spread: f64,
+    pub measured_raw_spread: f64,
+    pub threshold: f64,
+    /// Grand-spectrum bins above the threshold.
+    pub n_bins_above_threshold: usize,
+    /// Bins above the threshold expected from noise alone, n_valid_bins * (1 - Phi(threshold)).
+    pub expected_null_bins_above: f64,
+    pub n_candidates: usize,
+    pub candidates: &'a [crate::stage::Candidate],
+    pub cuts: &'a [crate::pipeline::CutStep],
+    pub provenance: &'a Provenance,
+}
+
+/// Mean and standard deviation of the finite values.
+pub fn mean_std(x: &[f64]) -> (f64, f64) {
+    let v: Vec<f64> = x.iter().copied().filter(|v| v.is_finite()).collect();
+    let n = v.len().max(1) as f64;
+    let mean = v.iter().sum::<f64>() / n;
+    let var = v.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / n;
+    (mean, var.sqrt())
+}
+
+impl Reduction {
+    /// Builds the summary of this reduction.
+    pub fn summary<'a>(&'a self, provenance: &'a Provenance) -> Summary<'a> {
+        let sp = &self.spectrum;
+        let (grand_mean, grand_std) = mean_std(&sp.grand);
+        let raw: Vec<f64> = sp.amplitude.iter().zip(&sp.sigma_a).map(|(a, s)| a / s).collect();
+        let (_, measured_raw_spread) = mean_std(&raw);
+        let (predicted_raw_spread, _) = mean_std(&sp.predicted_spread);
+        let threshold = sp.threshold.unwrap_or(f64::NAN);
+        let n_valid_bins = sp.grand.iter().filter(|v| v.is_finite()).count();
+        let tail = 1.0 - statrs::distribution::ContinuousCDF::cdf(&statrs::distribution::Normal::standard(), threshold);
+        Summary {
+            n_steps_in: self.n_steps_in,
+            n_steps_used: self.used_steps.len(),
+            n_rf_bins: sp.grand.len(),
+            rf_start_hz: sp.rf_start_hz,
+            rf_stop_hz: sp.freq_hz(sp.grand.len().saturating_sub(1)),
+            n_valid_bins,
+            grand_mean,
+            grand_std,
+            predicted_raw_spread,
+            measured_raw_spread,
+            threshold,
+            n_bins_above_threshold: sp.grand.iter().filter(|&&v| v > threshold).count(),
+            expected_null_bins_above: n_valid_bins as f64 * tail,
+            n_candidates: sp.candidates.len(),
+            candidates: &sp.candidates,
+            cuts: &self.cuts,
+            provenance,
+        }
+    }
+
+    /// Writes all outputs into `dir` (created if needed). Returns the written paths.
+    pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance) -> anyhow::Result<Vec<PathBuf>> {
+        use anyhow::Context;
+        std::fs::create_dir_all(dir).with_context(|| format!("cannot create output folder {}", dir.display()))?;
+        let names = ["results.h5", "candidates.csv", "summary.json", "grand_spectrum.png", "grand_spectrum.svg"];
+        // Temporary names keep the extension: the image encoder picks its format from it.
+        let tmp = |n: &str| dir.join(format!(".tmp.{n}"));
+        self.write_hdf5(&tmp(names[0]), config_text, provenance).context("writing results.h5")?;
+        self.write_csv(&tmp(names[1])).context("writing candidates.csv")?;
+        std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance))?).context("writing summary.json")?;
+        plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
+        names
+            .iter()
+            .map(|n| {
+                let to = dir.join(n);
+                std::fs::rename(tmp(n), &to).with_context(|| format!("renaming into {}", to.display()))?;
+                Ok(to)
+            })
+            .collect()
+    }
+
+    fn write_csv(&self, path: &Path) -> anyhow::Result<()> {
+        let mut w = csv::Writer::from_path(path)?;
+        w.write_record(["frequency_hz", "significance", "first_bin", "last_bin", "revisit_cavity_hz", "n_covering_steps"])?;
+        for c in &self.spectrum.candidates {
+            w.write_record([
+                format!("{:.3}", c.frequency_hz),
+                format!("{:.4}", c.significance),
+                c.first_bin.to_string(),
+                c.last_bin.to_string(),
+                format!("{:.3}", c.revisit_cavity_hz),
+                c.covering_steps.len().to_string(),
+            ])?;
+        }
+        w.flush()?;
+        Ok(())
+    }
+
+    fn write_hdf5(&self, path: &Path, config_text: &str, provenance: &Provenance) -> anyhow::Result<()> {
+        let sp = &self.spectrum;
+        let file = hdf5::File::create(path)?;
+        let text = |s: &str| VarLenUnicode::from_str(s).unwrap_or_default();
+        let freq: Vec<f64> = (0..sp.grand.len()).map(|j| sp.freq_hz(j)).collect();
+        let datasets: [(&str, &[f64], &str, &str); 7] = [
+            ("rf_freq_hz", &freq, "Hz", "bin-centre RF frequency"),
+            ("combined", &sp.combined, "reference-axion power", "maximum-likelihood combined excess power"),
+            ("combined_sigma", &sp.combined_sigma, "reference-axion power", "standard deviation of combined"),
+            ("amplitude", &sp.amplitude, "reference-axion power", "filtered amplitude A for a line starting at the bin's lower edge"),
+            ("sigma_a", &sp.sigma_a, "reference-axion power", "standard deviation of the filtered amplitude"),
+            ("predicted_spread", &sp.predicted_spread, "1", "predicted null spread of A/sigma_A"),
+            ("grand", &sp.grand, "1", "grand spectrum A / (sigma_A * predicted spread)"),
+        ];
+        for (name, data, units, description) in datasets {
+            let ds = file.new_dataset_builder().with_data(data).create(name)?;
+            ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
+            ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))?;
+        }
+        let cand_f: Vec<f64> = sp.candidates.iter().map(|c| c.frequency_hz).collect();
+        let cand_s: Vec<f64> = sp.candidates.iter().map(|c| c.significance).collect();
+        let g = file.create_group("candidates")?;
+        g.new_dataset_builder().with_data(&cand_f).create("frequency_hz")?;
+        g.new_dataset_builder().with_data(&cand_s).create("significance")?;
+        file.new_attr::<VarLenUnicode>().create("tool_version")?.write_scalar(&text(&provenance.tool_version))?;
+        file.new_attr::<VarLenUnicode>().create("config_sha256")?.write_scalar(&text(&provenance.config_sha256))?;
+        file.new_attr::<VarLenUnicode>().create("config_text")?.write_scalar(&text(config_text))?;
+        let inputs = serde_json::to_string(&provenance.inputs)?;
+        file.new_attr::<VarLenUnicode>().create("inputs")?.write_scalar(&text(&inputs))?;
+        file.close()?;
+        Ok(())
+    }
+}

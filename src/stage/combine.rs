@@ -1,0 +1,91 @@
+//! Combine: the maximum-likelihood (inverse-variance) weighted mean of all steps per RF bin.
+//!
+//! The RF grid starts at the lowest step start frequency and has the night's bin width.
+//! A step whose start is not a whole number of bins from the grid origin (within
+//! `max_misalignment_bins`) is an error naming it: steps are never silently shifted.
+
+use super::{Combiner, NightInfo, Spectrum, Step};
+use crate::config::{BuildContext, Built, StageConfig};
+use serde::Deserialize;
+
+/// Options of the `combine` stage.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct CombineConfig {
+    /// Largest accepted offset of a step from the RF grid, in bins.
+    #[serde(default = "default_tolerance")]
+    pub max_misalignment_bins: f64,
+}
+
+fn default_tolerance() -> f64 {
+    1e-3
+}
+
+impl StageConfig for CombineConfig {
+    fn validate(&self) -> Vec<(String, String)> {
+        if self.max_misalignment_bins > 0.0 && self.max_misalignment_bins < 0.5 {
+            Vec::new()
+        } else {
+            vec![("max_misalignment_bins".into(), format!("{} must be in (0, 0.5)", self.max_misalignment_bins))]
+        }
+    }
+    fn build(&self, night: &NightInfo, _ctx: &BuildContext) -> Result<Built, String> {
+        let (lo, hi) = night.rf_span_hz;
+        let n = ((hi - lo) / night.bin_width_hz).round() as usize + 1;
+        Ok(Built::Combine(Box::new(MlCombiner {
+            tolerance: self.max_misalignment_bins,
+            step_span_hz: (night.n_bins - 1) as f64 * night.bin_width_hz,
+            origin_hz: lo,
+            bin_width_hz: night.bin_width_hz,
+            weighted_sum: vec![0.0; n],
+            weight: vec![0.0; n],
+            coverage: vec![0; n],
+        })))
+    }
+}
+
+struct MlCombiner {
+    tolerance: f64,
+    step_span_hz: f64,
+    origin_hz: f64,
+    bin_width_hz: f64,
+    weighted_sum: Vec<f64>,
+    weight: Vec<f64>,
+    coverage: Vec<u32>,
+}
+
+impl Combiner for MlCombiner {
+    fn add(&mut self, step: &Step) -> Result<(), String> {
+        let offset = (step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz;
+        let whole = offset.round();
+        if (offset - whole).abs() > self.tolerance {
+            return Err(format!(
+                "step {} (file {}, row {}): start_freq_hz = {} Hz is {:.4} bins off the RF grid (tolerance {})",
+                step.index, step.file, step.index_in_file, step.meta.start_freq_hz, offset - whole, self.tolerance
+            ));
+        }
+        let first = whole as usize;
+        for (k, (&r, &s)) in step.values.iter().zip(&step.sigma).enumerate() {
+            if r.is_finite() && s.is_finite() && s > 0.0 {
+                let w = 1.0 / (s * s);
+                self.weighted_sum[first + k] += w * r;
+                self.weight[first + k] += w;
+                self.coverage[first + k] += 1;
+            }
+        }
+        Ok(())
+    }
+    fn finish(self: Box<Self>) -> Spectrum {
+        let combined = self.weighted_sum.iter().zip(&self.weight).map(|(s, w)| if *w > 0.0 { s / w } else { f64::NAN }).collect();
+        let combined_sigma = self.weight.iter().map(|w| if *w > 0.0 { w.sqrt().recip() } else { f64::INFINITY }).collect();
+        Spectrum {
+            rf_start_hz: self.origin_hz,
+            bin_width_hz: self.bin_width_hz,
+            combined,
+            combined_sigma,
+            coverage: self.coverage,
+            step_span_hz: self.step_span_hz,
+            ..Spectrum::default()
+        }
+    }
+}

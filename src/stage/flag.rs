@@ -1,0 +1,95 @@
+//! Flag: grand-spectrum bins above the threshold become rescan candidates.
+//!
+//! The threshold is given directly or as Theta = SNR_target - z_c, z_c the one-sided normal
+//! quantile of the confidence c (SNR 5 at 95% gives 3.355). Adjacent flagged bins form one
+//! candidate, reported at its most significant bin, with the steps that covered it and the
+//! cavity frequency to tune to (the line's mean frequency nu_a (1 + <beta^2>/2)).
+
+use super::{Candidate, NightInfo, Spectrum, SpectrumStage};
+use crate::config::{BuildContext, Built, StageConfig};
+use crate::runfile::StepMeta;
+use serde::Deserialize;
+use statrs::distribution::{ContinuousCDF, Normal};
+
+/// Options of the `flag` stage: either `threshold`, or `target_snr` with `confidence`.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FlagConfig {
+    /// Threshold on the grand spectrum (> 0).
+    pub threshold: Option<f64>,
+    /// Target SNR a real signal would have.
+    pub target_snr: Option<f64>,
+    /// Probability that such a signal is flagged (0.5..1).
+    pub confidence: Option<f64>,
+}
+
+impl FlagConfig {
+    /// The resolved threshold, if the options are consistent.
+    pub fn threshold(&self) -> Option<f64> {
+        match (self.threshold, self.target_snr, self.confidence) {
+            (Some(t), None, None) => Some(t),
+            (None, Some(snr), Some(c)) if c > 0.0 && c < 1.0 => Some(snr - Normal::standard().inverse_cdf(c)),
+            _ => None,
+        }
+    }
+}
+
+impl StageConfig for FlagConfig {
+    fn validate(&self) -> Vec<(String, String)> {
+        match (self.threshold, self.target_snr, self.confidence) {
+            (Some(_), Some(_), _) | (Some(_), _, Some(_)) => vec![("threshold".into(), "give either threshold or target_snr with confidence, not both".into())],
+            (None, None, _) | (None, _, None) => vec![("threshold".into(), "missing: give threshold, or target_snr and confidence".into())],
+            (None, Some(_), Some(c)) if !(0.5..1.0).contains(&c) => vec![("confidence".into(), format!("{c} must be in [0.5, 1)"))],
+            _ => match self.threshold() {
+                Some(t) if t > 0.0 && t.is_finite() => Vec::new(),
+                t => vec![("threshold".into(), format!("resolves to {t:?}; it must be > 0"))],
+            },
+        }
+    }
+    fn build(&self, _night: &NightInfo, _ctx: &BuildContext) -> Result<Built, String> {
+        let threshold = self.threshold().ok_or("invalid threshold")?;
+        Ok(Built::Spectrum(Box::new(Flag { threshold })))
+    }
+}
+
+struct Flag {
+    threshold: f64,
+}
+
+impl SpectrumStage for Flag {
+    fn apply(&self, sp: &mut Spectrum, steps: &[(usize, StepMeta)]) -> Result<(), String> {
+        sp.threshold = Some(self.threshold);
+        let mean_beta_sq = sp.mean_beta_sq;
+        let mut j = 0;
+        let n = sp.grand.len();
+        while j < n {
+            if !(sp.grand[j] > self.threshold) {
+                j += 1;
+                continue;
+            }
+            let first = j;
+            let mut peak = j;
+            while j < n && sp.grand[j] > self.threshold {
+                if sp.grand[j] > sp.grand[peak] {
+                    peak = j;
+                }
+                j += 1;
+            }
+            let frequency_hz = sp.freq_hz(peak) - sp.bin_width_hz / 2.0;
+            let covering_steps = steps
+                .iter()
+                .filter(|(_, m)| m.start_freq_hz <= frequency_hz && frequency_hz <= m.start_freq_hz + sp.step_span_hz)
+                .map(|(i, _)| *i)
+                .collect();
+            sp.candidates.push(Candidate {
+                frequency_hz,
+                significance: sp.grand[peak],
+                first_bin: first,
+                last_bin: j - 1,
+                revisit_cavity_hz: frequency_hz * (1.0 + mean_beta_sq / 2.0),
+                covering_steps,
+            });
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,155 @@
+//! Stage traits, one per data shape, and the data that flows between stages.
+//!
+//! Shapes: per-step stages ([`StepStage`]) run independently on each tuning step; one
+//! combining stage ([`Combiner`]) maps steps onto the RF grid; spectrum stages
+//! ([`SpectrumStage`]) work on the combined spectrum. Each stage declares the [`Form`] it
+//! consumes and produces, and the plan is checked against those when the config is loaded.
+
+pub mod baseline;
+pub mod combine;
+pub mod filter;
+pub mod flag;
+pub mod ingest;
+pub mod rescale;
+
+use crate::runfile::{RunHeader, StepMeta};
+
+/// What the numbers in the data currently mean.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Form {
+    /// Raw linear power per bin, straight from the run file.
+    Raw,
+    /// Raw power from steps that passed the ingest checks and cuts.
+    Accepted,
+    /// Baseline-free fluctuation delta = P / (G * SG) - 1 (dimensionless, sigma ~ 1/sqrt(N)).
+    Normalised,
+    /// Excess power in units of the reference axion's power, with per-bin sigma.
+    Rescaled,
+    /// Maximum-likelihood combination on one RF grid.
+    Combined,
+    /// Optimally filtered grand spectrum (A / sigma_A, normalised).
+    Grand,
+}
+
+/// Night-wide facts known before the stages are built.
+#[derive(Debug, Clone)]
+pub struct NightInfo {
+    /// Bin width shared by all files, Hz.
+    pub bin_width_hz: f64,
+    /// Bins per step.
+    pub n_bins: usize,
+    /// Lowest and highest bin-centre RF frequency over all steps, Hz.
+    pub rf_span_hz: (f64, f64),
+    /// The header of each input file, by file index.
+    pub headers: Vec<RunHeader>,
+}
+
+/// One tuning step in flight through the per-step stages.
+#[derive(Debug, Clone)]
+pub struct Step {
+    /// Index of the step over all input files, in input order.
+    pub index: usize,
+    /// Index of the file it came from.
+    pub file: usize,
+    /// Index within that file.
+    pub index_in_file: usize,
+    /// Its cavity and receiver parameters.
+    pub meta: StepMeta,
+    /// Per-bin values; their meaning is given by the current [`Form`]. NaN = no data.
+    pub values: Vec<f64>,
+    /// Per-bin standard deviation in the units of `values` (filled by rescaling).
+    pub sigma: Vec<f64>,
+}
+
+/// Outcome of a per-step stage.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Verdict {
+    /// The step goes on.
+    Keep,
+    /// The step is dropped, with the reason reported in the summary.
+    Cut(String),
+}
+
+/// A stage applied to every step independently (in parallel; must not depend on step order).
+pub trait StepStage: Send + Sync {
+    /// Whether [`StepStage::survey`] must see every accepted step before any is processed.
+    fn needs_survey(&self) -> bool {
+        false
+    }
+    /// Accumulates night-wide statistics from one step (called in step order).
+    fn survey(&mut self, _step: &Step) {}
+    /// Closes the survey; errors if the night gave too little to work with.
+    fn finish_survey(&mut self) -> Result<(), String> {
+        Ok(())
+    }
+    /// Transforms one step in place.
+    fn apply(&self, step: &mut Step, night: &NightInfo) -> Verdict;
+}
+
+/// The RF-grid spectrum after combination, and what later stages add to it.
+#[derive(Debug, Clone, Default)]
+pub struct Spectrum {
+    /// Bin-centre frequency of RF bin 0, Hz.
+    pub rf_start_hz: f64,
+    /// RF bin width, Hz.
+    pub bin_width_hz: f64,
+    /// Combined excess power, reference-axion units (NaN = no data).
+    pub combined: Vec<f64>,
+    /// Its standard deviation (infinite = no data).
+    pub combined_sigma: Vec<f64>,
+    /// Number of steps that contributed to each bin.
+    pub coverage: Vec<u32>,
+    /// Filtered amplitude A_j for an axion whose line starts at the lower edge of bin j.
+    pub amplitude: Vec<f64>,
+    /// Standard deviation of A_j, reference-axion units.
+    pub sigma_a: Vec<f64>,
+    /// Predicted null spread of A/sigma_A before normalisation, per bin.
+    pub predicted_spread: Vec<f64>,
+    /// Normalised grand spectrum A / (sigma_A * predicted spread).
+    pub grand: Vec<f64>,
+    /// Rescan candidates found by flagging stages.
+    pub candidates: Vec<Candidate>,
+    /// RF width of one step's band, (n_bins - 1) * bin width, Hz.
+    pub step_span_hz: f64,
+    /// Mean squared halo speed over c^2 assumed by the filter.
+    pub mean_beta_sq: f64,
+    /// Threshold used by the flagging stage.
+    pub threshold: Option<f64>,
+}
+
+impl Spectrum {
+    /// Bin-centre RF frequency of bin `j`, Hz.
+    pub fn freq_hz(&self, j: usize) -> f64 {
+        self.rf_start_hz + j as f64 * self.bin_width_hz
+    }
+}
+
+/// A group of adjacent grand-spectrum bins above threshold.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Candidate {
+    /// Axion frequency hypothesis of the most significant bin (line start), Hz.
+    pub frequency_hz: f64,
+    /// Grand-spectrum value of that bin.
+    pub significance: f64,
+    /// First and last flagged bin index.
+    pub first_bin: usize,
+    pub last_bin: usize,
+    /// Cavity frequency to tune to for a rescan: the line's mean frequency, Hz.
+    pub revisit_cavity_hz: f64,
+    /// Input steps whose band covered the candidate (global step indices).
+    pub covering_steps: Vec<usize>,
+}
+
+/// Maps steps onto one RF grid.
+pub trait Combiner: Send {
+    /// Adds one step (called in step order, so the sums are reproducible).
+    fn add(&mut self, step: &Step) -> Result<(), String>;
+    /// Returns the combined spectrum.
+    fn finish(self: Box<Self>) -> Spectrum;
+}
+
+/// A stage on the combined spectrum.
+pub trait SpectrumStage: Send + Sync {
+    /// Transforms the spectrum in place.
+    fn apply(&self, spectrum: &mut Spectrum, steps: &[(usize, StepMeta)]) -> Result<(), String>;
+}

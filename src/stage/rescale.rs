@@ -1,0 +1,94 @@
+//! Rescale: each bin in units of the reference axion's power in that bin.
+//!
+//! R[k] = delta[k] * k_B T_sys dnu_b / P_sig(f_k) and sigma[k] = k_B T_sys dnu_b /
+//! (P_sig(f_k) sqrt(N)), with P_sig the power of an axion of the reference coupling at the
+//! bin's RF frequency f_k, cavity Lorentzian included. 1.0 means the whole power of the
+//! reference axion falls in the bin.
+
+use super::{NightInfo, Step, StepStage, Verdict};
+use crate::config::{BuildContext, Built, StageConfig};
+use crate::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_DFSZ, G_GAMMA_KSVZ};
+use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
+use serde::Deserialize;
+
+/// The reference axion-photon coupling, as a model name or a value of g_gamma.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(untagged)]
+pub enum Reference {
+    /// "ksvz" or "dfsz".
+    Model(String),
+    /// A dimensionless g_gamma.
+    Value(f64),
+}
+
+/// Options of the `rescale` stage.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RescaleConfig {
+    /// Reference coupling: "ksvz", "dfsz" or a number (g_gamma).
+    #[serde(default = "default_reference")]
+    pub reference: Reference,
+    /// Local dark-matter density, GeV/cm^3.
+    #[serde(default = "default_density")]
+    pub dm_density_gev_per_cm3: f64,
+}
+
+fn default_reference() -> Reference {
+    Reference::Model("ksvz".into())
+}
+fn default_density() -> f64 {
+    crate::physics::constants::DEFAULT_DM_DENSITY_GEV_PER_CM3
+}
+
+impl RescaleConfig {
+    /// The reference g_gamma, if the option names a known model or a non-zero number.
+    pub fn g_gamma(&self) -> Option<f64> {
+        match &self.reference {
+            Reference::Model(m) if m == "ksvz" => Some(G_GAMMA_KSVZ),
+            Reference::Model(m) if m == "dfsz" => Some(G_GAMMA_DFSZ),
+            Reference::Value(v) if v.is_finite() && *v != 0.0 => Some(*v),
+            _ => None,
+        }
+    }
+}
+
+impl StageConfig for RescaleConfig {
+    fn validate(&self) -> Vec<(String, String)> {
+        let mut p = Vec::new();
+        if self.g_gamma().is_none() {
+            p.push(("reference".into(), format!("{:?} is not valid; choose \"ksvz\", \"dfsz\" or a non-zero number", self.reference)));
+        }
+        if !(self.dm_density_gev_per_cm3 > 0.0 && self.dm_density_gev_per_cm3 < 100.0) {
+            p.push(("dm_density_gev_per_cm3".into(), format!("{} must be in (0, 100) GeV/cm^3", self.dm_density_gev_per_cm3)));
+        }
+        p
+    }
+    fn build(&self, _night: &NightInfo, _ctx: &BuildContext) -> Result<Built, String> {
+        let g_gamma = self.g_gamma().ok_or("invalid reference coupling")?;
+        Ok(Built::Step(Box::new(Rescale { g_gamma, density: self.dm_density_gev_per_cm3 })))
+    }
+}
+
+struct Rescale {
+    g_gamma: f64,
+    density: f64,
+}
+
+impl StepStage for Rescale {
+    fn apply(&self, step: &mut Step, night: &NightInfo) -> Verdict {
+        let h = &night.headers[step.file];
+        let scope = Haloscope { magnet_field_t: h.magnet_field_t, cavity_volume_m3: h.cavity_volume_m3, form_factor: h.form_factor };
+        let m = step.meta;
+        let cavity = CavityState { cavity_freq_hz: m.cavity_freq_hz, loaded_q: m.loaded_q, coupling_beta: m.coupling_beta };
+        let noise_w = BOLTZMANN_J_PER_K * m.noise_temp_k * night.bin_width_hz;
+        let root_n = (m.n_averages as f64).sqrt();
+        step.sigma = vec![0.0; step.values.len()];
+        for (k, (v, s)) in step.values.iter_mut().zip(step.sigma.iter_mut()).enumerate() {
+            let f = m.start_freq_hz + k as f64 * night.bin_width_hz;
+            let scale = noise_w / signal_power_w(self.g_gamma, self.density, &scope, &cavity, f);
+            *v *= scale;
+            *s = if v.is_finite() { scale / root_n } else { f64::INFINITY };
+        }
+        Verdict::Keep
+    }
+}
