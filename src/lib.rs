@@ -9,6 +9,7 @@
 
 pub mod config;
 pub mod dsp;
+pub mod inject;
 pub mod output;
 pub mod physics;
 pub mod pipeline;

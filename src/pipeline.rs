@@ -3,6 +3,9 @@
 //! depend on the thread count), then the spectrum stages.
 
 use crate::config::{Built, Plan};
+use crate::inject::{SignalModel, SyntheticAxion};
+use crate::physics::constants::BOLTZMANN_J_PER_K;
+use crate::physics::signal::{CavityState, Haloscope};
 use crate::runfile::{RunFileError, RunReader, StepMeta};
 use crate::stage::{Combiner, NightInfo, Spectrum, SpectrumStage, Step, StepStage, Verdict};
 use rayon::prelude::*;
@@ -76,8 +79,33 @@ pub fn open_night(paths: &[PathBuf]) -> Result<(Vec<RunReader>, NightInfo), Redu
     Ok((readers, night))
 }
 
+/// Synthetic axions added to every raw step as it is read, before any stage sees it.
+#[derive(Debug, Clone)]
+pub struct Injection {
+    /// The axions.
+    pub axions: Vec<SyntheticAxion>,
+    /// Their lineshape and density.
+    pub model: SignalModel,
+}
+
+impl Injection {
+    fn apply(&self, step: &mut Step, night: &NightInfo) {
+        let h = &night.headers[step.file];
+        let scope = Haloscope { magnet_field_t: h.magnet_field_t, cavity_volume_m3: h.cavity_volume_m3, form_factor: h.form_factor };
+        let m = step.meta;
+        let cavity = CavityState { cavity_freq_hz: m.cavity_freq_hz, loaded_q: m.loaded_q, coupling_beta: m.coupling_beta };
+        let noise_w = BOLTZMANN_J_PER_K * m.noise_temp_k * night.bin_width_hz;
+        self.model.inject_into_raw(&self.axions, &scope, &cavity, m.start_freq_hz, night.bin_width_hz, noise_w, &mut step.values);
+    }
+}
+
 /// Reduces the given run files with a plan. `progress` is called with (steps done, total).
 pub fn reduce(plan: &Plan, paths: &[PathBuf], progress: &dyn Fn(usize, usize)) -> Result<Reduction, ReduceError> {
+    reduce_injected(plan, paths, None, progress)
+}
+
+/// As [`reduce`], with synthetic axions added to the raw spectra first (for calibration).
+pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Injection>, progress: &dyn Fn(usize, usize)) -> Result<Reduction, ReduceError> {
     let (readers, night) = open_night(paths)?;
     let mut step_stages: Vec<(String, Box<dyn StepStage>)> = Vec::new();
     let mut combiner: Option<Box<dyn Combiner>> = None;
@@ -99,7 +127,7 @@ pub fn reduce(plan: &Plan, paths: &[PathBuf], progress: &dyn Fn(usize, usize)) -
             continue;
         }
         let mut cut_here = Vec::new();
-        for_each_chunk(&readers, |chunk| {
+        for_each_chunk(&readers, &night, injection, |chunk| {
             let (before, rest) = step_stages.split_at_mut(s);
             let kept = run_stages(before, chunk, &night, &mut cut_here, paths);
             for step in kept {
@@ -112,7 +140,7 @@ pub fn reduce(plan: &Plan, paths: &[PathBuf], progress: &dyn Fn(usize, usize)) -
 
     let mut used_steps = Vec::new();
     let mut done = 0;
-    for_each_chunk(&readers, |chunk| {
+    for_each_chunk(&readers, &night, injection, |chunk| {
         let n = chunk.len();
         let kept = run_stages(&mut step_stages, chunk, &night, &mut cuts, paths);
         for step in kept {
@@ -162,8 +190,14 @@ fn run_stages<'a>(
     kept
 }
 
-/// Reads every file in chunks of rows and hands each chunk of fresh steps to `f`.
-fn for_each_chunk(readers: &[RunReader], mut f: impl FnMut(&mut [Step]) -> Result<(), ReduceError>) -> Result<(), ReduceError> {
+/// Reads every file in chunks of rows, adds the injection if any, and hands each chunk of
+/// fresh steps to `f`.
+fn for_each_chunk(
+    readers: &[RunReader],
+    night: &NightInfo,
+    injection: Option<&Injection>,
+    mut f: impl FnMut(&mut [Step]) -> Result<(), ReduceError>,
+) -> Result<(), ReduceError> {
     let mut index = 0;
     for (file, reader) in readers.iter().enumerate() {
         let n = reader.steps().len();
@@ -183,6 +217,9 @@ fn for_each_chunk(readers: &[RunReader], mut f: impl FnMut(&mut [Step]) -> Resul
                 })
                 .collect();
             index += end - start;
+            if let Some(injection) = injection {
+                chunk.par_iter_mut().for_each(|step| injection.apply(step, night));
+            }
             f(&mut chunk)?;
         }
     }

@@ -6,9 +6,10 @@
 //! integrated over the bin) and I_k narrowband interference fixed in IF or RF. Step i uses a
 //! random stream seeded by (seed, i), so files are reproducible whatever the thread count.
 
-use crate::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_KSVZ};
+use crate::physics::constants::{BOLTZMANN_J_PER_K, DEFAULT_DM_DENSITY_GEV_PER_CM3, G_GAMMA_KSVZ};
 use crate::physics::lineshape::HaloModel;
-use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
+use crate::inject::{SignalModel, SyntheticAxion};
+use crate::physics::signal::{CavityState, Haloscope};
 use crate::runfile::{RunFileError, RunHeader, RunWriter, StepMeta};
 use ndarray::Array1;
 use rand::SeedableRng;
@@ -17,6 +18,9 @@ use rand_distr::{Distribution, StandardNormal, Uniform};
 use rayon::prelude::*;
 use serde::Deserialize;
 use std::path::Path;
+
+/// RMS halo speed of the simulated axions (the default Maxwellian), m/s.
+pub const SIGNAL_V_RMS_M_S: f64 = 270e3;
 
 /// A simulated night.
 #[derive(Debug, Clone, Deserialize)]
@@ -173,7 +177,10 @@ fn step(sc: &Scenario, i: usize) -> (StepMeta, Array1<f32>) {
     let unit = Uniform::new(-1.0, 1.0).expect("valid range");
     let (c1, c2): (f64, f64) = (unit.sample(&mut rng), unit.sample(&mut rng));
     let root_n = (s.n_averages as f64).sqrt();
-    let halo = HaloModel::Maxwellian { v_rms_m_s: 270e3 };
+    let signals = SignalModel { halo: HaloModel::Maxwellian { v_rms_m_s: SIGNAL_V_RMS_M_S }, dm_density_gev_per_cm3: DEFAULT_DM_DENSITY_GEV_PER_CM3 };
+    let axions: Vec<SyntheticAxion> = sc.axion.iter().map(|a| SyntheticAxion { freq_hz: a.freq_hz, g_gamma: G_GAMMA_KSVZ * a.coupling_rel_ksvz }).collect();
+    let mut excess_w = vec![0.0; s.n_bins];
+    signals.add_power_w(&axions, &scope, &cavity, start, s.bin_width_hz, &mut excess_w);
     let mut power = Array1::<f32>::zeros(s.n_bins);
     for (k, p) in power.iter_mut().enumerate() {
         let f = start + k as f64 * s.bin_width_hz;
@@ -181,14 +188,7 @@ fn step(sc: &Scenario, i: usize) -> (StepMeta, Array1<f32>) {
         let gain = 1.0 + s.gain_ripple * (std::f64::consts::TAU * k as f64 / s.gain_ripple_period_bins).sin();
         let drift = 1.0 + s.baseline_drift * (c1 * x + c2 * x * x);
         let noise: f64 = StandardNormal.sample(&mut rng);
-        let mut excess = 0.0;
-        for a in &sc.axion {
-            let lo = f - s.bin_width_hz / 2.0 - a.freq_hz;
-            let frac = halo.cdf(a.freq_hz, lo + s.bin_width_hz) - halo.cdf(a.freq_hz, lo);
-            if frac > 0.0 {
-                excess += frac * signal_power_w(G_GAMMA_KSVZ * a.coupling_rel_ksvz, 0.45, &scope, &cavity, a.freq_hz);
-            }
-        }
+        let mut excess = excess_w[k];
         for line in &sc.interference {
             let here = match line.frame {
                 Frame::If => (k as f64 - line.position).abs() < 0.5,
