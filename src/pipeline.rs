@@ -56,20 +56,77 @@ pub enum ReduceError {
 }
 
 /// Opens every run file and gathers the night-wide facts.
+///
+/// Night-level rules, checked before any spectrum is read: at least one file; no file given
+/// twice; every file has the same `bin_width_hz` and number of bins as the first; no step
+/// appears in two files (same `timestamp_s` and `start_freq_hz`: a copied or re-exported
+/// file); and the RF
+/// grid spanned by all steps stays within [`crate::runfile::MAX_RF_BINS`] bins. Whether each
+/// step lies on the bin grid is checked by the combining stage, with its configured tolerance.
 pub fn open_night(paths: &[PathBuf]) -> Result<(Vec<RunReader>, NightInfo), ReduceError> {
+    if paths.is_empty() {
+        return Err(ReduceError::Night("no run files given".into()));
+    }
+    for (i, p) in paths.iter().enumerate() {
+        let same = |q: &PathBuf| q == p || matches!((std::fs::canonicalize(q), std::fs::canonicalize(p)), (Ok(a), Ok(b)) if a == b);
+        if let Some(q) = paths[..i].iter().find(|q| same(q)) {
+            return Err(ReduceError::Night(format!("{}: given twice (also as {}); each run file may be reduced once", p.display(), q.display())));
+        }
+    }
     let readers = paths.iter().map(|p| RunReader::open(p)).collect::<Result<Vec<_>, _>>()?;
-    let first = readers.first().ok_or_else(|| ReduceError::Night("no run files given".into()))?;
+    let first = &readers[0];
     let (bw, n_bins) = (first.header().bin_width_hz, first.n_bins());
     for r in &readers[1..] {
-        if r.header().bin_width_hz != bw || r.n_bins() != n_bins {
+        if r.header().bin_width_hz != bw {
             return Err(ReduceError::Night(format!(
-                "{}: bin_width_hz = {} and {} bins differ from {} ({} Hz, {} bins); files of one reduction must share both",
-                r.path().display(), r.header().bin_width_hz, r.n_bins(), first.path().display(), bw, n_bins
+                "{}: field `bin_width_hz` = {} Hz differs from {} ({} Hz); files of one reduction must share the bin width",
+                r.path().display(),
+                r.header().bin_width_hz,
+                first.path().display(),
+                bw
             )));
+        }
+        if r.n_bins() != n_bins {
+            return Err(ReduceError::Night(format!(
+                "{}: field `spectra` has {} bins per step, {} has {}; files of one reduction must share the number of bins",
+                r.path().display(),
+                r.n_bins(),
+                first.path().display(),
+                n_bins
+            )));
+        }
+    }
+    let mut seen = std::collections::HashMap::new();
+    for r in &readers {
+        for (i, m) in r.steps().iter().enumerate() {
+            if let Some((q, j)) = seen.insert((m.timestamp_s.to_bits(), m.start_freq_hz.to_bits()), (r.path(), i)) {
+                return Err(ReduceError::Night(format!(
+                    "{}: field `steps/timestamp_s`, step {i}: duplicate of step {j} of {} (same timestamp_s = {} and start_freq_hz = {} Hz); each step may be reduced once",
+                    r.path().display(),
+                    q.display(),
+                    m.timestamp_s,
+                    m.start_freq_hz
+                )));
+            }
         }
     }
     let starts = readers.iter().flat_map(|r| r.steps().iter().map(|s| s.start_freq_hz));
     let (lo, hi) = starts.fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), f| (lo.min(f), hi.max(f)));
+    let rf_bins = (hi - lo) / bw + n_bins as f64;
+    if !(rf_bins <= crate::runfile::MAX_RF_BINS as f64) {
+        let locate = |f: f64| {
+            readers
+                .iter()
+                .find_map(|r| r.steps().iter().position(|s| s.start_freq_hz == f).map(|i| format!("{} step {i}", r.path().display())))
+                .unwrap_or_default()
+        };
+        return Err(ReduceError::Night(format!(
+            "field `steps/start_freq_hz`: the steps span {lo} Hz ({}) to {hi} Hz ({}), {rf_bins:.0} bins of {bw} Hz, more than the {} accepted; a corrupt frequency?",
+            locate(lo),
+            locate(hi),
+            crate::runfile::MAX_RF_BINS
+        )));
+    }
     let night = NightInfo {
         bin_width_hz: bw,
         n_bins,

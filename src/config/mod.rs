@@ -1,14 +1,23 @@
 //! Pipeline files: TOML `[[stage]]` tables -> validated, printable plan -> built stages.
 //!
-//! Every problem found is collected and reported together, each naming the stage (its
-//! position and kind), the key, the line in the file and the valid choices.
+//! Every problem found is collected and reported together, each starting with its line and
+//! column in the file and naming the stage (its position and kind), the key and the valid
+//! choices. Checks live in small modules: `position` (offsets to line and column, nearest
+//! name), `table` (one stage table), `chain` (stage order), `registry` (the stage kinds).
 
+mod chain;
+mod position;
+mod problem;
 mod registry;
+mod table;
 
-pub use registry::{Entry, REGISTRY};
+pub use position::Position;
+pub use registry::{Entry, ParseFn, REGISTRY};
 
-use crate::stage::{Combiner, Form, NightInfo, SpectrumStage, StepStage};
-use serde::Deserialize;
+use problem::Problem;
+use toml::de::{DeTable, DeValue};
+
+use crate::stage::{Combiner, NightInfo, SpectrumStage, StepStage};
 use std::fmt;
 
 /// A built stage, by shape.
@@ -65,7 +74,7 @@ pub struct Plan {
 pub struct ConfigError {
     /// Name of the file (for messages).
     pub source_name: String,
-    /// One message per problem, each with its line.
+    /// One message per problem, in file order, each starting "line L, column C: ".
     pub problems: Vec<String>,
 }
 
@@ -80,84 +89,63 @@ impl fmt::Display for ConfigError {
 }
 impl std::error::Error for ConfigError {}
 
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct PipelineFile {
-    #[serde(default)]
-    stage: Vec<toml::Spanned<toml::Table>>,
-}
-
-fn line_of(text: &str, offset: usize) -> usize {
-    text[..offset.min(text.len())].matches('\n').count() + 1
-}
-
-/// Line of `key = ...` inside the byte range of a stage table, else the table's line.
-fn key_line(text: &str, span: std::ops::Range<usize>, key: &str) -> usize {
-    let mut offset = span.start;
-    for l in text[span.clone()].split_inclusive('\n') {
-        let t = l.trim_start();
-        if t.strip_prefix(key).is_some_and(|rest| rest.trim_start().starts_with('=')) {
-            return line_of(text, offset);
-        }
-        offset += l.len();
-    }
-    line_of(text, span.start)
-}
-
 /// Loads and validates a pipeline from TOML text. `source_name` labels messages.
+///
+/// Every problem is collected: TOML syntax errors (then nothing else is checked, since the
+/// rest of the file cannot be trusted), unknown top-level keys, and per stage its kind,
+/// unknown keys (with the nearest valid one), wrong value types and out-of-range values;
+/// when every stage has a known kind, also their order. Each message starts with the line
+/// and column it points at.
 pub fn load(text: &str, source_name: &str) -> Result<Plan, ConfigError> {
-    let fail = |problems| ConfigError { source_name: source_name.to_string(), problems };
-    let file: PipelineFile = toml::from_str(text).map_err(|e| {
-        let at = e.span().map(|s| format!("line {}: ", line_of(text, s.start))).unwrap_or_default();
-        fail(vec![format!("{at}{}", e.message())])
-    })?;
-    if file.stage.is_empty() {
-        return Err(fail(vec!["no [[stage]] tables: a pipeline needs at least ingest, baseline, rescale, combine, filter, flag".into()]));
+    let fail = |mut problems: Vec<Problem>| {
+        problems.sort_by_key(|p| p.offset);
+        ConfigError { source_name: source_name.to_string(), problems: problems.iter().map(|p| p.render(text)).collect() }
+    };
+    let (doc, syntax) = DeTable::parse_recoverable(text);
+    if !syntax.is_empty() {
+        return Err(fail(syntax_problems(&syntax)));
     }
     let mut problems = Vec::new();
-    let mut stages = Vec::new();
-    for (pos, spanned) in file.stage.iter().enumerate() {
-        let span = spanned.span();
-        let line = line_of(text, span.start);
-        let mut table = spanned.get_ref().clone();
-        let label = format!("stage {} (line {line})", pos + 1);
-        let kind = match table.remove("kind") {
-            Some(toml::Value::String(k)) => k,
-            Some(other) => {
-                problems.push(format!("{label}: key `kind` must be a string, found {}", other.type_str()));
-                continue;
-            }
-            None => {
-                problems.push(format!("{label}: missing key `kind`; valid kinds: {}", registry::kind_list()));
-                continue;
-            }
-        };
-        let Some(entry) = REGISTRY.iter().find(|e| e.kind == kind) else {
-            let hint = registry::suggest(&kind).map(|s| format!(" (did you mean \"{s}\"?)")).unwrap_or_default();
-            problems.push(format!(
-                "{label}: line {}: unknown kind \"{kind}\"{hint}; valid kinds: {}",
-                key_line(text, span.clone(), "kind"),
-                registry::kind_list()
-            ));
-            continue;
-        };
-        let label = format!("stage {} \"{kind}\"", pos + 1);
-        match (entry.parse)(toml::Value::Table(table)) {
-            Err(msg) => {
-                let key = msg.split('`').nth(1).unwrap_or("");
-                let at = if key.is_empty() { line } else { key_line(text, span.clone(), key) };
-                problems.push(format!("{label}: line {at}: {msg}"));
-            }
-            Ok(config) => {
-                for (key, msg) in config.validate() {
-                    problems.push(format!("{label}: line {}: key `{key}`: {msg}", key_line(text, span.clone(), &key)));
+    for (key, _) in doc.get_ref().iter().filter(|(k, _)| k.get_ref() != "stage") {
+        let hint = position::nearest(key.get_ref(), ["stage"]).map(|s| format!(" (did you mean `[[{s}]]`?)")).unwrap_or_default();
+        problems.push(Problem::at(key.span().start, format!("unknown top-level key `{}`{hint}; a pipeline holds only [[stage]] tables", key.get_ref())));
+    }
+    let tables: Vec<(std::ops::Range<usize>, &DeTable<'_>)> = match doc.get_ref().get("stage").map(|v| (v.span(), v.get_ref())) {
+        None => Vec::new(),
+        Some((_, DeValue::Array(items))) => {
+            let mut tables = Vec::new();
+            for item in items.iter() {
+                match item.get_ref() {
+                    DeValue::Table(t) => tables.push((item.span(), t)),
+                    other => problems.push(Problem::at(item.span().start, format!("`stage` must hold tables, found {}", other.type_str()))),
                 }
-                stages.push(PlannedStage { entry, config, line });
             }
+            tables
+        }
+        Some((span, other)) => {
+            problems.push(Problem::at(span.start, format!("`stage` must be an array of tables (write each stage as [[stage]]), found {}", other.type_str())));
+            Vec::new()
+        }
+    };
+    if tables.is_empty() && problems.is_empty() {
+        problems.push(Problem::at(0, "no [[stage]] tables: a pipeline needs at least ingest, baseline, rescale, combine, filter, flag"));
+    }
+    let mut stages = Vec::new();
+    let mut kinds = Vec::new();
+    let mut all_kinds_known = true;
+    for (pos, (header, table)) in tables.iter().enumerate() {
+        let checked = table::check(pos, header.clone(), table);
+        problems.extend(checked.problems);
+        match checked.entry {
+            Some(entry) => kinds.push((entry, header.start)),
+            None => all_kinds_known = false,
+        }
+        if let Some(s) = checked.stage {
+            stages.push(PlannedStage { entry: s.entry, config: s.config, line: Position::of(text, header.start).line });
         }
     }
-    if problems.is_empty() {
-        problems.extend(check_chain(&stages));
+    if all_kinds_known && !kinds.is_empty() {
+        problems.extend(chain::check(&kinds, text.len()));
     }
     if problems.is_empty() {
         Ok(Plan { stages, text: text.to_string() })
@@ -166,31 +154,19 @@ pub fn load(text: &str, source_name: &str) -> Result<Plan, ConfigError> {
     }
 }
 
-/// Checks that each stage consumes what the one before produces, and that the plan ends
-/// with flagged candidates.
-fn check_chain(stages: &[PlannedStage]) -> Vec<String> {
-    let mut problems = Vec::new();
-    let mut form = Form::Raw;
-    for (pos, s) in stages.iter().enumerate() {
-        if s.entry.input != form {
-            let fitting: Vec<&str> = REGISTRY.iter().filter(|e| e.input == form).map(|e| e.kind).collect();
-            problems.push(format!(
-                "stage {} \"{}\" (line {}): is in the wrong place: it needs {:?} data but receives {:?}; stages that fit here: {}",
-                pos + 1,
-                s.entry.kind,
-                s.line,
-                s.entry.input,
-                form,
-                fitting.join(", ")
-            ));
-            return problems;
+/// TOML syntax errors, at most one per line (later ones on a line are mostly echoes).
+fn syntax_problems(errors: &[toml::de::Error]) -> Vec<Problem> {
+    let mut seen_offsets: Vec<usize> = Vec::new();
+    let mut out = Vec::new();
+    for e in errors {
+        let offset = e.span().map_or(0, |s| s.start);
+        if seen_offsets.contains(&offset) {
+            continue;
         }
-        form = s.entry.output;
+        seen_offsets.push(offset);
+        out.push(Problem::at(offset, format!("TOML syntax: {}", e.message())));
     }
-    if form != Form::Grand || !stages.iter().any(|s| s.entry.kind == "flag") {
-        problems.push(format!("the pipeline ends with {form:?} data; it must end with a \"flag\" stage on the grand spectrum"));
-    }
-    problems
+    out
 }
 
 impl Plan {

@@ -3,6 +3,11 @@
 use super::StageConfig;
 use crate::stage::{self, Form};
 use serde::de::DeserializeOwned;
+use toml::Spanned;
+use toml::de::{DeValue, ValueDeserializer};
+
+/// Reads the options of one `[[stage]]` table (without `kind`); errors carry a span.
+pub type ParseFn = for<'i> fn(Spanned<DeValue<'i>>) -> Result<Box<dyn StageConfig>, toml::de::Error>;
 
 /// A stage kind: its name, what it does, and how to read its options.
 pub struct Entry {
@@ -15,7 +20,7 @@ pub struct Entry {
     /// Form of the data it produces.
     pub output: Form,
     /// Reads the options of a `[[stage]]` table (without `kind`).
-    pub parse: fn(toml::Value) -> Result<Box<dyn StageConfig>, String>,
+    pub parse: ParseFn,
 }
 
 impl std::fmt::Debug for Entry {
@@ -24,8 +29,8 @@ impl std::fmt::Debug for Entry {
     }
 }
 
-fn parse<C: StageConfig + DeserializeOwned + 'static>(value: toml::Value) -> Result<Box<dyn StageConfig>, String> {
-    value.try_into::<C>().map(|c| Box::new(c) as Box<dyn StageConfig>).map_err(|e| e.message().to_string())
+fn parse<C: StageConfig + DeserializeOwned + 'static>(value: Spanned<DeValue<'_>>) -> Result<Box<dyn StageConfig>, toml::de::Error> {
+    C::deserialize(ValueDeserializer::from(value)).map(|c| Box::new(c) as Box<dyn StageConfig>)
 }
 
 /// Every stage kind, in pipeline order.
@@ -45,10 +50,5 @@ pub fn kind_list() -> String {
 
 /// The nearest valid kind to a misspelt one, if close enough.
 pub fn suggest(kind: &str) -> Option<&'static str> {
-    REGISTRY
-        .iter()
-        .map(|e| (strsim::levenshtein(kind, e.kind), e.kind))
-        .filter(|(d, _)| *d <= 3)
-        .min()
-        .map(|(_, k)| k)
+    super::position::nearest(kind, REGISTRY.iter().map(|e| e.kind))
 }

@@ -7,7 +7,10 @@
 //! with 1-D datasets `start_freq_hz`, `cavity_freq_hz`, `loaded_q`, `coupling_beta`,
 //! `noise_temp_k`, `n_averages`, `timestamp_s`; optional `mask` `[n_steps, n_bins]` u8.
 
+mod attrs;
+mod probe;
 mod read;
+mod steps;
 mod write;
 
 pub use read::RunReader;
@@ -19,8 +22,14 @@ use std::path::PathBuf;
 pub const FORMAT_NAME: &str = "axsift-run";
 /// The format version this build reads and writes.
 pub const FORMAT_VERSION: u32 = 1;
-/// Largest number of bins per step accepted before any allocation.
-pub const MAX_BINS_PER_STEP: usize = 1 << 22;
+/// Largest number of bins per step accepted before any allocation (a chunk of 64 steps of
+/// this size is 512 MiB of f64).
+pub const MAX_BINS_PER_STEP: usize = 1 << 20;
+/// Smallest number of bins per step accepted.
+pub const MIN_BINS_PER_STEP: usize = 16;
+/// Largest RF grid of one reduction, in bins, accepted before any allocation (a 3.3 GHz span
+/// at 100 Hz bins): steps spread further apart point to a corrupt frequency.
+pub const MAX_RF_BINS: usize = 1 << 25;
 /// Largest number of steps per file accepted before any allocation.
 pub const MAX_STEPS_PER_FILE: usize = 10_000_000;
 
@@ -61,6 +70,9 @@ pub struct StepMeta {
 /// A run-file problem, naming the file and, where known, the step and field.
 #[derive(Debug, thiserror::Error)]
 pub enum RunFileError {
+    /// The file is missing, empty, a directory, or not an HDF5 file.
+    #[error("{path}: {message}")]
+    File { path: PathBuf, message: String },
     /// The HDF5 library refused the file or an object in it.
     #[error("{path}: {what}: {source}")]
     Hdf5 {
