@@ -7,6 +7,7 @@
 //! invented facility for demos and tests. [`physics`] holds constants, signal power, halo
 //! lineshapes and unit conversions; [`dsp`] the Savitzky-Golay smoother.
 
+pub mod calib;
 pub mod config;
 pub mod dsp;
 pub mod inject;

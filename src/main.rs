@@ -1,7 +1,7 @@
 //! The axsift command line: a thin layer over the library.
 
 use anyhow::Context;
-use axsift::{config, output, pipeline, runfile, sim};
+use axsift::{calib, config, output, pipeline, runfile, sim};
 use clap::{Parser, Subcommand};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -44,8 +44,31 @@ enum Command {
         /// Output folder (created if needed; earlier results are replaced only on success).
         #[arg(long)]
         out: PathBuf,
+        /// Calibration file from `axsift calibrate` made with the same pipeline: adds eta,
+        /// implied couplings and the measured efficiency to the outputs.
+        #[arg(long)]
+        calibration: Option<PathBuf>,
         /// Run files of the night, in acquisition order.
         #[arg(required = true)]
+        runs: Vec<PathBuf>,
+    },
+    /// Measure the chain's efficiency by injecting synthetic axions into many realisations,
+    /// either of a simulated night (--scenario) or of recorded run files.
+    /// Example: axsift calibrate --config pipeline.toml --scenario fixtures/demo_night.toml --out calib/
+    Calibrate {
+        /// Pipeline TOML.
+        #[arg(long)]
+        config: PathBuf,
+        /// Output folder for calibration.json, efficiency.csv and the efficiency plot.
+        #[arg(long)]
+        out: PathBuf,
+        /// Scenario TOML: simulate fresh noise for every realisation.
+        #[arg(long, conflicts_with = "runs")]
+        scenario: Option<PathBuf>,
+        /// Seed of the injected frequencies (and of the simulated noise).
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        /// Recorded run files to inject into (the same noise every realisation).
         runs: Vec<PathBuf>,
     },
     /// Simulate an invented night and reduce it with the default pipeline.
@@ -87,7 +110,10 @@ fn main() -> ExitCode {
     init_logging(cli.verbose, cli.quiet);
     let result = match cli.command {
         Command::Simulate { scenario, out } => simulate(&scenario, &out),
-        Command::Reduce { config, out, runs } => read_text(&config).and_then(|text| reduce(&text, &config.display().to_string(), &runs, &out, cli.quiet)),
+        Command::Reduce { config, out, calibration, runs } => {
+            read_text(&config).and_then(|text| reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet))
+        }
+        Command::Calibrate { config, out, scenario, seed, runs } => calibrate(&config, &out, scenario.as_deref(), seed, &runs, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
         Command::Plan { config } => read_text(&config).and_then(|text| {
             let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
@@ -139,18 +165,50 @@ fn write_simulation(sc: &sim::Scenario, out: &Path) -> Result<(), Failure> {
     Ok(())
 }
 
-fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], out: &Path, quiet: bool) -> Result<(), Failure> {
+fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: Option<&Path>, out: &Path, quiet: bool) -> Result<(), Failure> {
     let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
-    let bar = output::progress::StepBar::new(quiet);
+    let calibration = calibration
+        .map(|path| calib::Calibration::load_for(path, &plan))
+        .transpose()
+        .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
+    let bar = output::progress::Bar::new(quiet, "reducing", "steps");
     let reduction = pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(|e| match e {
         pipeline::ReduceError::RunFile(_) => Failure::BadInput(e.into()),
         pipeline::ReduceError::Night(_) => Failure::Run(e.into()),
     })?;
     bar.finish();
     let provenance = output::Provenance::new(config_text, runs).context("hashing the inputs")?;
-    let written = reduction.write(out, config_text, &provenance)?;
+    let written = reduction.write(out, config_text, &provenance, calibration.as_ref())?;
     if !quiet {
-        print!("{}", output::console::night_report(&reduction, &provenance, &written));
+        print!("{}", output::console::night_report(&reduction, &provenance, calibration.as_ref(), &written));
+    }
+    Ok(())
+}
+
+fn calibrate(config: &Path, out: &Path, scenario: Option<&Path>, seed: u64, runs: &[PathBuf], quiet: bool) -> Result<(), Failure> {
+    let text = read_text(config)?;
+    let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
+    let spec = calib::CampaignSpec::standard(seed);
+    let bar = output::progress::Bar::new(quiet, "calibrating", "reductions");
+    let tick = |done, total| bar.update(done, total);
+    let cal = match (scenario, runs.is_empty()) {
+        (Some(path), true) => {
+            let sc = sim::Scenario::from_toml(&read_text(path)?).map_err(|e| Failure::BadInput(anyhow::anyhow!("{}: {e}", path.display())))?;
+            std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
+            let scratch = out.join(".scratch");
+            std::fs::create_dir_all(&scratch).with_context(|| format!("cannot create {}", scratch.display()))?;
+            let cal = calib::calibrate(&plan, &calib::NoiseSource::Simulated { scenario: &sc, scratch: &scratch }, &spec, &tick);
+            let _ = std::fs::remove_dir_all(&scratch);
+            cal
+        }
+        (None, false) => calib::calibrate(&plan, &calib::NoiseSource::Recorded(runs), &spec, &tick),
+        _ => return Err(Failure::BadInput(anyhow::anyhow!("give either --scenario FILE or recorded run files to inject into"))),
+    }
+    .map_err(|e| Failure::Run(e.into()))?;
+    bar.finish();
+    let written = cal.write(out)?;
+    if !quiet {
+        print!("{}", output::console::calibration_report(&cal, &written));
     }
     Ok(())
 }
@@ -160,7 +218,7 @@ fn demo(out: &Path, quiet: bool) -> Result<(), Failure> {
     let run = out.join("night.h5");
     tracing::info!("simulating the demo night \"{}\"", sc.run_label);
     write_simulation(&sc, &run)?;
-    reduce(DEFAULT_PIPELINE, "pipeline.toml (built in)", &[run], out, quiet)
+    reduce(DEFAULT_PIPELINE, "pipeline.toml (built in)", &[run], None, out, quiet)
 }
 
 fn inspect(file: &Path) -> Result<(), Failure> {

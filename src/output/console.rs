@@ -1,6 +1,7 @@
 //! Human-readable summaries printed on the terminal.
 
-use super::{Provenance, Summary};
+use super::{Provenance, Summary, implied_coupling};
+use crate::calib::Calibration;
 use crate::pipeline::Reduction;
 use crate::runfile::RunReader;
 use std::fmt::Write;
@@ -14,8 +15,8 @@ pub const ADVISORY: &str = "Advice only: axsift reads data and suggests where to
 control the magnet, cryostat or RF chain; retune and ramp only under the laboratory's own safety rules.";
 
 /// The morning summary of a reduction: steps, coverage, grand-spectrum statistics, candidates.
-pub fn night_report(r: &Reduction, provenance: &Provenance, written: &[PathBuf]) -> String {
-    let s: Summary = r.summary(provenance);
+pub fn night_report(r: &Reduction, provenance: &Provenance, calibration: Option<&Calibration>, written: &[PathBuf]) -> String {
+    let s: Summary = r.summary(provenance, calibration);
     let mut out = String::new();
     let _ = writeln!(out, "Steps: {} read, {} used, {} cut", s.n_steps_in, s.n_steps_used, s.cuts.len());
     for c in s.cuts.iter().take(MAX_LISTED) {
@@ -39,12 +40,20 @@ pub fn night_report(r: &Reduction, provenance: &Provenance, written: &[PathBuf])
         "Threshold {:.3}: {} bins above it (noise alone would give about {:.1}), merged into {} rescan candidate(s)",
         s.threshold, s.n_bins_above_threshold, s.expected_null_bins_above, s.n_candidates
     );
+    if let Some(cal) = calibration {
+        let _ = writeln!(
+            out,
+            "Calibration: eta = {:.3} +- {:.3} ({} injections), null spread {:.4}, KS p = {:.3}",
+            cal.attenuation.eta, cal.attenuation.standard_error, cal.attenuation.n, cal.null.std, cal.null.ks.p_value
+        );
+    }
     if !s.candidates.is_empty() {
-        let _ = writeln!(out, "\n  {:>3}  {:>20}  {:>12}  {:>24}  {:>6}", "#", "RF frequency (MHz)", "significance", "retune cavity to (MHz)", "steps");
+        let _ = write!(out, "\n  {:>3}  {:>20}  {:>12}  {:>24}  {:>6}", "#", "RF frequency (MHz)", "significance", "retune cavity to (MHz)", "steps");
+        let _ = writeln!(out, "{}", if calibration.is_some() { format!("  {:>14}", "|g|/g_ref") } else { String::new() });
         let mut ranked: Vec<_> = s.candidates.iter().collect();
         ranked.sort_by(|a, b| b.significance.total_cmp(&a.significance));
         for (i, c) in ranked.iter().take(MAX_LISTED).enumerate() {
-            let _ = writeln!(
+            let _ = write!(
                 out,
                 "  {:>3}  {:>20.6}  {:>12.2}  {:>24.6}  {:>6}",
                 i + 1,
@@ -53,6 +62,8 @@ pub fn night_report(r: &Reduction, provenance: &Provenance, written: &[PathBuf])
                 c.revisit_cavity_hz / 1e6,
                 c.covering_steps.len()
             );
+            let implied = calibration.map(|cal| format!("  {:>14.3}", implied_coupling(&r.spectrum, c, cal.attenuation.eta).0));
+            let _ = writeln!(out, "{}", implied.unwrap_or_default());
         }
         if ranked.len() > MAX_LISTED {
             let _ = writeln!(out, "  ... {} more in candidates.csv", ranked.len() - MAX_LISTED);
@@ -90,6 +101,35 @@ pub fn run_file_report(r: &RunReader) -> String {
             median(|s| s.coupling_beta),
             median(|s| s.n_averages as f64)
         );
+    }
+    out
+}
+
+/// The summary of a calibration campaign.
+pub fn calibration_report(cal: &Calibration, written: &[PathBuf]) -> String {
+    let mut out = String::new();
+    let a = &cal.attenuation;
+    let _ = writeln!(out, "Signal attenuation eta = {:.4} +- {:.4} (spread {:.4}, {} injections at SNR {})", a.eta, a.standard_error, a.spread, a.n, cal.spec.eta_snr);
+    let n = &cal.null;
+    let _ = writeln!(
+        out,
+        "Null grand spectrum: mean {:+.4}, std {:.4} over {} bins (correction {:.4}); KS vs N(0,1) on {} thinned bins: D = {:.4}, p = {:.3}",
+        n.mean, n.std, n.n_bins, n.correction, n.ks.n, n.ks.statistic, n.ks.p_value
+    );
+    let r = &cal.radiometer;
+    let _ = writeln!(
+        out,
+        "Radiometer: Dicke SNR of a reference axion {:.3}, chain 1/sigma_A {:.3} (ratio {:.3}; sqrt(3/pi) = 0.977 expected), grand-spectrum SNR {:.3}",
+        r.dicke_snr, r.filter_snr, r.ratio, r.grand_snr
+    );
+    let _ = writeln!(out, "\nDetection efficiency at threshold {:.3}:", cal.threshold);
+    let _ = writeln!(out, "  {:>6}  {:>6}  {:>10}  {:>8}  {:>8}", "SNR", "n", "efficiency", "+-", "ideal");
+    for p in &cal.efficiency {
+        let _ = writeln!(out, "  {:>6.2}  {:>6}  {:>10.3}  {:>8.3}  {:>8.3}", p.snr, p.n, p.efficiency, p.standard_error, p.ideal);
+    }
+    let _ = writeln!(out, "\nOutputs (calibration.json alone lists the injected frequencies):");
+    for p in written {
+        let _ = writeln!(out, "  {}", p.display());
     }
     out
 }

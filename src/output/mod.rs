@@ -7,11 +7,18 @@ pub mod console;
 mod plot;
 pub mod progress;
 
+use crate::calib::Calibration;
 use crate::pipeline::Reduction;
 use hdf5::types::VarLenUnicode;
 use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
 use std::str::FromStr;
+
+/// Makes the built-in DejaVu Sans the plots' "sans-serif" font (no system fonts needed).
+pub fn register_fonts() -> anyhow::Result<()> {
+    plotters::style::register_font("sans-serif", plotters::style::FontStyle::Normal, dejavu::sans::regular())
+        .map_err(|_| anyhow::anyhow!("cannot register the built-in font"))
+}
 
 /// Provenance written into every output.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -62,6 +69,36 @@ pub struct Summary<'a> {
     pub candidates: &'a [crate::stage::Candidate],
     pub cuts: &'a [crate::pipeline::CutStep],
     pub provenance: &'a Provenance,
+    /// The calibration applied, if `reduce` was given one.
+    pub calibration: Option<CalibrationUse>,
+}
+
+/// What a calibration contributes to a reduction's summary.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct CalibrationUse {
+    /// Signal attenuation eta applied to implied couplings.
+    pub eta: f64,
+    /// Its standard error.
+    pub eta_standard_error: f64,
+    /// Null spread of the grand spectrum measured by the calibration.
+    pub null_spread: f64,
+    /// Measured detection efficiency at the injected SNR closest to 5.
+    pub efficiency_near_snr5: Option<(f64, f64)>,
+}
+
+impl CalibrationUse {
+    /// Extracts the figures a reduction reports.
+    pub fn from(cal: &Calibration) -> Self {
+        let near5 = cal.efficiency.iter().min_by(|a, b| (a.snr - 5.0).abs().total_cmp(&(b.snr - 5.0).abs())).map(|p| (p.snr, p.efficiency));
+        Self { eta: cal.attenuation.eta, eta_standard_error: cal.attenuation.standard_error, null_spread: cal.null.std, efficiency_near_snr5: near5 }
+    }
+}
+
+/// Per-candidate figures that need eta: (implied |g|/g_ref, SNR a reference axion has there).
+pub fn implied_coupling(sp: &crate::stage::Spectrum, c: &crate::stage::Candidate, eta: f64) -> (f64, f64) {
+    let j = c.peak_bin;
+    let rel = (sp.amplitude[j].max(0.0) / eta).sqrt();
+    (rel, eta / (sp.sigma_a[j] * sp.predicted_spread[j]))
 }
 
 /// Mean and standard deviation of the finite values.
@@ -75,7 +112,7 @@ pub fn mean_std(x: &[f64]) -> (f64, f64) {
 
 impl Reduction {
     /// Builds the summary of this reduction.
-    pub fn summary<'a>(&'a self, provenance: &'a Provenance) -> Summary<'a> {
+    pub fn summary<'a>(&'a self, provenance: &'a Provenance, calibration: Option<&Calibration>) -> Summary<'a> {
         let sp = &self.spectrum;
         let (grand_mean, grand_std) = mean_std(&sp.grand);
         let raw: Vec<f64> = sp.amplitude.iter().zip(&sp.sigma_a).map(|(a, s)| a / s).collect();
@@ -102,19 +139,20 @@ impl Reduction {
             candidates: &sp.candidates,
             cuts: &self.cuts,
             provenance,
+            calibration: calibration.map(CalibrationUse::from),
         }
     }
 
     /// Writes all outputs into `dir` (created if needed). Returns the written paths.
-    pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance) -> anyhow::Result<Vec<PathBuf>> {
+    pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance, calibration: Option<&Calibration>) -> anyhow::Result<Vec<PathBuf>> {
         use anyhow::Context;
         std::fs::create_dir_all(dir).with_context(|| format!("cannot create output folder {}", dir.display()))?;
         let names = ["results.h5", "candidates.csv", "summary.json", "grand_spectrum.png", "grand_spectrum.svg"];
         // Temporary names keep the extension: the image encoder picks its format from it.
         let tmp = |n: &str| dir.join(format!(".tmp.{n}"));
         self.write_hdf5(&tmp(names[0]), config_text, provenance).context("writing results.h5")?;
-        self.write_csv(&tmp(names[1])).context("writing candidates.csv")?;
-        std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance))?).context("writing summary.json")?;
+        self.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
+        std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration))?).context("writing summary.json")?;
         plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
         names
             .iter()
@@ -126,18 +164,29 @@ impl Reduction {
             .collect()
     }
 
-    fn write_csv(&self, path: &Path) -> anyhow::Result<()> {
+    /// One row per candidate; with a calibration also the implied coupling |g|/g_ref and the
+    /// SNR a reference axion has at that frequency (both use eta).
+    fn write_csv(&self, path: &Path, calibration: Option<&Calibration>) -> anyhow::Result<()> {
         let mut w = csv::Writer::from_path(path)?;
-        w.write_record(["frequency_hz", "significance", "first_bin", "last_bin", "revisit_cavity_hz", "n_covering_steps"])?;
+        let mut header = vec!["frequency_hz", "significance", "first_bin", "last_bin", "revisit_cavity_hz", "n_covering_steps"];
+        if calibration.is_some() {
+            header.extend(["implied_coupling_rel_ref", "reference_axion_snr"]);
+        }
+        w.write_record(&header)?;
         for c in &self.spectrum.candidates {
-            w.write_record([
+            let mut row = vec![
                 format!("{:.3}", c.frequency_hz),
                 format!("{:.4}", c.significance),
                 c.first_bin.to_string(),
                 c.last_bin.to_string(),
                 format!("{:.3}", c.revisit_cavity_hz),
                 c.covering_steps.len().to_string(),
-            ])?;
+            ];
+            if let Some(cal) = calibration {
+                let (rel, snr) = implied_coupling(&self.spectrum, c, cal.attenuation.eta);
+                row.extend([format!("{rel:.4}"), format!("{snr:.3}")]);
+            }
+            w.write_record(&row)?;
         }
         w.flush()?;
         Ok(())

@@ -1,27 +1,27 @@
-//! A progress bar over tuning steps, drawn on stderr only when it is a terminal.
+//! A progress bar (over steps, reductions...), drawn on stderr only when it is a terminal.
 
 use indicatif::{ProgressBar, ProgressStyle};
 
-/// Progress of a reduction, in steps.
-pub struct StepBar(Option<ProgressBar>);
+/// Progress of long work, counted in `unit`s.
+pub struct Bar(Option<ProgressBar>);
 
-impl StepBar {
-    /// A bar, or nothing when `quiet`.
-    pub fn new(quiet: bool) -> Self {
+impl Bar {
+    /// A bar labelled `label`, or nothing when `quiet`.
+    pub fn new(quiet: bool, label: &'static str, unit: &str) -> Self {
         if quiet {
             return Self(None);
         }
         let bar = ProgressBar::new(0);
         bar.set_style(
-            ProgressStyle::with_template("{msg:>10} [{bar:40}] {pos}/{len} steps ({per_sec}, {eta} left)")
+            ProgressStyle::with_template(&format!("{{msg:>11}} [{{bar:40}}] {{pos}}/{{len}} {unit} ({{eta}} left)"))
                 .unwrap_or_else(|_| ProgressStyle::default_bar())
                 .progress_chars("=> "),
         );
-        bar.set_message("reducing");
+        bar.set_message(label);
         Self(Some(bar))
     }
 
-    /// Shows `done` of `total` steps.
+    /// Shows `done` of `total`.
     pub fn update(&self, done: usize, total: usize) {
         if let Some(bar) = &self.0 {
             bar.set_length(total as u64);

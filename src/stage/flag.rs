@@ -84,6 +84,7 @@ impl SpectrumStage for Flag {
             sp.candidates.push(Candidate {
                 frequency_hz,
                 significance: sp.grand[peak],
+                peak_bin: peak,
                 first_bin: first,
                 last_bin: j - 1,
                 revisit_cavity_hz: frequency_hz * (1.0 + mean_beta_sq / 2.0),

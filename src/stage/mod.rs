@@ -131,6 +131,8 @@ pub struct Candidate {
     pub frequency_hz: f64,
     /// Grand-spectrum value of that bin.
     pub significance: f64,
+    /// Grand-spectrum bin of the most significant value.
+    pub peak_bin: usize,
     /// First and last flagged bin index.
     pub first_bin: usize,
     pub last_bin: usize,
