@@ -11,6 +11,7 @@ pub mod calib;
 pub mod config;
 pub mod dsp;
 pub mod inject;
+pub mod limits;
 pub mod output;
 pub mod physics;
 pub mod pipeline;

@@ -71,6 +71,22 @@ enum Command {
         /// Recorded run files to inject into (the same noise every realisation).
         runs: Vec<PathBuf>,
     },
+    /// Forecast the reach and scan rate of a planned run through this pipeline.
+    /// Example: axsift forecast --config pipeline.toml --run-plan fixtures/demo_run_plan.toml --calibration calib/calibration.json --out forecast/
+    Forecast {
+        /// Pipeline TOML (its filter, baseline and threshold are used).
+        #[arg(long)]
+        config: PathBuf,
+        /// Planned run parameters (TOML).
+        #[arg(long)]
+        run_plan: PathBuf,
+        /// Calibration made with the same pipeline (for eta).
+        #[arg(long)]
+        calibration: PathBuf,
+        /// Output folder for forecast.csv and the reach plot.
+        #[arg(long)]
+        out: PathBuf,
+    },
     /// Simulate an invented night and reduce it with the default pipeline.
     /// Example: axsift demo --out out/demo
     Demo {
@@ -114,6 +130,7 @@ fn main() -> ExitCode {
             read_text(&config).and_then(|text| reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet))
         }
         Command::Calibrate { config, out, scenario, seed, runs } => calibrate(&config, &out, scenario.as_deref(), seed, &runs, cli.quiet),
+        Command::Forecast { config, run_plan, calibration, out } => forecast(&config, &run_plan, &calibration, &out, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
         Command::Plan { config } => read_text(&config).and_then(|text| {
             let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
@@ -178,9 +195,15 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
     })?;
     bar.finish();
     let provenance = output::Provenance::new(config_text, runs).context("hashing the inputs")?;
-    let written = reduction.write(out, config_text, &provenance, calibration.as_ref())?;
+    let limits = calibration
+        .as_ref()
+        .map(|cal| axsift::limits::for_reduction(&plan, &reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))
+        .transpose()
+        .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
+    let calibrated = calibration.as_ref().zip(limits.as_ref());
+    let written = reduction.write(out, config_text, &provenance, calibrated)?;
     if !quiet {
-        print!("{}", output::console::night_report(&reduction, &provenance, calibration.as_ref(), &written));
+        print!("{}", output::console::night_report(&reduction, &provenance, calibrated, &written));
     }
     Ok(())
 }
@@ -209,6 +232,21 @@ fn calibrate(config: &Path, out: &Path, scenario: Option<&Path>, seed: u64, runs
     let written = cal.write(out)?;
     if !quiet {
         print!("{}", output::console::calibration_report(&cal, &written));
+    }
+    Ok(())
+}
+
+fn forecast(config: &Path, run_plan: &Path, calibration: &Path, out: &Path, quiet: bool) -> Result<(), Failure> {
+    let bad = |e: String| Failure::BadInput(anyhow::anyhow!(e));
+    let text = read_text(config)?;
+    let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
+    let cal = calib::Calibration::load_for(calibration, &plan).map_err(bad)?;
+    let run: axsift::limits::forecast::RunPlan = toml::from_str(&read_text(run_plan)?).map_err(|e| bad(format!("{}: {e}", run_plan.display())))?;
+    let chain = axsift::limits::forecast::ChainModel::from_plan(&plan, &cal, axsift::limits::DEFAULT_CONFIDENCE).map_err(bad)?;
+    let fc = axsift::limits::forecast::forecast(&run, &chain).map_err(|e| bad(format!("{}: {e}", run_plan.display())))?;
+    let written = fc.write(out)?;
+    if !quiet {
+        print!("{}", output::console::forecast_report(&fc, &written));
     }
     Ok(())
 }

@@ -24,6 +24,8 @@ pub struct PlanInfo {
     pub halo: HaloModel,
     /// Savitzky-Golay window of the baseline stage, bins.
     pub window_bins: usize,
+    /// Fraction of the line's power left outside the filter kernel.
+    pub tail_fraction: f64,
 }
 
 fn stage_options<T: DeserializeOwned>(text: &str, kind: &str) -> Result<T, String> {
@@ -50,6 +52,7 @@ impl PlanInfo {
             dm_density_gev_per_cm3: rescale.dm_density_gev_per_cm3,
             halo: filter.model(),
             window_bins: baseline.window_bins,
+            tail_fraction: filter.tail_fraction,
         })
     }
 

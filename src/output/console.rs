@@ -2,6 +2,7 @@
 
 use super::{Provenance, Summary, implied_coupling};
 use crate::calib::Calibration;
+use crate::limits::Limits;
 use crate::pipeline::Reduction;
 use crate::runfile::RunReader;
 use std::fmt::Write;
@@ -15,8 +16,9 @@ pub const ADVISORY: &str = "Advice only: axsift reads data and suggests where to
 control the magnet, cryostat or RF chain; retune and ramp only under the laboratory's own safety rules.";
 
 /// The morning summary of a reduction: steps, coverage, grand-spectrum statistics, candidates.
-pub fn night_report(r: &Reduction, provenance: &Provenance, calibration: Option<&Calibration>, written: &[PathBuf]) -> String {
-    let s: Summary = r.summary(provenance, calibration);
+pub fn night_report(r: &Reduction, provenance: &Provenance, calibrated: Option<(&Calibration, &Limits)>, written: &[PathBuf]) -> String {
+    let calibration = calibrated.map(|c| c.0);
+    let s: Summary = r.summary(provenance, calibration, calibrated.map(|c| c.1));
     let mut out = String::new();
     let _ = writeln!(out, "Steps: {} read, {} used, {} cut", s.n_steps_in, s.n_steps_used, s.cuts.len());
     for c in s.cuts.iter().take(MAX_LISTED) {
@@ -46,6 +48,19 @@ pub fn night_report(r: &Reduction, provenance: &Provenance, calibration: Option<
             "Calibration: eta = {:.3} +- {:.3} ({} injections), null spread {:.4}, KS p = {:.3}",
             cal.attenuation.eta, cal.attenuation.standard_error, cal.attenuation.n, cal.null.std, cal.null.ks.p_value
         );
+    }
+    if let Some(l) = &s.limits {
+        let _ = writeln!(
+            out,
+            "Limits ({:.0}% confidence): {:.1}% of bins excluded; |g|/g_KSVZ best {:.3}, median {:.3}, worst {:.3} (candidate bins not excluded until rescans clear them)",
+            100.0 * l.confidence,
+            100.0 * l.excluded_fraction,
+            l.best_rel_ksvz,
+            l.median_rel_ksvz,
+            l.worst_rel_ksvz
+        );
+    } else {
+        let _ = writeln!(out, "Limits: none without a calibration (they need the measured eta; see `axsift calibrate`)");
     }
     if !s.candidates.is_empty() {
         let _ = write!(out, "\n  {:>3}  {:>20}  {:>12}  {:>24}  {:>6}", "#", "RF frequency (MHz)", "significance", "retune cavity to (MHz)", "steps");
@@ -128,6 +143,22 @@ pub fn calibration_report(cal: &Calibration, written: &[PathBuf]) -> String {
         let _ = writeln!(out, "  {:>6.2}  {:>6}  {:>10.3}  {:>8.3}  {:>8.3}", p.snr, p.n, p.efficiency, p.standard_error, p.ideal);
     }
     let _ = writeln!(out, "\nOutputs (calibration.json alone lists the injected frequencies):");
+    for p in written {
+        let _ = writeln!(out, "  {}", p.display());
+    }
+    out
+}
+
+/// The summary of a forecast.
+pub fn forecast_report(fc: &crate::limits::forecast::Forecast, written: &[PathBuf]) -> String {
+    let mut out = String::new();
+    let mut rel: Vec<f64> = fc.reach.iter().map(|r| r.rel_ksvz).collect();
+    rel.sort_by(f64::total_cmp);
+    let _ = writeln!(out, "Planned run: {} steps, {:.2} days", fc.n_steps, fc.planned_days);
+    let _ = writeln!(out, "Reach: |g|/g_KSVZ from {:.3} (best) to {:.3} (worst), median {:.3}", rel[0], rel[rel.len() - 1], rel[rel.len() / 2]);
+    let _ = writeln!(out, "To reach the target coupling: {:.0} s per step, scanning {:.3} MHz per day", fc.integration_for_target_s, fc.rate_mhz_per_day);
+    let _ = writeln!(out, "\n{ADVISORY}");
+    let _ = writeln!(out, "\nOutputs:");
     for p in written {
         let _ = writeln!(out, "  {}", p.display());
     }

@@ -8,6 +8,7 @@ mod plot;
 pub mod progress;
 
 use crate::calib::Calibration;
+use crate::limits::Limits;
 use crate::pipeline::Reduction;
 use hdf5::types::VarLenUnicode;
 use sha2::{Digest, Sha256};
@@ -19,6 +20,9 @@ pub fn register_fonts() -> anyhow::Result<()> {
     plotters::style::register_font("sans-serif", plotters::style::FontStyle::Normal, dejavu::sans::regular())
         .map_err(|_| anyhow::anyhow!("cannot register the built-in font"))
 }
+
+/// Width of the blocks of the coarse limit summary, Hz.
+pub const LIMIT_BLOCK_HZ: f64 = 1e6;
 
 /// Provenance written into every output.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -71,6 +75,40 @@ pub struct Summary<'a> {
     pub provenance: &'a Provenance,
     /// The calibration applied, if `reduce` was given one.
     pub calibration: Option<CalibrationUse>,
+    /// The range of the limits (with a calibration only).
+    pub limits: Option<LimitRange>,
+}
+
+/// The span of a reduction's limits.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct LimitRange {
+    /// Confidence level.
+    pub confidence: f64,
+    /// Fraction of the grand-spectrum bins excluded.
+    pub excluded_fraction: f64,
+    /// Best, median and worst limit relative to KSVZ over the excluded bins.
+    pub best_rel_ksvz: f64,
+    pub median_rel_ksvz: f64,
+    pub worst_rel_ksvz: f64,
+    /// The assumptions behind them.
+    pub assumptions: crate::limits::LimitAssumptions,
+}
+
+impl LimitRange {
+    /// Summarises the limits.
+    pub fn from(l: &Limits) -> Self {
+        let mut rel: Vec<f64> = l.bins.iter().filter(|b| b.excluded).map(|b| b.rel_ksvz).collect();
+        rel.sort_by(f64::total_cmp);
+        let at = |q: f64| if rel.is_empty() { f64::NAN } else { rel[((rel.len() - 1) as f64 * q) as usize] };
+        Self {
+            confidence: l.assumptions.confidence,
+            excluded_fraction: rel.len() as f64 / l.bins.len().max(1) as f64,
+            best_rel_ksvz: at(0.0),
+            median_rel_ksvz: at(0.5),
+            worst_rel_ksvz: at(1.0),
+            assumptions: l.assumptions.clone(),
+        }
+    }
 }
 
 /// What a calibration contributes to a reduction's summary.
@@ -112,7 +150,7 @@ pub fn mean_std(x: &[f64]) -> (f64, f64) {
 
 impl Reduction {
     /// Builds the summary of this reduction.
-    pub fn summary<'a>(&'a self, provenance: &'a Provenance, calibration: Option<&Calibration>) -> Summary<'a> {
+    pub fn summary<'a>(&'a self, provenance: &'a Provenance, calibration: Option<&Calibration>, limits: Option<&Limits>) -> Summary<'a> {
         let sp = &self.spectrum;
         let (grand_mean, grand_std) = mean_std(&sp.grand);
         let raw: Vec<f64> = sp.amplitude.iter().zip(&sp.sigma_a).map(|(a, s)| a / s).collect();
@@ -140,20 +178,31 @@ impl Reduction {
             cuts: &self.cuts,
             provenance,
             calibration: calibration.map(CalibrationUse::from),
+            limits: limits.map(LimitRange::from),
         }
     }
 
     /// Writes all outputs into `dir` (created if needed). Returns the written paths.
-    pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance, calibration: Option<&Calibration>) -> anyhow::Result<Vec<PathBuf>> {
+    pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance, calibrated: Option<(&Calibration, &Limits)>) -> anyhow::Result<Vec<PathBuf>> {
         use anyhow::Context;
         std::fs::create_dir_all(dir).with_context(|| format!("cannot create output folder {}", dir.display()))?;
-        let names = ["results.h5", "candidates.csv", "summary.json", "grand_spectrum.png", "grand_spectrum.svg"];
+        let mut names = vec!["results.h5", "candidates.csv", "summary.json", "grand_spectrum.png", "grand_spectrum.svg"];
         // Temporary names keep the extension: the image encoder picks its format from it.
         let tmp = |n: &str| dir.join(format!(".tmp.{n}"));
-        self.write_hdf5(&tmp(names[0]), config_text, provenance).context("writing results.h5")?;
+        let calibration = calibrated.map(|c| c.0);
+        let limits = calibrated.map(|c| c.1);
+        self.write_hdf5(&tmp(names[0]), config_text, provenance, limits).context("writing results.h5")?;
         self.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
-        std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration))?).context("writing summary.json")?;
+        std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration, limits))?).context("writing summary.json")?;
         plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
+        if let Some(limits) = limits {
+            let more = ["limits.csv", "limit_blocks.csv", "exclusion.png", "exclusion.svg"];
+            limits.write_tables(&tmp(more[0]), &tmp(more[1]), LIMIT_BLOCK_HZ).context("writing the limit tables")?;
+            let points: Vec<(f64, f64)> = limits.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev)).collect();
+            let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.assumptions.confidence, limits.assumptions.eta);
+            crate::limits::exclusion_plot(&points, &title, &tmp(more[2]), &tmp(more[3])).context("drawing the exclusion plot")?;
+            names.extend(more);
+        }
         names
             .iter()
             .map(|n| {
@@ -192,7 +241,7 @@ impl Reduction {
         Ok(())
     }
 
-    fn write_hdf5(&self, path: &Path, config_text: &str, provenance: &Provenance) -> anyhow::Result<()> {
+    fn write_hdf5(&self, path: &Path, config_text: &str, provenance: &Provenance, limits: Option<&Limits>) -> anyhow::Result<()> {
         let sp = &self.spectrum;
         let file = hdf5::File::create(path)?;
         let text = |s: &str| VarLenUnicode::from_str(s).unwrap_or_default();
@@ -210,6 +259,23 @@ impl Reduction {
             let ds = file.new_dataset_builder().with_data(data).create(name)?;
             ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
             ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))?;
+        }
+        if let Some(l) = limits {
+            let column = |f: fn(&crate::limits::BinLimit) -> f64| l.bins.iter().map(f).collect::<Vec<f64>>();
+            let limit_sets: [(&str, Vec<f64>, &str, &str); 5] = [
+                ("mass_uev", column(|b| b.mass_uev), "ueV", "axion mass of the line starting at the bin's lower edge"),
+                ("limit_g_gamma", column(|b| b.g_gamma), "1", "upper limit on |g_gamma| (NaN: not excluded)"),
+                ("limit_g_agg_per_gev", column(|b| b.g_agg_per_gev.abs()), "GeV^-1", "upper limit on |g_agg| (NaN: not excluded)"),
+                ("limit_rel_ksvz", column(|b| b.rel_ksvz), "1", "limit on |g_gamma| relative to KSVZ"),
+                ("limit_rel_dfsz", column(|b| b.rel_dfsz), "1", "limit on |g_gamma| relative to DFSZ"),
+            ];
+            for (name, data, units, description) in limit_sets {
+                let ds = file.new_dataset_builder().with_data(&data).create(name)?;
+                ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
+                ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))?;
+            }
+            let assumptions = serde_json::to_string(&l.assumptions)?;
+            file.new_attr::<VarLenUnicode>().create("limit_assumptions")?.write_scalar(&text(&assumptions))?;
         }
         let cand_f: Vec<f64> = sp.candidates.iter().map(|c| c.frequency_hz).collect();
         let cand_s: Vec<f64> = sp.candidates.iter().map(|c| c.significance).collect();
