@@ -1,27 +1,20 @@
 //! Calibration by injection: null statistics, attenuation, efficiency, radiometer check.
 //! Seeded; each tolerance is stated beside its test.
 
+mod common;
+
+use common::{PIPELINE, null_scenario};
 use axsift::calib::{self, CampaignSpec, NoiseSource, kolmogorov_q, ks_unit_normal};
 use axsift::config;
 use axsift::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_KSVZ};
 use axsift::physics::lineshape::HaloModel;
 use axsift::physics::signal::{CavityState, Haloscope, signal_power_w};
 use axsift::pipeline;
-use axsift::sim::{self, Scenario};
+use axsift::sim;
 use rand::SeedableRng;
 use rand::rngs::StdRng;
 use rand_distr::{Distribution, Normal as NormalDist, StandardNormal};
 
-const DEMO_SCENARIO: &str = include_str!("../fixtures/demo_night.toml");
-const PIPELINE: &str = include_str!("../pipeline.toml");
-
-fn null_scenario(seed: u64) -> Scenario {
-    let mut sc = Scenario::from_toml(DEMO_SCENARIO).unwrap();
-    sc.seed = seed;
-    sc.axion.clear();
-    sc.interference.clear();
-    sc
-}
 
 fn small_spec(seed: u64) -> CampaignSpec {
     CampaignSpec {

@@ -1,6 +1,9 @@
 //! Exclusion limits and forecasts: the limit formula, its coverage, its scaling, and the
 //! forecast against a reduction. Seeded; tolerances stated per test.
 
+mod common;
+
+use common::{PIPELINE, null_scenario};
 use axsift::calib::{self, CampaignSpec, NoiseSource};
 use axsift::config;
 use axsift::dsp::savgol::SavitzkyGolay;
@@ -15,16 +18,6 @@ use rand::rngs::StdRng;
 use rand::{RngExt, SeedableRng};
 use statrs::distribution::{ContinuousCDF, Normal};
 
-const DEMO_SCENARIO: &str = include_str!("../fixtures/demo_night.toml");
-const PIPELINE: &str = include_str!("../pipeline.toml");
-
-fn null_scenario(seed: u64) -> Scenario {
-    let mut sc = Scenario::from_toml(DEMO_SCENARIO).unwrap();
-    sc.seed = seed;
-    sc.axion.clear();
-    sc.interference.clear();
-    sc
-}
 
 fn reduce_scenario(sc: &Scenario, dir: &std::path::Path) -> Reduction {
     let plan = config::load(PIPELINE, "pipeline.toml").unwrap();

@@ -5,6 +5,9 @@
 //! a direct Monte Carlo of the Savitzky-Golay fit followed by the lineshape filter for the
 //! predicted null spread.
 
+mod common;
+
+use common::{PIPELINE, null_scenario};
 use axsift::config;
 use axsift::dsp::savgol::SavitzkyGolay;
 use axsift::physics::lineshape::HaloModel;
@@ -17,17 +20,6 @@ use rand_distr::{Distribution, StandardNormal};
 use statrs::distribution::{ContinuousCDF, Normal};
 use std::path::{Path, PathBuf};
 
-const DEMO_SCENARIO: &str = include_str!("../fixtures/demo_night.toml");
-const PIPELINE: &str = include_str!("../pipeline.toml");
-
-/// The demo facility and scan with no axion and no interference.
-fn null_scenario(seed: u64) -> Scenario {
-    let mut sc = Scenario::from_toml(DEMO_SCENARIO).expect("demo scenario parses");
-    sc.seed = seed;
-    sc.axion.clear();
-    sc.interference.clear();
-    sc
-}
 
 fn simulate_into(sc: &Scenario, dir: &Path) -> PathBuf {
     let path = dir.join("night.h5");
