@@ -507,7 +507,7 @@ fn nan_negative_and_masked_bins_become_coverage_gaps() {
     assert!(sp.grand.iter().all(|&g| g != 0.0));
     assert!(sp.grand[300..n - 300].iter().all(|g| g.is_finite()));
     let prov = axsift::output::Provenance::new(PIPELINE, &[]).unwrap();
-    let s = r.summary(&prov);
+    let s = r.summary(&prov, None);
     assert!(s.n_valid_bins <= s.n_rf_bins - 200, "{} of {}", s.n_valid_bins, s.n_rf_bins);
 }
 
@@ -533,7 +533,7 @@ fn failed_runs_never_replace_good_outputs() {
     let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
     let reduction = pipeline::reduce(&plan, std::slice::from_ref(&good), &|_, _| {}).unwrap();
     let prov = axsift::output::Provenance::new(PIPELINE, std::slice::from_ref(&good)).unwrap();
-    reduction.write(&out, PIPELINE, &prov).expect("first outputs are written");
+    reduction.write(&out, PIPELINE, &prov, None).expect("first outputs are written");
     let before = snapshot(&out);
     assert_eq!(before.len(), 5, "{:?}", before.iter().map(|f| &f.0).collect::<Vec<_>>());
 
@@ -552,7 +552,7 @@ fn failed_runs_never_replace_good_outputs() {
     let second = pipeline::reduce(&plan, std::slice::from_ref(&other), &|_, _| {}).unwrap();
     std::fs::create_dir(out.join(".tmp.summary.json")).unwrap();
     let prov2 = axsift::output::Provenance::new(PIPELINE, std::slice::from_ref(&other)).unwrap();
-    assert!(second.write(&out, PIPELINE, &prov2).is_err(), "writing over a blocked temporary must fail");
+    assert!(second.write(&out, PIPELINE, &prov2, None).is_err(), "writing over a blocked temporary must fail");
     assert_eq!(snapshot(&out), before);
 }
 
