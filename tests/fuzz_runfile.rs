@@ -347,10 +347,11 @@ fn reduce_in_child(config: &Path, run: &Path, out: &Path) -> (Outcome, String) {
         }
         std::thread::sleep(std::time::Duration::from_millis(2));
     };
-    let mut stderr = String::new();
+    let mut raw = Vec::new();
     if let Some(mut e) = child.stderr.take() {
-        let _ = e.read_to_string(&mut stderr);
+        let _ = e.read_to_end(&mut raw);
     }
+    let stderr = String::from_utf8_lossy(&raw).into_owned();
     let outcome = match status.map(|s| s.code()) {
         None => Outcome::Hung,
         Some(Some(0)) => Outcome::Reduced,

@@ -41,7 +41,7 @@ impl RunReader {
         })?;
         let format = attrs::read_string(&file, "format").map_err(|m| invalid("format", None, m))?;
         if format != FORMAT_NAME {
-            return Err(invalid("format", None, format!("is \"{format}\", expected \"{FORMAT_NAME}\"")));
+            return Err(invalid("format", None, format!("is {format:?}, expected {FORMAT_NAME:?}")));
         }
         let version = attrs::read_f64(&file, "format_version").map_err(|m| invalid("format_version", None, m))?;
         if version != f64::from(FORMAT_VERSION) {
