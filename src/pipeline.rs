@@ -8,11 +8,16 @@ use crate::physics::constants::BOLTZMANN_J_PER_K;
 use crate::physics::signal::{CavityState, Haloscope};
 use crate::runfile::{RunFileError, RunReader, StepMeta};
 use crate::stage::{Combiner, NightInfo, Spectrum, SpectrumStage, Step, StepStage, Verdict};
+use ndarray::Array2;
 use rayon::prelude::*;
 use std::path::PathBuf;
+use std::sync::mpsc;
 
 /// Steps read and processed together.
 const CHUNK_STEPS: usize = 64;
+/// Chunks read ahead of the computation; with the chunk in work this bounds the spectra in
+/// memory to (2 + this) chunks, whatever the number of steps.
+const READ_AHEAD_CHUNKS: usize = 2;
 
 /// A step removed by a stage, with the reason.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -177,6 +182,8 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     let mut combiner = combiner.ok_or_else(|| ReduceError::Night("the plan has no combine stage".into()))?;
     let total: usize = readers.iter().map(|r| r.steps().len()).sum();
     let mut cuts = Vec::new();
+    // Step buffers, refilled chunk after chunk.
+    let mut steps: Vec<Step> = Vec::new();
 
     // Survey passes: each surveying stage sees the output of the stages before it.
     for s in 0..step_stages.len() {
@@ -184,7 +191,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
             continue;
         }
         let mut cut_here = Vec::new();
-        for_each_chunk(&readers, &night, injection, |chunk| {
+        for_each_chunk(&readers, &night, injection, &mut steps, |chunk| {
             let (before, rest) = step_stages.split_at_mut(s);
             let kept = run_stages(before, chunk, &night, &mut cut_here, paths);
             for step in kept {
@@ -197,7 +204,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
 
     let mut used_steps = Vec::new();
     let mut done = 0;
-    for_each_chunk(&readers, &night, injection, |chunk| {
+    for_each_chunk(&readers, &night, injection, &mut steps, |chunk| {
         let n = chunk.len();
         let kept = run_stages(&mut step_stages, chunk, &night, &mut cuts, paths);
         for step in kept {
@@ -208,6 +215,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
         progress(done, total);
         Ok(())
     })?;
+    drop(steps);
     let mut spectrum = combiner.finish();
     for stage in &spectrum_stages {
         stage.apply(&mut spectrum, &used_steps).map_err(ReduceError::Night)?;
@@ -247,38 +255,108 @@ fn run_stages<'a>(
     kept
 }
 
-/// Reads every file in chunks of rows, adds the injection if any, and hands each chunk of
-/// fresh steps to `f`.
+/// Spectra of consecutive rows of one file, as stored (f32 kept narrow until widened into a
+/// step, which halves what waits in the read-ahead queue).
+enum Rows {
+    F32(Array2<f32>),
+    F64(Array2<f64>),
+}
+
+impl Rows {
+    fn len(&self) -> usize {
+        match self {
+            Rows::F32(a) => a.nrows(),
+            Rows::F64(a) => a.nrows(),
+        }
+    }
+    /// Replaces `out` with row `r`, as f64.
+    fn widen_into(&self, r: usize, out: &mut Vec<f64>) {
+        out.clear();
+        // Rows of a freshly read array are contiguous; the slice form lets the loop vectorise.
+        match self {
+            Rows::F32(a) => match a.row(r).as_slice() {
+                Some(row) => out.extend(row.iter().map(|&p| f64::from(p))),
+                None => out.extend(a.row(r).iter().map(|&p| f64::from(p))),
+            },
+            Rows::F64(a) => match a.row(r).as_slice() {
+                Some(row) => out.extend_from_slice(row),
+                None => out.extend(a.row(r).iter().copied()),
+            },
+        }
+    }
+}
+
+/// A chunk of rows in flight from the reading thread.
+struct RawChunk {
+    /// Index of the file.
+    file: usize,
+    /// Row of the chunk's first step in that file.
+    first_row: usize,
+    /// Global index of the chunk's first step.
+    first_index: usize,
+    rows: Rows,
+}
+
+/// Reads every file in chunks of rows on one thread (every HDF5 call of the pass happens
+/// there) while the calling thread widens each chunk into `steps` (buffers reused from chunk
+/// to chunk), adds the injection if any, and hands the chunk of fresh steps to `f`. Reading
+/// runs ahead of the computation by at most [`READ_AHEAD_CHUNKS`] chunks.
 fn for_each_chunk(
     readers: &[RunReader],
     night: &NightInfo,
     injection: Option<&Injection>,
+    steps: &mut Vec<Step>,
     mut f: impl FnMut(&mut [Step]) -> Result<(), ReduceError>,
 ) -> Result<(), ReduceError> {
-    let mut index = 0;
-    for (file, reader) in readers.iter().enumerate() {
-        let n = reader.steps().len();
-        for start in (0..n).step_by(CHUNK_STEPS) {
-            let end = (start + CHUNK_STEPS).min(n);
-            let rows = reader.read_rows(start..end)?;
-            let mut chunk: Vec<Step> = rows
-                .outer_iter()
-                .enumerate()
-                .map(|(r, row)| Step {
-                    index: index + r,
-                    file,
-                    index_in_file: start + r,
-                    meta: reader.steps()[start + r],
-                    values: row.to_vec(),
-                    sigma: Vec::new(),
-                })
-                .collect();
-            index += end - start;
-            if let Some(injection) = injection {
-                chunk.par_iter_mut().for_each(|step| injection.apply(step, night));
+    std::thread::scope(|scope| {
+        let (sender, receiver) = mpsc::sync_channel::<Result<RawChunk, RunFileError>>(READ_AHEAD_CHUNKS);
+        scope.spawn(move || {
+            let mut first_index = 0;
+            for (file, reader) in readers.iter().enumerate() {
+                let n = reader.steps().len();
+                for first_row in (0..n).step_by(CHUNK_STEPS) {
+                    let rows = first_row..(first_row + CHUNK_STEPS).min(n);
+                    let count = rows.len();
+                    let read = match reader.read_rows_f32(rows.clone()) {
+                        Ok(Some(narrow)) => Ok(Rows::F32(narrow)),
+                        Ok(None) => reader.read_rows(rows).map(Rows::F64),
+                        Err(e) => Err(e),
+                    };
+                    let failed = read.is_err();
+                    // A closed channel means the consumer stopped on an error of its own.
+                    if sender.send(read.map(|rows| RawChunk { file, first_row, first_index, rows })).is_err() || failed {
+                        return;
+                    }
+                    first_index += count;
+                }
             }
-            f(&mut chunk)?;
+        });
+        for raw in receiver {
+            let raw = raw?;
+            let n = raw.rows.len();
+            fill_steps(steps, &raw, &readers[raw.file], night, injection);
+            f(&mut steps[..n])?;
         }
+        Ok(())
+    })
+}
+
+/// Refills the first rows of `steps` (grown if needed) from a chunk, in parallel.
+fn fill_steps(steps: &mut Vec<Step>, raw: &RawChunk, reader: &RunReader, night: &NightInfo, injection: Option<&Injection>) {
+    let n = raw.rows.len();
+    let meta = &reader.steps()[raw.first_row..raw.first_row + n];
+    if steps.len() < n {
+        steps.resize_with(n, || Step { index: 0, file: 0, index_in_file: 0, meta: meta[0], values: Vec::new(), sigma: Vec::new() });
     }
-    Ok(())
+    steps[..n].par_iter_mut().zip(meta).enumerate().for_each(|(r, (step, meta))| {
+        step.index = raw.first_index + r;
+        step.file = raw.file;
+        step.index_in_file = raw.first_row + r;
+        step.meta = *meta;
+        raw.rows.widen_into(r, &mut step.values);
+        step.sigma.clear();
+        if let Some(injection) = injection {
+            injection.apply(step, night);
+        }
+    });
 }

@@ -14,8 +14,7 @@
 
 use std::sync::Arc;
 
-use rustfft::num_complex::Complex;
-use rustfft::{Fft, FftPlanner};
+use super::correlate::{CorrelationScratch, Correlator};
 
 /// Why a Savitzky–Golay filter could not be built or applied.
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
@@ -183,6 +182,10 @@ impl SavitzkyGolay {
 
     /// Precomputes the FFT plans and kernel spectrum for inputs of exactly
     /// `n_bins` bins, which must be at least [`Self::window_bins`].
+    ///
+    /// The interior is a [`Correlator`] with the interior weights: overlap-save
+    /// FFT blocks of about eight windows (at least 1024 bins), two blocks per
+    /// complex FFT.
     pub fn plan(&self, n_bins: usize) -> Result<SmoothingPlan, SavgolError> {
         if n_bins < self.window {
             return Err(SavgolError::InputTooShort {
@@ -190,26 +193,10 @@ impl SavitzkyGolay {
                 window: self.window,
             });
         }
-        let fft_len = (n_bins + self.window - 1).next_power_of_two();
-        let mut planner = FftPlanner::<f64>::new();
-        let forward = planner.plan_fft_forward(fft_len);
-        let inverse = planner.plan_fft_inverse(fft_len);
-
-        // Reversed weights turn the convolution into the correlation
-        // Σ_j h_j y[p − half + j]; the 1/N of the inverse FFT is folded in.
-        let scale = 1.0 / fft_len as f64;
-        let mut kernel = vec![Complex::new(0.0, 0.0); fft_len];
-        for (m, slot) in kernel.iter_mut().take(self.window).enumerate() {
-            *slot = Complex::new(self.coefficients[self.window - 1 - m] * scale, 0.0);
-        }
-        forward.process(&mut kernel);
-
         Ok(SmoothingPlan {
             filter: self.clone(),
             n_bins,
-            forward,
-            inverse,
-            kernel_spectrum: kernel,
+            interior: Correlator::new(&self.coefficients),
         })
     }
 
@@ -227,32 +214,39 @@ impl SavitzkyGolay {
 
     /// Writes into `out` the fitted polynomial through `samples` (exactly
     /// `window` values) evaluated at window rows `rows`.
-    fn fit_edge(&self, samples: &[f64], rows: std::ops::Range<usize>, out: &mut [f64]) {
+    fn fit_edge(&self, samples: &[f64], rows: std::ops::Range<usize>, out: &mut [f64], amplitudes: &mut Vec<f64>) {
         let cols = self.order + 1;
-        let mut amplitudes = vec![0.0; cols];
+        amplitudes.clear();
+        amplitudes.resize(cols, 0.0);
         for (i, &y) in samples.iter().enumerate() {
             let qi = &self.basis[i * cols..(i + 1) * cols];
             amplitudes.iter_mut().zip(qi).for_each(|(a, q)| *a += q * y);
         }
         for (slot, r) in out.iter_mut().zip(rows) {
             let qr = &self.basis[r * cols..(r + 1) * cols];
-            *slot = qr.iter().zip(&amplitudes).map(|(q, a)| q * a).sum();
+            *slot = qr.iter().zip(amplitudes.iter()).map(|(q, a)| q * a).sum();
         }
     }
 }
 
 /// A Savitzky–Golay smoother prepared for one input length.
 ///
-/// Holds the forward and inverse FFT plans (length the next power of two at
-/// or above `n_bins + window_bins − 1`) and the kernel spectrum. It is
-/// `Send + Sync` and used through `&self`, so one plan can serve many threads.
+/// Holds the interior [`Correlator`] (FFT plans and kernel spectrum). It is
+/// `Send + Sync` and used through `&self`, so one plan can serve many
+/// threads, each with its own [`SmoothingScratch`].
 #[derive(Clone)]
 pub struct SmoothingPlan {
     filter: SavitzkyGolay,
     n_bins: usize,
-    forward: Arc<dyn Fft<f64>>,
-    inverse: Arc<dyn Fft<f64>>,
-    kernel_spectrum: Vec<Complex<f64>>,
+    interior: Correlator,
+}
+
+/// Work buffers of [`SmoothingPlan::smooth_with`]: one per thread, reused from
+/// call to call so that smoothing allocates nothing. Sized on first use.
+#[derive(Debug, Default, Clone)]
+pub struct SmoothingScratch {
+    correlation: CorrelationScratch,
+    amplitudes: Vec<f64>,
 }
 
 impl std::fmt::Debug for SmoothingPlan {
@@ -261,7 +255,7 @@ impl std::fmt::Debug for SmoothingPlan {
             .field("window_bins", &self.filter.window)
             .field("order", &self.filter.order)
             .field("n_bins", &self.n_bins)
-            .field("fft_len", &self.kernel_spectrum.len())
+            .field("block_len", &self.interior.block_len())
             .finish()
     }
 }
@@ -277,14 +271,26 @@ impl SmoothingPlan {
         &self.filter
     }
 
+    /// Length of one overlap-save FFT block of the interior, bins (a power of two).
+    pub fn block_len(&self) -> usize {
+        self.interior.block_len()
+    }
+
     /// Smooths `input` into `out`; both must have exactly [`Self::n_bins`]
-    /// bins. The interior is computed by FFT convolution, the first and last
-    /// `(W−1)/2` bins by evaluating the polynomial fitted to the first and
-    /// last `W` input bins. Allocates one FFT work buffer per call.
-    ///
-    /// A non-finite input value spreads through the FFT to every interior
-    /// output bin.
+    /// bins. As [`Self::smooth_with`] with fresh work buffers.
     pub fn smooth(&self, input: &[f64], out: &mut [f64]) -> Result<(), SavgolError> {
+        self.smooth_with(input, out, &mut SmoothingScratch::default())
+    }
+
+    /// Smooths `input` into `out`; both must have exactly [`Self::n_bins`]
+    /// bins. The interior is computed by overlap-save FFT convolution, the
+    /// first and last `(W−1)/2` bins by evaluating the polynomial fitted to
+    /// the first and last `W` input bins. `scratch` is resized on first use
+    /// and then reused, so repeated calls allocate nothing.
+    ///
+    /// A non-finite input value spreads through the FFT to the interior
+    /// output bins of its block and of the block paired with it.
+    pub fn smooth_with(&self, input: &[f64], out: &mut [f64], scratch: &mut SmoothingScratch) -> Result<(), SavgolError> {
         if input.len() != self.n_bins {
             return Err(SavgolError::LengthMismatch {
                 buffer: "input",
@@ -302,23 +308,11 @@ impl SmoothingPlan {
         let n = self.n_bins;
         let w = self.filter.window;
         let half = (w - 1) / 2;
-
-        let mut buf = vec![Complex::new(0.0, 0.0); self.kernel_spectrum.len()];
-        for (slot, &y) in buf.iter_mut().zip(input) {
-            slot.re = y;
-        }
-        self.forward.process(&mut buf);
-        buf.iter_mut()
-            .zip(&self.kernel_spectrum)
-            .for_each(|(b, k)| *b *= k);
-        self.inverse.process(&mut buf);
-        for p in half..n - half {
-            out[p] = buf[p + half].re;
-        }
-
-        self.filter.fit_edge(&input[..w], 0..half, &mut out[..half]);
-        self.filter
-            .fit_edge(&input[n - w..], w - half..w, &mut out[n - half..]);
+        // Interior bin p is the correlation of the input with the weights at p − half.
+        self.interior.correlate_with(input, &mut out[half..n - half], &mut scratch.correlation);
+        let amplitudes = &mut scratch.amplitudes;
+        self.filter.fit_edge(&input[..w], 0..half, &mut out[..half], amplitudes);
+        self.filter.fit_edge(&input[n - w..], w - half..w, &mut out[n - half..], amplitudes);
         Ok(())
     }
 }

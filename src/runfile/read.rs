@@ -149,6 +149,31 @@ impl RunReader {
         }
         Ok(power)
     }
+
+    /// Reads raw power for `rows` (a hyperslab) without widening, when the file stores f32:
+    /// `Some` with the values as stored, masked bins NaN ("no data"); `None` when the file
+    /// stores f64 (then use [`Self::read_rows`]). Half the memory traffic of `read_rows` and
+    /// no conversion inside the HDF5 library.
+    pub fn read_rows_f32(&self, rows: Range<usize>) -> Result<Option<Array2<f32>>, RunFileError> {
+        let what = format!("reading spectra of steps {}..{} (corrupted file?)", rows.start, rows.end);
+        let hdf5_error = |what: String| {
+            let path = self.path.clone();
+            move |source| RunFileError::Hdf5 { path, what, source }
+        };
+        if self.spectra.dtype().map_err(hdf5_error(what.clone()))?.size() != 4 {
+            return Ok(None);
+        }
+        let mut power: Array2<f32> = self.spectra.read_slice_2d((rows.clone(), ..)).map_err(hdf5_error(what.clone()))?;
+        if let Some(mask) = &self.mask {
+            let flags: Array2<u8> = mask.read_slice_2d((rows, ..)).map_err(hdf5_error(format!("{what} of mask")))?;
+            ndarray::Zip::from(&mut power).and(&flags).for_each(|p, &m| {
+                if m != 0 {
+                    *p = f32::NAN;
+                }
+            });
+        }
+        Ok(Some(power))
+    }
 }
 
 /// Refuses a `spectra` dataset whose declared size the file does not hold: an uncompressed

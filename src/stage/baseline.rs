@@ -11,8 +11,9 @@
 
 use super::{NightInfo, Step, StepStage, Verdict};
 use crate::config::{BuildContext, Built, StageConfig};
-use crate::dsp::savgol::SavitzkyGolay;
+use crate::dsp::savgol::{SavitzkyGolay, SmoothingPlan, SmoothingScratch};
 use serde::Deserialize;
+use std::cell::RefCell;
 
 /// Options of the `baseline` stage.
 #[derive(Debug, Clone, Deserialize)]
@@ -51,7 +52,7 @@ impl StageConfig for BaselineConfig {
         }
         let sg = SavitzkyGolay::new(self.window_bins, self.order).map_err(|e| e.to_string())?;
         Ok(Built::Step(Box::new(Baseline {
-            sg,
+            plan: sg.plan(night.n_bins).map_err(|e| e.to_string())?,
             max_dev: self.max_spread_deviation,
             gain_sum: vec![0.0; night.n_bins],
             gain_count: vec![0u32; night.n_bins],
@@ -64,11 +65,26 @@ impl StageConfig for BaselineConfig {
 }
 
 struct Baseline {
-    sg: SavitzkyGolay,
+    /// The Savitzky-Golay fit, planned once for the night's number of bins.
+    plan: SmoothingPlan,
     max_dev: f64,
     gain_sum: Vec<f64>,
     gain_count: Vec<u32>,
     gain: Vec<f64>,
+}
+
+/// Per-thread buffers of [`Baseline::apply`], reused from step to step.
+#[derive(Default)]
+struct Work {
+    /// P / G with gaps bridged, bins.
+    flat: Vec<f64>,
+    /// The Savitzky-Golay fit of `flat`.
+    fit: Vec<f64>,
+    scratch: SmoothingScratch,
+}
+
+thread_local! {
+    static WORK: RefCell<Work> = RefCell::new(Work::default());
 }
 
 impl StepStage for Baseline {
@@ -77,10 +93,9 @@ impl StepStage for Baseline {
     }
     fn survey(&mut self, step: &Step) {
         for ((s, c), &p) in self.gain_sum.iter_mut().zip(&mut self.gain_count).zip(&step.values) {
-            if p.is_finite() {
-                *s += p;
-                *c += 1;
-            }
+            let valid = p.is_finite();
+            *s += if valid { p } else { 0.0 };
+            *c += u32::from(valid);
         }
     }
     fn finish_survey(&mut self) -> Result<(), String> {
@@ -94,41 +109,89 @@ impl StepStage for Baseline {
         Ok(())
     }
     fn apply(&self, step: &mut Step, _night: &NightInfo) -> Verdict {
-        let flat: Vec<f64> = step.values.iter().zip(&self.gain).map(|(p, g)| p / g).collect();
-        let filled = bridge_gaps(&flat);
-        let Ok(fit) = self.sg.smooth(&filled) else {
-            return Verdict::Cut("too few bins for the Savitzky-Golay window".into());
-        };
-        let (mut sum2, mut n) = (0.0, 0usize);
-        for ((v, &x), &f) in step.values.iter_mut().zip(&flat).zip(&fit) {
-            *v = x / f - 1.0;
-            if v.is_finite() {
-                sum2 += *v * *v;
-                n += 1;
+        let n = self.plan.n_bins();
+        if step.values.len() != n {
+            return Verdict::Cut(format!("{} bins where the Savitzky-Golay fit was planned for {n}", step.values.len()));
+        }
+        WORK.with_borrow_mut(|work| {
+            let Work { flat, fit, scratch } = work;
+            flat.clear();
+            flat.extend(step.values.iter().zip(&self.gain).map(|(p, g)| p / g));
+            bridge_gaps(flat);
+            fit.resize(n, 0.0);
+            self.plan.smooth_with(flat, fit, scratch).expect("buffers have the planned length");
+            // Gaps stay NaN: `flat` was bridged, so take P / G afresh where P is missing.
+            for ((v, g), (&x, &f)) in step.values.iter_mut().zip(&self.gain).zip(flat.iter().zip(fit.iter())) {
+                *v = if v.is_finite() { x / f - 1.0 } else { *v / g };
             }
-        }
-        let measured = (sum2 / n.max(1) as f64).sqrt();
-        let expected = ((1.0 - self.sg.center_weight()) / step.meta.n_averages as f64).sqrt();
-        if (measured / expected - 1.0).abs() > self.max_dev {
-            return Verdict::Cut(format!("residual spread {measured:.3e} departs from predicted {expected:.3e} by more than {:.0}%", 100.0 * self.max_dev));
-        }
-        Verdict::Keep
+            let measured = rms_of_finite(&step.values);
+            let expected = ((1.0 - self.plan.filter().center_weight()) / step.meta.n_averages as f64).sqrt();
+            if (measured / expected - 1.0).abs() > self.max_dev {
+                return Verdict::Cut(format!("residual spread {measured:.3e} departs from predicted {expected:.3e} by more than {:.0}%", 100.0 * self.max_dev));
+            }
+            Verdict::Keep
+        })
     }
 }
 
-/// Linear interpolation across NaN runs (constant extension at the ends).
-fn bridge_gaps(x: &[f64]) -> Vec<f64> {
-    let mut out = x.to_vec();
-    let good: Vec<usize> = (0..x.len()).filter(|&i| x[i].is_finite()).collect();
-    let (Some(&first), Some(&last)) = (good.first(), good.last()) else { return out };
-    for w in good.windows(2) {
-        let (a, b) = (w[0], w[1]);
-        for i in a + 1..b {
-            let t = (i - a) as f64 / (b - a) as f64;
-            out[i] = x[a] + t * (x[b] - x[a]);
+/// Root mean square of the finite values (0 if there are none). Four interleaved partial
+/// sums keep the floating-point additions off one serial chain.
+fn rms_of_finite(x: &[f64]) -> f64 {
+    let (mut sums, mut count) = ([0.0f64; 4], 0usize);
+    let mut chunks = x.chunks_exact(4);
+    for c in &mut chunks {
+        for (s, &v) in sums.iter_mut().zip(c) {
+            let valid = v.is_finite();
+            *s += if valid { v * v } else { 0.0 };
+            count += usize::from(valid);
         }
     }
-    out[..first].fill(x[first]);
-    out[last + 1..].fill(x[last]);
-    out
+    for &v in chunks.remainder() {
+        if v.is_finite() {
+            sums[0] += v * v;
+            count += 1;
+        }
+    }
+    ((sums[0] + sums[1] + (sums[2] + sums[3])) / count.max(1) as f64).sqrt()
+}
+
+/// Linear interpolation across runs of non-finite values, in place (constant extension at
+/// the ends; a slice with no finite value is left as it is).
+fn bridge_gaps(x: &mut [f64]) {
+    let n = x.len();
+    // Fast path: most steps have no gap (counted without branches, so it vectorises).
+    if x.iter().map(|v| usize::from(v.is_finite())).sum::<usize>() == n {
+        return;
+    }
+    let mut previous: Option<usize> = None;
+    let mut i = 0;
+    while i < n {
+        if x[i].is_finite() {
+            previous = Some(i);
+            i += 1;
+            continue;
+        }
+        let start = i;
+        while i < n && !x[i].is_finite() {
+            i += 1;
+        }
+        match (previous, i < n) {
+            (Some(a), true) => {
+                let (xa, xb) = (x[a], x[i]);
+                for (k, slot) in x.iter_mut().enumerate().take(i).skip(start) {
+                    let t = (k - a) as f64 / (i - a) as f64;
+                    *slot = xa + t * (xb - xa);
+                }
+            }
+            (Some(a), false) => {
+                let xa = x[a];
+                x[start..].fill(xa);
+            }
+            (None, true) => {
+                let xb = x[i];
+                x[..i].fill(xb);
+            }
+            (None, false) => {}
+        }
+    }
 }

@@ -65,13 +65,18 @@ impl Combiner for MlCombiner {
             ));
         }
         let first = whole as usize;
-        for (k, (&r, &s)) in step.values.iter().zip(&step.sigma).enumerate() {
-            if r.is_finite() && s.is_finite() && s > 0.0 {
-                let w = 1.0 / (s * s);
-                self.weighted_sum[first + k] += w * r;
-                self.weight[first + k] += w;
-                self.coverage[first + k] += 1;
-            }
+        let n = step.values.len().min(step.sigma.len());
+        let (sums, weights, coverage) = (&mut self.weighted_sum[first..first + n], &mut self.weight[first..first + n], &mut self.coverage[first..first + n]);
+        let (values, sigmas) = (&step.values[..n], &step.sigma[..n]);
+        // Equal-length slices and no branches: the loop vectorises.
+        for k in 0..n {
+            let (r, s) = (values[k], sigmas[k]);
+            let valid = r.is_finite() && s.is_finite() && s > 0.0;
+            let w = if valid { 1.0 / (s * s) } else { 0.0 };
+            // Adding +0.0 leaves a sum that started at +0.0 unchanged.
+            sums[k] += if valid { w * r } else { 0.0 };
+            weights[k] += w;
+            coverage[k] += u32::from(valid);
         }
         Ok(())
     }

@@ -14,6 +14,7 @@
 
 use super::{NightInfo, Spectrum, SpectrumStage};
 use crate::config::{BuildContext, Built, StageConfig};
+use crate::dsp::correlate::{CorrelationScratch, Correlator};
 use crate::physics::lineshape::HaloModel;
 use crate::runfile::StepMeta;
 use rayon::prelude::*;
@@ -111,7 +112,8 @@ impl StageConfig for FilterConfig {
                 let centre_hz = lo + ((s * seg_bins) as f64 + seg_bins as f64 / 2.0) * night.bin_width_hz;
                 let kernel = model.bin_fractions(centre_hz, night.bin_width_hz, self.tail_fraction);
                 let spread = predicted_spread(&kernel, ctx.baseline_kernel.as_deref());
-                Segment { kernel, spread }
+                let squared: Vec<f64> = kernel.iter().map(|l| l * l).collect();
+                Segment { line: Correlator::new(&kernel), line_squared: Correlator::new(&squared), spread }
             })
             .collect();
         Ok(Built::Spectrum(Box::new(OptimalFilter { seg_bins, segments, mean_beta_sq: model.mean_beta_sq() })))
@@ -134,8 +136,13 @@ pub fn predicted_spread(line: &[f64], h: Option<&[f64]>) -> f64 {
     (residual.iter().map(|r| r * r).sum::<f64>() / norm2).sqrt()
 }
 
+/// RF bins whose filter outputs one task computes.
+const PIECE_BINS: usize = 16384;
+
+/// One lineshape kernel L_k and its square, prepared for FFT correlation.
 struct Segment {
-    kernel: Vec<f64>,
+    line: Correlator,
+    line_squared: Correlator,
     spread: f64,
 }
 
@@ -150,23 +157,47 @@ impl SpectrumStage for OptimalFilter {
         let n = sp.combined.len();
         let weights: Vec<f64> = sp.combined_sigma.iter().map(|s| if s.is_finite() { 1.0 / (s * s) } else { 0.0 }).collect();
         let data: Vec<f64> = sp.combined.iter().zip(&weights).map(|(r, w)| if *w > 0.0 { r * w } else { 0.0 }).collect();
-        let out: Vec<(f64, f64, f64)> = (0..n)
-            .into_par_iter()
-            .map(|j| {
-                let seg = &self.segments[j / self.seg_bins];
-                let (mut num, mut den) = (0.0, 0.0);
-                for (k, &l) in seg.kernel.iter().enumerate().take(n - j) {
-                    num += l * data[j + k];
-                    den += l * l * weights[j + k];
+        // with_data[j]: bins with data before j. Every L_k is positive (the lineshape's power
+        // fraction in a bin), so the denominator is zero exactly when no bin under the kernel
+        // holds data; this decides it without the FFT's rounding.
+        let mut with_data = Vec::with_capacity(n + 1);
+        with_data.push(0u32);
+        for w in &weights {
+            with_data.push(with_data.last().copied().unwrap_or(0) + u32::from(*w > 0.0));
+        }
+        let mut amplitude = vec![0.0; n];
+        let mut sigma_a = vec![0.0; n];
+        let mut spread = vec![0.0; n];
+        // Fixed pieces, each computed alone: the result does not depend on the thread count.
+        amplitude.par_chunks_mut(PIECE_BINS).zip(sigma_a.par_chunks_mut(PIECE_BINS)).zip(spread.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
+            |(piece, ((num, den), spread))| {
+                let mut scratch = CorrelationScratch::default();
+                let start = piece * PIECE_BINS;
+                let end = start + num.len();
+                // Split the piece where the kernel changes.
+                let mut a = start;
+                while a < end {
+                    let seg = &self.segments[a / self.seg_bins];
+                    let b = ((a / self.seg_bins + 1) * self.seg_bins).min(end);
+                    let reach = (b + seg.line.kernel_len() - 1).min(n);
+                    let (lo, hi) = (a - start, b - start);
+                    seg.line.correlate_with(&data[a..reach], &mut num[lo..hi], &mut scratch);
+                    seg.line_squared.correlate_with(&weights[a..reach], &mut den[lo..hi], &mut scratch);
+                    for (j, ((num, den), spread)) in num[lo..hi].iter_mut().zip(&mut den[lo..hi]).zip(&mut spread[lo..hi]).enumerate() {
+                        let covered = with_data[(a + j + seg.line.kernel_len()).min(n)] > with_data[a + j];
+                        (*num, *den) = if covered { (*num / *den, den.sqrt().recip()) } else { (f64::NAN, f64::INFINITY) };
+                        *spread = seg.spread;
+                    }
+                    a = b;
                 }
-                if den > 0.0 { (num / den, den.sqrt().recip(), seg.spread) } else { (f64::NAN, f64::INFINITY, seg.spread) }
-            })
-            .collect();
+            },
+        );
+        drop((weights, data, with_data));
         sp.mean_beta_sq = self.mean_beta_sq;
-        sp.amplitude = out.iter().map(|o| o.0).collect();
-        sp.sigma_a = out.iter().map(|o| o.1).collect();
-        sp.predicted_spread = out.iter().map(|o| o.2).collect();
-        sp.grand = out.iter().map(|(a, s, r)| a / (s * r)).collect();
+        sp.grand = amplitude.iter().zip(&sigma_a).zip(&spread).map(|((a, s), r)| a / (s * r)).collect();
+        sp.amplitude = amplitude;
+        sp.sigma_a = sigma_a;
+        sp.predicted_spread = spread;
         Ok(())
     }
 }

@@ -81,13 +81,20 @@ impl StepStage for Rescale {
         let m = step.meta;
         let cavity = CavityState { cavity_freq_hz: m.cavity_freq_hz, loaded_q: m.loaded_q, coupling_beta: m.coupling_beta };
         let noise_w = BOLTZMANN_J_PER_K * m.noise_temp_k * night.bin_width_hz;
-        let root_n = (m.n_averages as f64).sqrt();
-        step.sigma = vec![0.0; step.values.len()];
+        // P_sig(f) = P_sig(f_c) / (1 + 4 Q^2 (f / f_c - 1)^2): the on-resonance power once per
+        // step, the Lorentzian per bin.
+        let on_resonance = noise_w / signal_power_w(self.g_gamma, self.density, &scope, &cavity, m.cavity_freq_hz);
+        // Detuning f_k / f_c - 1 of bin k, as its value at bin 0 plus k steps of dnu_b / f_c.
+        let (detuning_0, detuning_step) = (m.start_freq_hz / m.cavity_freq_hz - 1.0, night.bin_width_hz / m.cavity_freq_hz);
+        let four_q2 = 4.0 * m.loaded_q * m.loaded_q;
+        let inv_root_n = 1.0 / (m.n_averages as f64).sqrt();
+        step.sigma.clear();
+        step.sigma.resize(step.values.len(), 0.0);
         for (k, (v, s)) in step.values.iter_mut().zip(step.sigma.iter_mut()).enumerate() {
-            let f = m.start_freq_hz + k as f64 * night.bin_width_hz;
-            let scale = noise_w / signal_power_w(self.g_gamma, self.density, &scope, &cavity, f);
+            let detuning = detuning_0 + k as f64 * detuning_step;
+            let scale = on_resonance * (1.0 + four_q2 * detuning * detuning);
             *v *= scale;
-            *s = if v.is_finite() { scale / root_n } else { f64::INFINITY };
+            *s = if v.is_finite() { scale * inv_root_n } else { f64::INFINITY };
         }
         Verdict::Keep
     }
