@@ -17,4 +17,5 @@ pub mod physics;
 pub mod pipeline;
 pub mod runfile;
 pub mod sim;
+pub mod state;
 pub mod stage;

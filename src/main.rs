@@ -48,6 +48,10 @@ enum Command {
         /// implied couplings and the measured efficiency to the outputs.
         #[arg(long)]
         calibration: Option<PathBuf>,
+        /// Analysis state folder: add this night to all earlier ones (created if new); the
+        /// outputs then describe every night so far.
+        #[arg(long)]
+        state: Option<PathBuf>,
         /// Run files of the night, in acquisition order.
         #[arg(required = true)]
         runs: Vec<PathBuf>,
@@ -101,6 +105,13 @@ enum Command {
         #[arg(long)]
         config: PathBuf,
     },
+    /// Print an analysis state: nights and files, coverage, candidates by class.
+    /// Example: axsift status --state state/
+    Status {
+        /// Analysis state folder.
+        #[arg(long)]
+        state: PathBuf,
+    },
     /// Validate a run file and summarise it. Example: axsift inspect night.h5
     Inspect {
         /// The run file.
@@ -126,9 +137,11 @@ fn main() -> ExitCode {
     init_logging(cli.verbose, cli.quiet);
     let result = match cli.command {
         Command::Simulate { scenario, out } => simulate(&scenario, &out),
-        Command::Reduce { config, out, calibration, runs } => {
-            read_text(&config).and_then(|text| reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet))
-        }
+        Command::Reduce { config, out, calibration, state, runs } => read_text(&config).and_then(|text| match state {
+            Some(state) => reduce_into_state(&text, &config.display().to_string(), &runs, calibration.as_deref(), &state, &out, cli.quiet),
+            None => reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet),
+        }),
+        Command::Status { state } => status(&state),
         Command::Calibrate { config, out, scenario, seed, runs } => calibrate(&config, &out, scenario.as_deref(), seed, &runs, cli.quiet),
         Command::Forecast { config, run_plan, calibration, out } => forecast(&config, &run_plan, &calibration, &out, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
@@ -205,6 +218,39 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
     if !quiet {
         print!("{}", output::console::night_report(&reduction, &provenance, calibrated, &written));
     }
+    Ok(())
+}
+
+fn reduce_into_state(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: Option<&Path>, state_dir: &Path, out: &Path, quiet: bool) -> Result<(), Failure> {
+    let bad = |e: String| Failure::BadInput(anyhow::anyhow!(e));
+    let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
+    let calibration = calibration.map(|path| calib::Calibration::load_for(path, &plan)).transpose().map_err(bad)?;
+    let mut st = match axsift::state::State::load(state_dir).map_err(|e| bad(e.to_string()))? {
+        Some(st) => st,
+        None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
+    };
+    let update = axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0);
+    let limits = calibration
+        .as_ref()
+        .map(|cal| axsift::limits::for_reduction(&plan, &update.reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))
+        .transpose()
+        .map_err(bad)?;
+    let calibrated = calibration.as_ref().zip(limits.as_ref());
+    let provenance = output::Provenance::new(config_text, runs).context("hashing the inputs")?;
+    let written = update.reduction.write(out, config_text, &provenance, calibrated)?;
+    st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
+    if !quiet {
+        print!("{}", output::console::night_report(&update.reduction, &provenance, calibrated, &written));
+        print!("{}", output::console::state_report(&st, &update.changes));
+    }
+    Ok(())
+}
+
+fn status(state_dir: &Path) -> Result<(), Failure> {
+    let st = axsift::state::State::load(state_dir)
+        .map_err(|e| Failure::BadInput(e.into()))?
+        .ok_or_else(|| Failure::BadInput(anyhow::anyhow!("{}: no state.json here", state_dir.display())))?;
+    print!("{}", output::console::state_report(&st, &[]));
     Ok(())
 }
 

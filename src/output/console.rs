@@ -164,3 +164,42 @@ pub fn forecast_report(fc: &crate::limits::forecast::Forecast, written: &[PathBu
     }
     out
 }
+
+/// The analysis state: nights, coverage, candidates by class with the rescan plan.
+pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
+    use crate::state::Class;
+    let mut out = String::new();
+    let files: usize = st.nights.iter().map(|n| n.files.len()).sum();
+    let covered = st.coverage.iter().filter(|&&c| c > 0).count();
+    let _ = writeln!(out, "\nAnalysis state: {} night(s), {} run file(s), generation {}", st.nights.len(), files, st.generation);
+    let _ = writeln!(
+        out,
+        "  RF {:.6} - {:.6} MHz, {:.3} MHz covered",
+        st.rf_origin_hz / 1e6,
+        (st.rf_origin_hz + st.coverage.len().saturating_sub(1) as f64 * st.bin_width_hz) / 1e6,
+        covered as f64 * st.bin_width_hz / 1e6
+    );
+    for c in changes {
+        let _ = writeln!(out, "  changed: {c}");
+    }
+    let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
+    let _ = writeln!(out, "  candidates: {} new, {} persist, {} cleared", count(Class::New), count(Class::Persists), count(Class::Cleared));
+    let open: Vec<_> = st.candidates.iter().filter(|c| c.class.is_open()).collect();
+    if !open.is_empty() {
+        let _ = writeln!(out, "\n  Rescan plan (target SNR {}):", crate::state::RESCAN_TARGET_SNR);
+        let _ = writeln!(out, "  {:>20}  {:>9}  {:>8}  {:>24}  {:>14}", "RF frequency (MHz)", "class", "grand", "retune cavity to (MHz)", "integrate (s)");
+        for c in open {
+            let _ = writeln!(
+                out,
+                "  {:>20.6}  {:>9}  {:>8.2}  {:>24.6}  {:>14.0}",
+                c.frequency_hz / 1e6,
+                format!("{:?}", c.class).to_lowercase(),
+                c.significance,
+                c.revisit_cavity_hz / 1e6,
+                c.rescan_integration_s
+            );
+        }
+        let _ = writeln!(out, "\n{ADVISORY}");
+    }
+    out
+}

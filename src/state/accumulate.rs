@@ -1,0 +1,187 @@
+//! Adding nights to the state: per-night combination, accumulation on the state's RF grid,
+//! the spectrum stages on the accumulated spectrum, and candidate tracking.
+
+use super::rescan;
+use super::store::{FileRecord, NightRecord, State, StateError};
+use crate::calib::PlanInfo;
+use crate::config::{Built, Plan, load};
+use crate::output::Provenance;
+use crate::physics::constants::BOLTZMANN_J_PER_K;
+use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
+use crate::pipeline::{Reduction, reduce};
+use crate::stage::{NightInfo, Spectrum};
+use sha2::{Digest, Sha256};
+use std::path::PathBuf;
+
+/// Target SNR of a rescan step.
+pub const RESCAN_TARGET_SNR: f64 = 5.0;
+
+/// The outcome of adding one night.
+#[derive(Debug)]
+pub struct Update {
+    /// The accumulated spectrum (all nights so far) with this night's steps and cuts.
+    pub reduction: Reduction,
+    /// Index of the night just added.
+    pub night: usize,
+    /// Changes of candidate class.
+    pub changes: Vec<String>,
+}
+
+/// SHA-256 over every stage's kind and resolved options, in order.
+pub fn plan_hash(plan: &Plan) -> String {
+    let mut h = Sha256::new();
+    for s in &plan.stages {
+        h.update(format!("{}:{:?};", s.entry.kind, s.config));
+    }
+    h.finalize().iter().map(|b| format!("{b:02x}")).collect()
+}
+
+/// Adds each night (a list of run files) in order. The state is changed in memory only;
+/// save it with [`State::save`].
+pub fn add_nights(state: &mut State, plan: &Plan, nights: &[Vec<PathBuf>]) -> Result<Vec<Update>, StateError> {
+    nights.iter().map(|paths| add_night(state, plan, paths)).collect()
+}
+
+fn refused(msg: String) -> StateError {
+    StateError::Refused(msg)
+}
+
+fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update, StateError> {
+    let hash = plan_hash(plan);
+    if state.config_hash != hash {
+        return Err(refused(format!(
+            "the state was built with another pipeline (config hash {} there, {} here); use its pipeline file or start a new state folder",
+            &state.config_hash[..12.min(state.config_hash.len())],
+            &hash[..12]
+        )));
+    }
+    let provenance = Provenance::new(&plan.text, paths).map_err(|e| refused(format!("cannot hash the run files: {e}")))?;
+    for (path, sha) in &provenance.inputs {
+        if let Some((night, f)) = state.holder_of(sha) {
+            return Err(refused(format!("{path}: already in the state (night {night}, as {}); a run file is added once", f.path)));
+        }
+    }
+    let front = up_to_combine(plan)?;
+    let night_red = reduce(&front, paths, &|_, _| {}).map_err(|e| refused(e.to_string()))?;
+    let night_index = state.nights.len();
+    let offset = merge(state, &night_red.spectrum)?;
+
+    let mut spectrum = accumulated(state, night_red.spectrum.step_span_hz);
+    let info = NightInfo { rf_span_hz: (spectrum.freq_hz(0), spectrum.freq_hz(spectrum.combined.len() - 1)), ..night_red.night.clone() };
+    // The whole plan is built for the accumulated grid (so the filter sees the baseline
+    // kernel for its spread prediction); only its spectrum stages are applied.
+    for built in plan.build(&info).map_err(refused)? {
+        if let Built::Spectrum(stage) = built {
+            stage.apply(&mut spectrum, &night_red.used_steps).map_err(refused)?;
+        }
+    }
+
+    let plan_info = PlanInfo::from_plan(plan).map_err(refused)?;
+    let night_cov = &night_red.spectrum.coverage;
+    let covered = |j: usize| j >= offset && night_cov.get(j - offset).is_some_and(|&c| c > 0);
+    let integration = |j: usize| rescan_integration_s(&spectrum, &night_red, &plan_info, j);
+    let match_hz = spectrum.freq_hz(0) * plan_info.halo.mean_beta_sq();
+    let mut tracked = std::mem::take(&mut state.candidates);
+    let changes = rescan::update(&mut tracked, &spectrum, night_index, match_hz, &covered, &integration);
+    state.candidates = tracked;
+
+    state.nights.push(NightRecord {
+        index: night_index,
+        files: provenance
+            .inputs
+            .iter()
+            .zip(paths)
+            .map(|((p, sha), path)| FileRecord { path: p.clone(), sha256: sha.clone(), n_steps: crate::runfile::RunReader::open(path).map(|r| r.steps().len()).unwrap_or(0) })
+            .collect(),
+        n_steps_used: night_red.used_steps.len(),
+    });
+    let reduction = Reduction { spectrum, ..night_red };
+    Ok(Update { reduction, night: night_index, changes })
+}
+
+/// The plan up to and including the combine stage.
+fn up_to_combine(plan: &Plan) -> Result<Plan, StateError> {
+    let mut front = load(&plan.text, "pipeline").map_err(|e| refused(e.to_string()))?;
+    let at = front.stages.iter().position(|s| s.entry.kind == "combine").ok_or_else(|| refused("the pipeline has no combine stage".into()))?;
+    front.stages.truncate(at + 1);
+    Ok(front)
+}
+
+/// Adds a night's combined spectrum to the state's sums; returns the night's offset in bins.
+fn merge(state: &mut State, sp: &Spectrum) -> Result<usize, StateError> {
+    if state.weight.is_empty() {
+        state.bin_width_hz = sp.bin_width_hz;
+        state.rf_origin_hz = sp.rf_start_hz;
+    }
+    if sp.bin_width_hz != state.bin_width_hz {
+        return Err(refused(format!("bin width {} Hz differs from the state's {} Hz", sp.bin_width_hz, state.bin_width_hz)));
+    }
+    let offset = (sp.rf_start_hz - state.rf_origin_hz) / state.bin_width_hz;
+    let whole = offset.round();
+    if (offset - whole).abs() > 1e-3 {
+        return Err(refused(format!("the night's RF grid lies {:.4} bins off the state's grid (origin {} Hz)", offset - whole, state.rf_origin_hz)));
+    }
+    if whole < 0.0 {
+        let pad = (-whole) as usize;
+        for v in [&mut state.weight, &mut state.weighted_sum] {
+            v.splice(0..0, std::iter::repeat_n(0.0, pad));
+        }
+        state.coverage.splice(0..0, std::iter::repeat_n(0, pad));
+        state.rf_origin_hz = sp.rf_start_hz;
+    }
+    let first = whole.max(0.0) as usize;
+    let needed = first + sp.combined.len();
+    if state.weight.len() < needed {
+        state.weight.resize(needed, 0.0);
+        state.weighted_sum.resize(needed, 0.0);
+        state.coverage.resize(needed, 0);
+    }
+    for (k, (&c, &s)) in sp.combined.iter().zip(&sp.combined_sigma).enumerate() {
+        if c.is_finite() && s.is_finite() && s > 0.0 {
+            let w = 1.0 / (s * s);
+            state.weight[first + k] += w;
+            state.weighted_sum[first + k] += w * c;
+            state.coverage[first + k] += sp.coverage[k];
+        }
+    }
+    Ok(first)
+}
+
+/// The combined spectrum of all nights so far.
+fn accumulated(state: &State, step_span_hz: f64) -> Spectrum {
+    Spectrum {
+        rf_start_hz: state.rf_origin_hz,
+        bin_width_hz: state.bin_width_hz,
+        combined: state.weighted_sum.iter().zip(&state.weight).map(|(s, w)| if *w > 0.0 { s / w } else { f64::NAN }).collect(),
+        combined_sigma: state.weight.iter().map(|w| if *w > 0.0 { w.sqrt().recip() } else { f64::INFINITY }).collect(),
+        coverage: state.coverage.clone(),
+        step_span_hz,
+        ..Spectrum::default()
+    }
+}
+
+/// Integration of one rescan step, tuned onto the candidate (Lorentzian = 1), that brings a
+/// signal of the candidate's present amplitude A to [`RESCAN_TARGET_SNR`] with the night's
+/// median T_sys, Q_L and beta: t = (SNR s / (A P_ref / k_B T))^2 dnu_b / sum L^2 (radiometer
+/// equation through the optimal filter; s the predicted spread). Infinite if A <= 0.
+fn rescan_integration_s(sp: &Spectrum, night: &Reduction, info: &PlanInfo, j: usize) -> f64 {
+    let a = sp.amplitude.get(j).copied().unwrap_or(f64::NAN);
+    if !(a > 0.0) || night.used_steps.is_empty() {
+        return f64::INFINITY;
+    }
+    let median = |f: fn(&crate::runfile::StepMeta) -> f64| {
+        let mut v: Vec<f64> = night.used_steps.iter().map(|(_, m)| f(m)).collect();
+        v.sort_by(f64::total_cmp);
+        v[v.len() / 2]
+    };
+    let h = &night.night.headers[0];
+    let scope = Haloscope { magnet_field_t: h.magnet_field_t, cavity_volume_m3: h.cavity_volume_m3, form_factor: h.form_factor };
+    let nu = sp.freq_hz(j) - sp.bin_width_hz / 2.0;
+    let cavity = CavityState { cavity_freq_hz: nu, loaded_q: median(|m| m.loaded_q), coupling_beta: median(|m| m.coupling_beta) };
+    let p_w = signal_power_w(info.reference_g_gamma, info.dm_density_gev_per_cm3, &scope, &cavity, nu);
+    let line = info.halo.bin_fractions(nu, sp.bin_width_hz, 1e-3);
+    let sum_l2: f64 = line.iter().map(|l| l * l).sum();
+    let spread = sp.predicted_spread.get(j).copied().unwrap_or(1.0);
+    let per_root_s = a * p_w / (BOLTZMANN_J_PER_K * median(|m| m.noise_temp_k)) * (sum_l2 / sp.bin_width_hz).sqrt() / spread;
+    (RESCAN_TARGET_SNR / per_root_s).powi(2)
+}
