@@ -42,7 +42,8 @@ impl StageConfig for FlagConfig {
             (None, Some(_), Some(c)) if !(0.5..1.0).contains(&c) => vec![("confidence".into(), format!("{c} must be in [0.5, 1)"))],
             _ => match self.threshold() {
                 Some(t) if t > 0.0 && t.is_finite() => Vec::new(),
-                t => vec![("threshold".into(), format!("resolves to {t:?}; it must be > 0"))],
+                Some(t) => vec![("threshold".into(), format!("resolves to {t}; it must be > 0"))],
+                None => vec![("threshold".into(), "cannot be resolved from target_snr and confidence".into())],
             },
         }
     }
