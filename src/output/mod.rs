@@ -40,7 +40,13 @@ impl Provenance {
     pub fn new(config_text: &str, inputs: &[PathBuf]) -> std::io::Result<Self> {
         let inputs = inputs
             .iter()
-            .map(|p| Ok((p.display().to_string(), hex(&Sha256::digest(std::fs::read(p)?)))))
+            .map(|p| {
+                // Streamed through the hasher: a run file may be larger than the memory the
+                // reduction itself needs.
+                let mut hasher = Sha256::new();
+                std::io::copy(&mut std::io::BufReader::with_capacity(1 << 20, std::fs::File::open(p)?), &mut hasher)?;
+                Ok((p.display().to_string(), hex(&hasher.finalize())))
+            })
             .collect::<std::io::Result<_>>()?;
         Ok(Self { tool_version: env!("CARGO_PKG_VERSION").into(), config_sha256: hex(&Sha256::digest(config_text)), inputs })
     }
@@ -280,8 +286,14 @@ impl Reduction {
         let cand_f: Vec<f64> = sp.candidates.iter().map(|c| c.frequency_hz).collect();
         let cand_s: Vec<f64> = sp.candidates.iter().map(|c| c.significance).collect();
         let g = file.create_group("candidates")?;
-        g.new_dataset_builder().with_data(&cand_f).create("frequency_hz")?;
-        g.new_dataset_builder().with_data(&cand_s).create("significance")?;
+        for (name, data, units, description) in [
+            ("frequency_hz", &cand_f, "Hz", "axion frequency hypothesis (line start) of each candidate's most significant bin"),
+            ("significance", &cand_s, "1", "grand-spectrum value of each candidate's most significant bin"),
+        ] {
+            let ds = g.new_dataset_builder().with_data(data).create(name)?;
+            ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
+            ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))?;
+        }
         file.new_attr::<VarLenUnicode>().create("tool_version")?.write_scalar(&text(&provenance.tool_version))?;
         file.new_attr::<VarLenUnicode>().create("config_sha256")?.write_scalar(&text(&provenance.config_sha256))?;
         file.new_attr::<VarLenUnicode>().create("config_text")?.write_scalar(&text(config_text))?;
