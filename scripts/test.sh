@@ -1,5 +1,6 @@
 #!/usr/bin/env bash
-# The whole test suite: Rust tests, then the scipy reference checks.
+# The whole test suite: Rust tests, then the scipy reference checks and the h5py check of
+# a demo run's outputs.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 bash scripts/setup.sh
@@ -8,3 +9,7 @@ bash scripts/setup.sh
 export HDF5_USE_FILE_LOCKING=FALSE
 cargo test --release
 python3 scripts/check_savgol.py
+demo_out="$(mktemp -d)"
+trap 'rm -rf "$demo_out"' EXIT
+./target/release/axsift demo --quiet --out "$demo_out"
+python3 scripts/check_results.py "$demo_out"

@@ -15,6 +15,7 @@ pub mod limits;
 pub mod output;
 pub mod physics;
 pub mod pipeline;
+pub mod report;
 pub mod runfile;
 pub mod sim;
 pub mod state;

@@ -48,6 +48,9 @@ enum Command {
         /// implied couplings and the measured efficiency to the outputs.
         #[arg(long)]
         calibration: Option<PathBuf>,
+        /// Also write the morning report, report.html (one self-contained page).
+        #[arg(long)]
+        report: bool,
         /// Analysis state folder: add this night to all earlier ones (created if new); the
         /// outputs then describe every night so far.
         #[arg(long)]
@@ -98,6 +101,15 @@ enum Command {
         #[arg(long, default_value = "out/demo")]
         out: PathBuf,
     },
+    /// Rebuild the morning report (report.html) of an output folder written by `reduce`.
+    /// Example: axsift report results/ --calibration calib/calibration.json
+    Report {
+        /// Output folder of `reduce` (holding summary.json and results.h5).
+        dir: PathBuf,
+        /// The calibration that reduction used: adds the full calibration section.
+        #[arg(long)]
+        calibration: Option<PathBuf>,
+    },
     /// Print the resolved pipeline with every default filled in.
     /// Example: axsift plan --config pipeline.toml
     Plan {
@@ -116,6 +128,9 @@ enum Command {
     Inspect {
         /// The run file.
         file: PathBuf,
+        /// Print machine-readable JSON instead of text.
+        #[arg(long)]
+        json: bool,
     },
 }
 
@@ -137,20 +152,23 @@ fn main() -> ExitCode {
     init_logging(cli.verbose, cli.quiet);
     let result = match cli.command {
         Command::Simulate { scenario, out } => simulate(&scenario, &out),
-        Command::Reduce { config, out, calibration, state, runs } => read_text(&config).and_then(|text| match state {
-            Some(state) => reduce_into_state(&text, &config.display().to_string(), &runs, calibration.as_deref(), &state, &out, cli.quiet),
-            None => reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet),
-        }),
+        Command::Reduce { config, out, calibration, state, runs, report } => read_text(&config)
+            .and_then(|text| match state {
+                Some(state) => reduce_into_state(&text, &config.display().to_string(), &runs, calibration.as_deref(), &state, &out, cli.quiet),
+                None => reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet),
+            })
+            .and_then(|()| if report { write_report(&out, calibration.as_deref(), cli.quiet) } else { Ok(()) }),
         Command::Status { state } => status(&state),
         Command::Calibrate { config, out, scenario, seed, runs } => calibrate(&config, &out, scenario.as_deref(), seed, &runs, cli.quiet),
         Command::Forecast { config, run_plan, calibration, out } => forecast(&config, &run_plan, &calibration, &out, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
+        Command::Report { dir, calibration } => write_report(&dir, calibration.as_deref(), cli.quiet),
         Command::Plan { config } => read_text(&config).and_then(|text| {
             let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
             print!("{}", plan.describe());
             Ok(())
         }),
-        Command::Inspect { file } => inspect(&file),
+        Command::Inspect { file, json } => inspect(&file, json),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -302,11 +320,26 @@ fn demo(out: &Path, quiet: bool) -> Result<(), Failure> {
     let run = out.join("night.h5");
     tracing::info!("simulating the demo night \"{}\"", sc.run_label);
     write_simulation(&sc, &run)?;
-    reduce(DEFAULT_PIPELINE, "pipeline.toml (built in)", &[run], None, out, quiet)
+    reduce(DEFAULT_PIPELINE, "pipeline.toml (built in)", &[run], None, out, quiet)?;
+    write_report(out, None, quiet)
 }
 
-fn inspect(file: &Path) -> Result<(), Failure> {
+/// Writes report.html into an output folder of `reduce`, from the files there.
+fn write_report(dir: &Path, calibration: Option<&Path>, quiet: bool) -> Result<(), Failure> {
+    let data = axsift::report::ReportData::from_folder(dir, calibration).map_err(Failure::BadInput)?;
+    let path = axsift::report::write(dir, &data)?;
+    if !quiet {
+        println!("Report: {}", path.display());
+    }
+    Ok(())
+}
+
+fn inspect(file: &Path, json: bool) -> Result<(), Failure> {
     let r = runfile::RunReader::open(file).map_err(|e| Failure::BadInput(e.into()))?;
+    if json {
+        println!("{}", serde_json::to_string_pretty(&axsift::report::run_file::describe(&r)).context("formatting JSON")?);
+        return Ok(());
+    }
     print!("{}", output::console::run_file_report(&r));
     Ok(())
 }
