@@ -40,7 +40,7 @@ fn plan_prints_every_stage() {
     for kind in ["ingest", "baseline", "rescale", "combine", "filter", "flag"] {
         assert!(text.contains(kind), "{kind} missing from:\n{text}");
     }
-    assert!(text.contains("window_bins: 401"), "{text}");
+    assert!(text.contains("window_bins = 401"), "{text}");
 }
 
 /// Bad input exits with status 2 and a message naming the file; no panic.

@@ -47,6 +47,13 @@ pub trait StageConfig: fmt::Debug + Send + Sync {
     fn baseline_kernel(&self) -> Option<Vec<f64>> {
         None
     }
+    /// Every option with its resolved value (defaults filled in), as a TOML table.
+    fn options(&self) -> toml::Table;
+}
+
+/// The options of a stage config as a TOML table (for [`StageConfig::options`]).
+pub fn options_of<C: serde::Serialize>(config: &C) -> toml::Table {
+    toml::Table::try_from(config).unwrap_or_default()
 }
 
 /// One stage of a loaded plan.
@@ -175,15 +182,10 @@ impl Plan {
     pub fn describe(&self) -> String {
         let mut out = String::new();
         for (i, s) in self.stages.iter().enumerate() {
-            out.push_str(&format!(
-                "{:>2}. {:<9} {:?} -> {:?}   {}\n     {:?}\n",
-                i + 1,
-                s.entry.kind,
-                s.entry.input,
-                s.entry.output,
-                s.entry.summary,
-                s.config
-            ));
+            out.push_str(&format!("{:>2}. {:<9} {:?} -> {:?}: {}\n", i + 1, s.entry.kind, s.entry.input, s.entry.output, s.entry.summary));
+            for (key, value) in s.config.options() {
+                out.push_str(&format!("      {key} = {value}\n"));
+            }
         }
         out
     }

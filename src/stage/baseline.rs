@@ -16,7 +16,7 @@ use serde::Deserialize;
 use std::cell::RefCell;
 
 /// Options of the `baseline` stage.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, serde::Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct BaselineConfig {
     /// Savitzky-Golay window, bins (odd; several times the signal width).
@@ -33,6 +33,9 @@ fn default_spread() -> f64 {
 }
 
 impl StageConfig for BaselineConfig {
+    fn options(&self) -> toml::Table {
+        crate::config::options_of(self)
+    }
     fn validate(&self) -> Vec<(String, String)> {
         let mut p = Vec::new();
         if self.window_bins < 3 || self.window_bins % 2 == 0 {

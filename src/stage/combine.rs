@@ -9,7 +9,7 @@ use crate::config::{BuildContext, Built, StageConfig};
 use serde::Deserialize;
 
 /// Options of the `combine` stage.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, serde::Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct CombineConfig {
     /// Largest accepted offset of a step from the RF grid, in bins.
@@ -22,6 +22,9 @@ fn default_tolerance() -> f64 {
 }
 
 impl StageConfig for CombineConfig {
+    fn options(&self) -> toml::Table {
+        crate::config::options_of(self)
+    }
     fn validate(&self) -> Vec<(String, String)> {
         if self.max_misalignment_bins > 0.0 && self.max_misalignment_bins < 0.5 {
             Vec::new()

@@ -21,7 +21,7 @@ use rayon::prelude::*;
 use serde::Deserialize;
 
 /// Halo model used by the filter.
-#[derive(Debug, Clone, Copy, Deserialize, PartialEq)]
+#[derive(Debug, Clone, Copy, Deserialize, serde::Serialize, PartialEq)]
 #[serde(rename_all = "snake_case")]
 pub enum Halo {
     /// Isotropic Maxwellian at rest (Turner 1990).
@@ -31,7 +31,7 @@ pub enum Halo {
 }
 
 /// Options of the `filter` stage.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, serde::Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct FilterConfig {
     /// "maxwellian" or "lab_frame".
@@ -84,6 +84,9 @@ impl FilterConfig {
 }
 
 impl StageConfig for FilterConfig {
+    fn options(&self) -> toml::Table {
+        crate::config::options_of(self)
+    }
     fn validate(&self) -> Vec<(String, String)> {
         let mut p = Vec::new();
         for (k, v) in [("v_rms_km_s", self.v_rms_km_s), ("v0_km_s", self.v0_km_s)] {

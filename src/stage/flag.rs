@@ -12,7 +12,7 @@ use serde::Deserialize;
 use statrs::distribution::{ContinuousCDF, Normal};
 
 /// Options of the `flag` stage: either `threshold`, or `target_snr` with `confidence`.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, serde::Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct FlagConfig {
     /// Threshold on the grand spectrum (> 0).
@@ -35,6 +35,9 @@ impl FlagConfig {
 }
 
 impl StageConfig for FlagConfig {
+    fn options(&self) -> toml::Table {
+        crate::config::options_of(self)
+    }
     fn validate(&self) -> Vec<(String, String)> {
         match (self.threshold, self.target_snr, self.confidence) {
             (Some(_), Some(_), _) | (Some(_), _, Some(_)) => vec![("threshold".into(), "give either threshold or target_snr with confidence, not both".into())],

@@ -9,7 +9,7 @@ use crate::config::{BuildContext, Built, StageConfig};
 use serde::Deserialize;
 
 /// Options of the `ingest` stage. Ranges are inclusive `[min, max]`.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, serde::Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct IngestConfig {
     /// Accepted system noise temperature, kelvin.
@@ -34,6 +34,9 @@ fn default_beta() -> [f64; 2] {
 }
 
 impl StageConfig for IngestConfig {
+    fn options(&self) -> toml::Table {
+        crate::config::options_of(self)
+    }
     fn validate(&self) -> Vec<(String, String)> {
         [("noise_temp_k_range", self.noise_temp_k_range), ("loaded_q_range", self.loaded_q_range), ("coupling_beta_range", self.coupling_beta_range)]
             .into_iter()

@@ -12,7 +12,7 @@ use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
 use serde::Deserialize;
 
 /// The reference axion-photon coupling, as a model name or a value of g_gamma.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, serde::Serialize)]
 #[serde(untagged)]
 pub enum Reference {
     /// "ksvz" or "dfsz".
@@ -22,7 +22,7 @@ pub enum Reference {
 }
 
 /// Options of the `rescale` stage.
-#[derive(Debug, Clone, Deserialize)]
+#[derive(Debug, Clone, Deserialize, serde::Serialize)]
 #[serde(deny_unknown_fields)]
 pub struct RescaleConfig {
     /// Reference coupling: "ksvz", "dfsz" or a number (g_gamma).
@@ -53,6 +53,9 @@ impl RescaleConfig {
 }
 
 impl StageConfig for RescaleConfig {
+    fn options(&self) -> toml::Table {
+        crate::config::options_of(self)
+    }
     fn validate(&self) -> Vec<(String, String)> {
         let mut p = Vec::new();
         if self.g_gamma().is_none() {
