@@ -1,6 +1,10 @@
 //! Typed reading of root attributes, with messages that say what was found instead.
 
-use hdf5::types::{TypeDescriptor, VarLenAscii, VarLenUnicode};
+use hdf5::types::{FixedAscii, FixedUnicode, TypeDescriptor, VarLenAscii, VarLenUnicode};
+
+/// Longest fixed-length string attribute read, in bytes (a fixed-length string is read into a
+/// buffer of this size; the writer stores no longer ones).
+pub const MAX_FIXED_STRING_BYTES: usize = 4096;
 
 /// A short name of a stored type, for messages.
 pub fn type_name(t: &TypeDescriptor) -> String {
@@ -41,16 +45,110 @@ pub fn read_f64(file: &hdf5::File, name: &str) -> Result<f64, String> {
     v.map_err(|e| format!("cannot be read as a number: {e}"))
 }
 
-/// Reads a variable-length string scalar attribute.
+/// Reads a scalar string attribute, variable-length or fixed-length, ASCII or UTF-8 (writers
+/// differ). Bytes that are not UTF-8 are replaced by U+FFFD, so a foreign or damaged label
+/// never makes an invalid `String`.
 pub fn read_string(file: &hdf5::File, name: &str) -> Result<String, String> {
+    // An object header that fails its checksum (1.10 format) is a damaged file, not a missing
+    // attribute; `format` is read first, so this is where a damaged root header shows.
+    if let Err(e) = file.attr(name) {
+        if !e.contains_minor(hdf5::MinorErrorCode::NotFound) {
+            return Err(format!("attribute cannot be read (corrupted file?): {e}"));
+        }
+    }
     let (attr, t) = scalar_attr(file, name)?;
     if !attr.shape().is_empty() {
         return Err("attribute is an array, expected a single string".into());
     }
+    let text = |bytes: &[u8]| String::from_utf8_lossy(bytes).into_owned();
     match t {
-        TypeDescriptor::VarLenUnicode => attr.read_scalar::<VarLenUnicode>().map(|s| s.as_str().to_string()),
-        TypeDescriptor::VarLenAscii => attr.read_scalar::<VarLenAscii>().map(|s| s.as_str().to_string()),
+        TypeDescriptor::VarLenUnicode => attr.read_scalar::<VarLenUnicode>().map(|s| text(s.as_bytes())),
+        TypeDescriptor::VarLenAscii => attr.read_scalar::<VarLenAscii>().map(|s| text(s.as_bytes())),
+        TypeDescriptor::FixedUnicode(n) | TypeDescriptor::FixedAscii(n) if n > MAX_FIXED_STRING_BYTES => {
+            return Err(format!("attribute is a fixed-length string of {n} bytes, longer than the {MAX_FIXED_STRING_BYTES} accepted"));
+        }
+        // The library converts the stored length and padding (null-terminated, null- or
+        // space-padded) to a null-padded buffer of the largest accepted size.
+        TypeDescriptor::FixedUnicode(_) => attr.read_scalar::<FixedUnicode<MAX_FIXED_STRING_BYTES>>().map(|s| text(s.as_bytes())),
+        TypeDescriptor::FixedAscii(_) => attr.read_scalar::<FixedAscii<MAX_FIXED_STRING_BYTES>>().map(|s| text(s.as_bytes())),
         other => return Err(format!("attribute is a {}, expected a variable-length string", type_name(&other))),
     }
     .map_err(|e| format!("cannot be read as a string: {e}"))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::str::FromStr;
+
+    fn file_with(name: &str, write: impl FnOnce(&hdf5::File) -> hdf5::Result<()>) -> (tempfile::TempDir, hdf5::File) {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join(name);
+        let file = hdf5::File::create(&path).unwrap();
+        write(&file).unwrap();
+        file.close().unwrap();
+        let file = hdf5::File::open(&path).unwrap();
+        (dir, file)
+    }
+
+    #[test]
+    fn reads_variable_and_fixed_length_strings() {
+        let (_dir, file) = file_with("kinds.h5", |f| {
+            f.new_attr::<VarLenUnicode>().create("vu")?.write_scalar(&VarLenUnicode::from_str("night 3 µ").unwrap())?;
+            f.new_attr::<VarLenAscii>().create("va")?.write_scalar(&VarLenAscii::from_ascii("axsift-run").unwrap())?;
+            // Exactly as long as the text: no terminating NUL is stored.
+            f.new_attr::<FixedAscii<10>>().create("fa")?.write_scalar(&FixedAscii::<10>::from_ascii("axsift-run").unwrap())?;
+            f.new_attr::<FixedUnicode<32>>().create("fu")?.write_scalar(&FixedUnicode::<32>::from_str("cooldown ½").unwrap())?;
+            f.new_attr::<FixedAscii<1>>().create("empty")?.write_scalar(&FixedAscii::<1>::new())
+        });
+        assert_eq!(read_string(&file, "vu").unwrap(), "night 3 µ");
+        assert_eq!(read_string(&file, "va").unwrap(), "axsift-run");
+        assert_eq!(read_string(&file, "fa").unwrap(), "axsift-run");
+        assert_eq!(read_string(&file, "fu").unwrap(), "cooldown ½");
+        assert_eq!(read_string(&file, "empty").unwrap(), "");
+    }
+
+    #[test]
+    fn refuses_non_strings_arrays_and_oversized_fixed_strings() {
+        let (_dir, file) = file_with("bad.h5", |f| {
+            f.new_attr::<f64>().create("number")?.write_scalar(&1.5)?;
+            f.new_attr_builder().with_data(&[FixedAscii::<4>::from_ascii("ab").unwrap()]).create("one")?;
+            let words: Vec<FixedAscii<4>> = ["ab", "cd"].iter().map(|w| FixedAscii::from_ascii(w).unwrap()).collect();
+            f.new_attr_builder().with_data(&words).create("two")?;
+            f.new_attr_builder().empty_as(TypeDescriptor::FixedAscii(MAX_FIXED_STRING_BYTES + 1)).create("long").map(|_| ())
+        });
+        assert_eq!(read_string(&file, "number").unwrap_err(), "attribute is a 64-bit float, expected a variable-length string");
+        assert_eq!(read_string(&file, "one").unwrap_err(), "attribute is an array, expected a single string");
+        assert_eq!(read_string(&file, "two").unwrap_err(), "attribute has shape [2], expected a single value");
+        let long = read_string(&file, "long").unwrap_err();
+        assert!(long.contains("4097 bytes") && long.contains("4096 accepted"), "{long}");
+        assert_eq!(read_string(&file, "absent").unwrap_err(), "attribute is missing");
+    }
+
+    #[test]
+    fn damaged_header_is_not_called_a_missing_attribute() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("damaged.h5");
+        let file = hdf5::File::with_options().with_fapl(|p| p.libver_v110()).create(&path).unwrap();
+        file.new_attr::<FixedAscii<10>>().create("format").unwrap().write_scalar(&FixedAscii::<10>::from_ascii("axsift-run").unwrap()).unwrap();
+        file.close().unwrap();
+        let mut bytes = std::fs::read(&path).unwrap();
+        // A byte inside the root object header (after its "OHDR" signature), which carries a checksum.
+        let header = bytes.windows(4).position(|w| w == b"OHDR").unwrap();
+        bytes[header + 12] ^= 0x5a;
+        std::fs::write(&path, &bytes).unwrap();
+        let file = hdf5::File::open(&path).unwrap();
+        let e = read_string(&file, "format").unwrap_err();
+        assert!(e.starts_with("attribute cannot be read (corrupted file?): ") && e.contains("checksum"), "{e}");
+    }
+
+    #[test]
+    fn bytes_that_are_not_utf8_are_replaced() {
+        let (_dir, file) = file_with("latin1.h5", |f| {
+            // 0xE9 is a Latin-1 "é": stored by some writers in a string declared ASCII.
+            let raw = unsafe { FixedAscii::<8>::from_ascii_unchecked(b"caf\xe9") };
+            f.new_attr::<FixedAscii<8>>().create("label")?.write_scalar(&raw)
+        });
+        assert_eq!(read_string(&file, "label").unwrap(), "caf\u{fffd}");
+    }
 }

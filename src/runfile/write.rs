@@ -1,10 +1,25 @@
 //! Writing run files (used by the simulator and by tests).
 
 use super::{FORMAT_NAME, FORMAT_VERSION, RunFileError, RunHeader, StepMeta};
-use hdf5::types::VarLenUnicode;
+use hdf5::types::{FixedUnicode, TypeDescriptor};
 use ndarray::ArrayView1;
 use std::path::{Path, PathBuf};
 use std::str::FromStr;
+
+/// Longest string attribute the writer stores, in bytes of UTF-8 (the reader accepts the same).
+const MAX_TEXT_BYTES: usize = super::attrs::MAX_FIXED_STRING_BYTES;
+
+/// Writes `value` as a scalar fixed-length UTF-8 string attribute sized to the text. Fixed-length
+/// strings live in the attribute's own (checksummed) object header; a variable-length string
+/// would live in the global heap, which carries no checksum and which the HDF5 library follows
+/// without checks when the file is corrupted.
+fn write_text(file: &hdf5::File, name: &str, value: &str) -> hdf5::Result<()> {
+    let buffer = FixedUnicode::<MAX_TEXT_BYTES>::from_str(value).map_err(|e| hdf5::Error::from(e.to_string()))?;
+    file.new_attr_builder()
+        .empty_as(TypeDescriptor::FixedUnicode(value.len().max(1)))
+        .create(name)?
+        .write_scalar(&buffer)
+}
 
 /// Writes a run file row by row to a temporary path, renamed into place by [`RunWriter::finish`].
 pub struct RunWriter {
@@ -33,12 +48,23 @@ impl RunWriter {
                 source,
             }
         };
-        let file = hdf5::File::create(&tmp_path).map_err(err("create"))?;
-        let text = |s: &str| VarLenUnicode::from_str(s).unwrap_or_default();
-        file.new_attr::<VarLenUnicode>()
-            .create("format")
-            .and_then(|a| a.write_scalar(&text(FORMAT_NAME)))
-            .map_err(err("format"))?;
+        for (field, value) in [("format", FORMAT_NAME), ("run_label", header.run_label.as_str())] {
+            let problem = if value.len() > MAX_TEXT_BYTES {
+                format!("is {} bytes long, at most {MAX_TEXT_BYTES} are stored", value.len())
+            } else if value.contains('\0') {
+                format!("{value:?} contains a NUL character, which a stored string cannot hold")
+            } else {
+                continue;
+            };
+            return Err(RunFileError::Invalid { path: path.to_path_buf(), field: field.into(), step: None, message: problem });
+        }
+        // The 1.10 file format: superblock, object headers (with the attributes) and the chunk
+        // index of `spectra` carry checksums, so a damaged file is refused instead of parsed.
+        let file = hdf5::File::with_options()
+            .with_fapl(|p| p.libver_v110())
+            .create(&tmp_path)
+            .map_err(err("create"))?;
+        write_text(&file, "format", FORMAT_NAME).map_err(err("format"))?;
         file.new_attr::<u32>()
             .create("format_version")
             .and_then(|a| a.write_scalar(&FORMAT_VERSION))
@@ -54,10 +80,7 @@ impl RunWriter {
                 .and_then(|a| a.write_scalar(&value))
                 .map_err(err(name))?;
         }
-        file.new_attr::<VarLenUnicode>()
-            .create("run_label")
-            .and_then(|a| a.write_scalar(&text(&header.run_label)))
-            .map_err(err("run_label"))?;
+        write_text(&file, "run_label", &header.run_label).map_err(err("run_label"))?;
         let spectra = file
             .new_dataset::<f32>()
             .shape((n_steps, n_bins))
@@ -140,5 +163,61 @@ impl RunWriter {
             step: None,
             message: format!("cannot rename into place: {e}"),
         })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::runfile::RunReader;
+
+    fn header(label: &str) -> RunHeader {
+        RunHeader { bin_width_hz: 100.0, magnet_field_t: 8.0, cavity_volume_m3: 0.02, form_factor: 0.45, run_label: label.into() }
+    }
+
+    fn write(path: &Path, label: &str) -> Result<(), RunFileError> {
+        let mut w = RunWriter::create(path, &header(label), 2, 16)?;
+        for i in 0..2 {
+            let meta = StepMeta {
+                start_freq_hz: 5.0e9 + 1600.0 * i as f64,
+                cavity_freq_hz: 5.0e9 + 800.0,
+                loaded_q: 3.0e4,
+                coupling_beta: 1.0,
+                noise_temp_k: 1.5,
+                n_averages: 1000,
+                timestamp_s: 1.0e9 + 100.0 * i as f64,
+            };
+            w.push_step(meta, ndarray::Array1::from_elem(16, 1.0e-20f32).view())?;
+        }
+        w.finish()
+    }
+
+    #[test]
+    fn strings_are_fixed_length_in_a_checksummed_format() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("fixed.h5");
+        write(&path, "night 2, cavity ½ tuned").unwrap();
+        let file = hdf5::File::open(&path).unwrap();
+        let kind = |name: &str| file.attr(name).unwrap().dtype().unwrap().to_descriptor().unwrap();
+        assert_eq!(kind("format"), TypeDescriptor::FixedUnicode(FORMAT_NAME.len()));
+        assert_eq!(kind("run_label"), TypeDescriptor::FixedUnicode("night 2, cavity ½ tuned".len()));
+        drop(file);
+        // Byte 8 is the superblock version: 3 is the 1.10 format, whose metadata has checksums.
+        assert_eq!(std::fs::read(&path).unwrap()[8], 3);
+        let r = RunReader::open(&path).unwrap();
+        assert_eq!(r.header().run_label, "night 2, cavity ½ tuned");
+    }
+
+    #[test]
+    fn empty_label_round_trips_and_unstorable_labels_are_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let empty = dir.path().join("empty.h5");
+        write(&empty, "").unwrap();
+        assert_eq!(RunReader::open(&empty).unwrap().header().run_label, "");
+        let long = write(&dir.path().join("long.h5"), &"x".repeat(MAX_TEXT_BYTES + 1)).unwrap_err().to_string();
+        assert!(long.contains("long.h5") && long.contains("`run_label`") && long.contains("4097 bytes"), "{long}");
+        let nul = write(&dir.path().join("nul.h5"), "a\0b").unwrap_err().to_string();
+        assert!(nul.contains("`run_label`") && nul.contains("NUL"), "{nul}");
+        assert!(!dir.path().join("long.h5.tmp").exists() && !dir.path().join("long.h5").exists());
     }
 }
