@@ -11,7 +11,12 @@ const DEMO_SCENARIO: &str = include_str!("../fixtures/demo_night.toml");
 const DEFAULT_PIPELINE: &str = include_str!("../pipeline.toml");
 
 #[derive(Parser)]
-#[command(name = "axsift", version, about = "Nightly reduction of axion haloscope data")]
+#[command(
+    name = "axsift",
+    version,
+    about = "Nightly reduction of axion haloscope data",
+    after_help = "Exit status: 0 success, 1 a failure while running, 2 bad input (config, scenario, run file or state).\nLog colours only on a terminal; NO_COLOR=1 turns them off there too. RUST_LOG overrides -v/--quiet."
+)]
 struct Cli {
     /// More log detail (-v debug, -vv trace).
     #[arg(short, long, action = clap::ArgAction::Count, global = true)]
@@ -191,7 +196,13 @@ fn init_logging(verbose: u8, quiet: bool) {
         _ => "trace",
     };
     let filter = tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(format!("axsift={level}")));
-    tracing_subscriber::fmt().with_env_filter(filter).with_target(false).with_writer(std::io::stderr).init();
+    tracing_subscriber::fmt().with_env_filter(filter).with_target(false).with_ansi(log_colours()).with_writer(std::io::stderr).init();
+}
+
+/// Colours in the log only when it goes to a terminal and `NO_COLOR` is unset (no-color.org).
+fn log_colours() -> bool {
+    use std::io::IsTerminal;
+    std::io::stderr().is_terminal() && std::env::var_os("NO_COLOR").is_none_or(|v| v.is_empty())
 }
 
 fn read_text(path: &Path) -> Result<String, Failure> {

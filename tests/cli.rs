@@ -11,6 +11,11 @@ fn axsift() -> Command {
 #[test]
 fn demo_runs_end_to_end() {
     let dir = tempfile::tempdir().unwrap();
+    // Limits left by an earlier calibrated reduction into the same folder: this uncalibrated
+    // one must not leave them beside its own results.
+    for stale in ["limits.csv", "exclusion.png"] {
+        std::fs::write(dir.path().join(stale), b"earlier").unwrap();
+    }
     let out = axsift().args(["demo", "--out"]).arg(dir.path()).output().unwrap();
     let stdout = String::from_utf8_lossy(&out.stdout);
     assert!(out.status.success(), "demo failed: {}", String::from_utf8_lossy(&out.stderr));
@@ -29,6 +34,21 @@ fn demo_runs_end_to_end() {
     assert!(found, "the demo axion was not flagged");
     let leftovers: Vec<_> = std::fs::read_dir(dir.path()).unwrap().filter_map(|e| e.ok()).filter(|e| e.file_name().to_string_lossy().contains("tmp")).collect();
     assert!(leftovers.is_empty(), "temporary files left: {leftovers:?}");
+    for stale in ["limits.csv", "exclusion.png"] {
+        assert!(!dir.path().join(stale).exists(), "{stale} of an earlier reduction left in place");
+    }
+    // The log goes to a pipe here: plain text, no colour escapes.
+    let log = String::from_utf8_lossy(&out.stderr);
+    assert!(log.contains("INFO"), "no log on stderr: {log}");
+    assert!(!log.contains('\u{1b}'), "colour escapes in a piped log: {log:?}");
+}
+
+/// `--help` documents the exit statuses.
+#[test]
+fn help_documents_exit_statuses() {
+    let out = axsift().arg("--help").output().unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success() && text.contains("Exit status: 0 success, 1 a failure while running, 2 bad input"), "{text}");
 }
 
 /// `axsift plan` prints every stage with its defaults resolved.

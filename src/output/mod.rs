@@ -24,6 +24,9 @@ pub fn register_fonts() -> anyhow::Result<()> {
 /// Width of the blocks of the coarse limit summary, Hz.
 pub const LIMIT_BLOCK_HZ: f64 = 1e6;
 
+/// Outputs written only by a calibrated reduction (earlier ones are removed by an uncalibrated one).
+const LIMIT_OUTPUTS: [&str; 4] = ["limits.csv", "limit_blocks.csv", "exclusion.png", "exclusion.svg"];
+
 /// Provenance written into every output.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct Provenance {
@@ -197,26 +200,48 @@ impl Reduction {
         let tmp = |n: &str| dir.join(format!(".tmp.{n}"));
         let calibration = calibrated.map(|c| c.0);
         let limits = calibrated.map(|c| c.1);
-        self.write_hdf5(&tmp(names[0]), config_text, provenance, limits).context("writing results.h5")?;
-        self.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
-        std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration, limits))?).context("writing summary.json")?;
-        plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
-        if let Some(limits) = limits {
-            let more = ["limits.csv", "limit_blocks.csv", "exclusion.png", "exclusion.svg"];
-            limits.write_tables(&tmp(more[0]), &tmp(more[1]), LIMIT_BLOCK_HZ).context("writing the limit tables")?;
-            let points: Vec<(f64, f64)> = limits.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev)).collect();
-            let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.assumptions.confidence, limits.assumptions.eta);
-            crate::limits::exclusion_plot(&points, &title, &tmp(more[2]), &tmp(more[3])).context("drawing the exclusion plot")?;
-            names.extend(more);
+        let staged = (|| -> anyhow::Result<()> {
+            self.write_hdf5(&tmp(names[0]), config_text, provenance, limits).context("writing results.h5")?;
+            self.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
+            std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration, limits))?).context("writing summary.json")?;
+            plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
+            if let Some(limits) = limits {
+                limits.write_tables(&tmp(LIMIT_OUTPUTS[0]), &tmp(LIMIT_OUTPUTS[1]), LIMIT_BLOCK_HZ).context("writing the limit tables")?;
+                let points: Vec<(f64, f64)> = limits.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev)).collect();
+                let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.assumptions.confidence, limits.assumptions.eta);
+                crate::limits::exclusion_plot(&points, &title, &tmp(LIMIT_OUTPUTS[2]), &tmp(LIMIT_OUTPUTS[3])).context("drawing the exclusion plot")?;
+            }
+            Ok(())
+        })();
+        if limits.is_some() {
+            names.extend(LIMIT_OUTPUTS);
         }
-        names
+        if let Err(e) = staged {
+            // Earlier results stay as they were; the partial temporary files go.
+            for n in names.iter().chain(LIMIT_OUTPUTS.iter()) {
+                let _ = std::fs::remove_file(tmp(n));
+            }
+            return Err(e);
+        }
+        let written = names
             .iter()
             .map(|n| {
                 let to = dir.join(n);
                 std::fs::rename(tmp(n), &to).with_context(|| format!("renaming into {}", to.display()))?;
                 Ok(to)
             })
-            .collect()
+            .collect::<anyhow::Result<Vec<PathBuf>>>()?;
+        if limits.is_none() {
+            // Limits of an earlier, calibrated reduction would not describe this one.
+            for n in LIMIT_OUTPUTS {
+                let stale = dir.join(n);
+                if stale.exists() {
+                    std::fs::remove_file(&stale).with_context(|| format!("removing the earlier {}", stale.display()))?;
+                    tracing::info!("removed {} of an earlier reduction: this one has no calibration, hence no limits", stale.display());
+                }
+            }
+        }
+        Ok(written)
     }
 
     /// One row per candidate; with a calibration also the implied coupling |g|/g_ref and the
