@@ -30,8 +30,14 @@ fn files() -> std::sync::MutexGuard<'static, ()> {
     FILES.lock().unwrap_or_else(|e| e.into_inner())
 }
 
+/// A runner for `cases` cases, times `AXSIFT_FUZZ_FACTOR` when that is set (a longer run by
+/// hand: `AXSIFT_FUZZ_FACTOR=20 cargo test --release --test fuzz_runfile`).
 fn runner(cases: u32) -> TestRunner {
-    TestRunner::new(Config { cases, failure_persistence: None, max_shrink_iters: 100, ..Config::default() })
+    TestRunner::new(Config { cases: cases * fuzz_factor(), failure_persistence: None, max_shrink_iters: 100, ..Config::default() })
+}
+
+fn fuzz_factor() -> u32 {
+    std::env::var("AXSIFT_FUZZ_FACTOR").ok().and_then(|v| v.parse().ok()).filter(|&f| f > 0).unwrap_or(1)
 }
 
 /// Opens `path` and, if it opens, reads every row and opens it as a night.
@@ -252,7 +258,7 @@ fn generated_files_never_panic() {
         .unwrap();
     let (n, w, a) = (count.load(Ordering::Relaxed), written.load(Ordering::Relaxed), accepted.load(Ordering::Relaxed));
     eprintln!("fuzz_runfile generated: {n} cases, {w} written, {a} accepted by the reader");
-    assert_eq!(n, CASES_GENERATED as usize);
+    assert_eq!(n, (CASES_GENERATED * fuzz_factor()) as usize);
     assert!(w > n / 2, "only {w} of {n} files could be written");
     assert!(a > 0 && a < w, "the generator must produce both good and bad files ({a} of {w} accepted)");
 }
@@ -429,7 +435,7 @@ fn mutated_files_never_panic() {
         "fuzz_runfile mutated: {n} cases through `axsift reduce`: {reduced} reduced, {refused} refused naming the file, {failed} read but not reducible, {panicked} panics, {crashed} crashes and {hung} hangs inside the HDF5 library{}",
         if crashed + hung > 0 { format!(" (inputs kept in {})", crashes_dir.display()) } else { String::new() }
     );
-    assert_eq!(n, CASES_MUTATED as usize);
+    assert_eq!(n, (CASES_MUTATED * fuzz_factor()) as usize);
     assert_eq!(panicked, 0);
     assert!(crashed + hung == 0, "the HDF5 library crashed or hung on mutated files:\n{}", kept.lock().unwrap().join("\n"));
     assert!(refused > 0, "no mutation was refused: the mutations did not reach the file's structure");
