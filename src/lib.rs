@@ -17,6 +17,7 @@ pub mod physics;
 pub mod pipeline;
 pub mod report;
 pub mod runfile;
+pub mod shard;
 pub mod sim;
 pub mod state;
 pub mod stage;

@@ -137,6 +137,86 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Divide a reprocessing (by nights) or a calibration campaign (by realisation ranges)
+    /// into shards for a cluster; writes WORK/plan.json with the resources per shard.
+    /// Example: axsift shard-plan --config pipeline.toml --work work/ --shards 3 --night a.h5 --night b1.h5,b2.h5
+    /// Example: axsift shard-plan --config pipeline.toml --work camp/ --shards 8 --campaign --scenario fixtures/demo_night.toml
+    ShardPlan {
+        /// Pipeline TOML (its text is copied into the plan).
+        #[arg(long)]
+        config: PathBuf,
+        /// Work folder for the plan, the shard files and the Slurm scripts (must be new).
+        #[arg(long)]
+        work: PathBuf,
+        /// Largest number of shards (a reduction has at most one per night).
+        #[arg(long)]
+        shards: usize,
+        /// Cores per shard.
+        #[arg(long, default_value_t = 2)]
+        cpus: usize,
+        /// One night's run files, comma-separated in acquisition order; repeat per night.
+        #[arg(long = "night", conflicts_with = "campaign")]
+        nights: Vec<String>,
+        /// Plan a calibration campaign instead of a reduction.
+        #[arg(long)]
+        campaign: bool,
+        /// Campaign: scenario TOML to simulate for every realisation.
+        #[arg(long, requires = "campaign", conflicts_with = "runs")]
+        scenario: Option<PathBuf>,
+        /// Campaign: seed of the injections (and of the simulated noise).
+        #[arg(long, default_value_t = 1, requires = "campaign")]
+        seed: u64,
+        /// Campaign: TOML with the campaign size (fields of the calibration's `spec`);
+        /// default the size `calibrate` runs.
+        #[arg(long, requires = "campaign")]
+        spec: Option<PathBuf>,
+        /// Campaign: recorded run files to inject into.
+        #[arg(requires = "campaign")]
+        runs: Vec<PathBuf>,
+    },
+    /// Run one shard of a plan; the index comes from --index or SLURM_ARRAY_TASK_ID.
+    /// Example: axsift shard-run --plan work/plan.json --index 2
+    ShardRun {
+        /// The plan file.
+        #[arg(long)]
+        plan: PathBuf,
+        /// Shard index (default: the Slurm array task id).
+        #[arg(long)]
+        index: Option<usize>,
+    },
+    /// Merge the finished shards of a plan: a reduction into a new state folder and an output
+    /// folder, a campaign into a calibration folder.
+    /// Example: axsift shard-merge --plan work/plan.json --out results/ --state state/
+    ShardMerge {
+        #[command(flatten)]
+        target: MergeTarget,
+    },
+    /// Write the Slurm job-array and merge scripts of a plan (and with --submit, submit them).
+    /// Example: axsift shard-slurm --plan work/plan.json --out results/ --state state/ --submit
+    ShardSlurm {
+        #[command(flatten)]
+        target: MergeTarget,
+        /// Slurm partition.
+        #[arg(long)]
+        partition: Option<String>,
+        /// Submit with sbatch: the array(s), then the merge depending on them.
+        #[arg(long)]
+        submit: bool,
+    },
+}
+
+/// What a shard merge reads and writes.
+#[derive(clap::Args)]
+struct MergeTarget {
+    /// The plan file.
+    #[arg(long)]
+    plan: PathBuf,
+    /// Output folder (the reduction's results or the calibration).
+    #[arg(long)]
+    out: PathBuf,
+    /// Reduction: new analysis state folder.
+    #[arg(long)]
+    state: Option<PathBuf>,
 }
 
 /// Exit status: 0 success, 1 failure while running, 2 bad input (config, scenario, run file).
@@ -174,6 +254,12 @@ fn main() -> ExitCode {
             Ok(())
         }),
         Command::Inspect { file, json } => inspect(&file, json),
+        Command::ShardPlan { config, work, shards, cpus, nights, campaign, scenario, seed, spec, runs } => {
+            shard_plan(&config, &work, shards, cpus, &nights, campaign.then_some((scenario.as_deref(), seed, spec.as_deref(), runs.as_slice())))
+        }
+        Command::ShardRun { plan, index } => shard_run(&plan, index, cli.quiet),
+        Command::ShardMerge { target } => shard_merge(&target.plan, &target.out, target.state.as_deref(), cli.quiet),
+        Command::ShardSlurm { target, partition, submit } => shard_slurm(&target.plan, &target.out, target.state.as_deref(), partition.as_deref(), submit),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -352,5 +438,81 @@ fn inspect(file: &Path, json: bool) -> Result<(), Failure> {
         return Ok(());
     }
     print!("{}", output::console::run_file_report(&r));
+    Ok(())
+}
+
+fn shard_failure(e: axsift::shard::ShardError) -> Failure {
+    match e {
+        axsift::shard::ShardError::BadInput(_) => Failure::BadInput(e.into()),
+        _ => Failure::Run(e.into()),
+    }
+}
+
+/// Campaign options of `shard-plan`: scenario, seed, spec file, recorded runs.
+type CampaignArgs<'a> = (Option<&'a Path>, u64, Option<&'a Path>, &'a [PathBuf]);
+
+fn shard_plan(config: &Path, work: &Path, shards: usize, cpus: usize, nights: &[String], campaign: Option<CampaignArgs>) -> Result<(), Failure> {
+    use axsift::shard::{CampaignNoise, ShardPlan};
+    let text = read_text(config)?;
+    let name = config.display().to_string();
+    let plan = match campaign {
+        None => ShardPlan::reduction(&text, &name, nights.iter().map(|n| n.split(',').map(PathBuf::from).collect()).collect(), shards, cpus.max(1)),
+        Some((scenario, seed, spec, runs)) => {
+            let spec = match spec {
+                Some(path) => toml::from_str::<calib::CampaignSpec>(&read_text(path)?).map_err(|e| Failure::BadInput(anyhow::anyhow!("{}: {e}", path.display())))?,
+                None => calib::CampaignSpec::standard(seed),
+            };
+            let noise = match (scenario, runs.is_empty()) {
+                (Some(path), true) => CampaignNoise::Simulated { scenario_text: read_text(path)? },
+                (None, false) => CampaignNoise::Recorded { runs: runs.to_vec() },
+                _ => return Err(Failure::BadInput(anyhow::anyhow!("a campaign needs either --scenario FILE or recorded run files to inject into"))),
+            };
+            ShardPlan::campaign(&text, &name, spec, noise, shards, cpus.max(1))
+        }
+    }
+    .map_err(shard_failure)?;
+    let path = plan.save(work).map_err(shard_failure)?;
+    let r = &plan.resources;
+    println!("{}: {} shards, each {} MB, {} cpus, {} s", path.display(), plan.shards.len(), r.mem_mb, r.cpus, r.time_s);
+    Ok(())
+}
+
+fn shard_run(plan: &Path, index: Option<usize>, quiet: bool) -> Result<(), Failure> {
+    let index = axsift::shard::shard_index(index).map_err(shard_failure)?;
+    let bar = output::progress::Bar::new(quiet, "shard", "items");
+    let path = axsift::shard::run_shard(plan, index, &|done, total| bar.update(done, total)).map_err(shard_failure)?;
+    bar.finish();
+    tracing::info!("shard {index} written to {}", path.display());
+    Ok(())
+}
+
+fn shard_merge(plan: &Path, out: &Path, state: Option<&Path>, quiet: bool) -> Result<(), Failure> {
+    let merged = axsift::shard::merge(plan, out, state).map_err(shard_failure)?;
+    if !quiet {
+        match merged {
+            axsift::shard::Merged::Reduction { state, update, provenance, written } => {
+                print!("{}", output::console::night_report(&update.reduction, &provenance, None, &written));
+                print!("{}", output::console::state_report(&state, &update.changes));
+            }
+            axsift::shard::Merged::Campaign { calibration, written } => print!("{}", output::console::calibration_report(&calibration, &written)),
+        }
+    }
+    Ok(())
+}
+
+fn shard_slurm(plan: &Path, out: &Path, state: Option<&Path>, partition: Option<&str>, submit: bool) -> Result<(), Failure> {
+    use axsift::shard::slurm;
+    let exe = std::env::current_exe().context("locating the axsift binary")?;
+    let scripts = slurm::write_scripts(plan, &exe, out, state, partition).map_err(shard_failure)?;
+    println!("wrote {} and {}", scripts.shard_script.display(), scripts.merge_script.display());
+    if submit {
+        let ids = slurm::submit(&scripts).map_err(shard_failure)?;
+        println!("submitted jobs {}", ids.join(" "));
+    } else {
+        for args in slurm::submissions(&scripts) {
+            println!("sbatch {}", args.join(" "));
+        }
+    }
+    println!("{}", slurm::rerun_hint(&scripts));
     Ok(())
 }

@@ -206,10 +206,12 @@ pub enum CalibrationError {
 }
 
 /// The per-bin reference for injections, from the first null reduction.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
 struct Reference {
     rf_start_hz: f64,
     bin_width_hz: f64,
-    /// sigma_A * predicted spread per bin (NaN where not covered).
+    /// sigma_A * predicted spread per bin (NaN where not covered), stored as IEEE-754 bits.
+    #[serde(with = "crate::shard::bits")]
     sigma_eff: Vec<f64>,
     /// Bins in which a line may start: fully covered, away from the edges.
     slots: Vec<usize>,
@@ -264,14 +266,67 @@ enum JobKind {
     Efficiency(f64),
 }
 
+/// What a campaign knows once its null and eta realisations are reduced: everything except
+/// the efficiency curve. The efficiency realisations need it (their injected amplitudes
+/// depend on the reference and on eta), so a sharded campaign computes it first, in one shard.
+#[derive(Debug, Clone, serde::Serialize, serde::Deserialize)]
+pub struct CampaignHead {
+    reference: Reference,
+    /// Threshold of the configured flag stage.
+    pub threshold: f64,
+    /// Null spread and KS test.
+    pub null: NullSpread,
+    /// Signal attenuation.
+    pub attenuation: Attenuation,
+    /// Radiometer check.
+    pub radiometer: RadiometerCheck,
+    /// Records of the eta injections, in realisation order.
+    pub eta_records: Vec<InjectionRecord>,
+}
+
+/// Reductions of a campaign: (null and eta realisations, efficiency realisations).
+pub fn campaign_size(spec: &CampaignSpec) -> (usize, usize) {
+    (spec.null_realisations.max(1) + spec.eta_realisations, spec.snr_grid.len() * spec.realisations_per_snr)
+}
+
 /// Runs a campaign. `progress` is called with (reductions done, total).
 pub fn calibrate(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, progress: &(dyn Fn(usize, usize) + Sync)) -> Result<Calibration, CalibrationError> {
-    let info = PlanInfo::from_plan(plan).map_err(CalibrationError::Unusable)?;
-    let spacing = info.injection_spacing_bins();
-    let total = spec.null_realisations.max(1) + spec.eta_realisations + spec.snr_grid.len() * spec.realisations_per_snr;
+    let (head_count, efficiency_count) = campaign_size(spec);
+    let total = head_count + efficiency_count;
     let done = std::sync::atomic::AtomicUsize::new(0);
     let tick = || progress(done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1, total);
+    let head = head_with(plan, noise, spec, &tick)?;
+    let efficiency_records = efficiency_with(plan, noise, spec, &head, 0..efficiency_count, &tick)?;
+    Ok(assemble(plan, noise, spec, head, efficiency_records))
+}
 
+/// Reduces the null and eta realisations of a campaign. `progress` as for [`calibrate`].
+pub fn campaign_head(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, progress: &(dyn Fn(usize, usize) + Sync)) -> Result<CampaignHead, CalibrationError> {
+    let total = campaign_size(spec).0;
+    let done = std::sync::atomic::AtomicUsize::new(0);
+    head_with(plan, noise, spec, &|| progress(done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1, total))
+}
+
+/// Reduces the efficiency realisations `jobs` (indices into the campaign's efficiency jobs,
+/// SNR-major: job k has SNR `snr_grid[k / realisations_per_snr]`) and returns their
+/// injection records in job order; each job is seeded by its realisation alone, so any
+/// split of the jobs gives the same records.
+pub fn campaign_efficiency(
+    plan: &Plan,
+    noise: &NoiseSource,
+    spec: &CampaignSpec,
+    head: &CampaignHead,
+    jobs: std::ops::Range<usize>,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<Vec<InjectionRecord>, CalibrationError> {
+    let total = jobs.len();
+    let done = std::sync::atomic::AtomicUsize::new(0);
+    efficiency_with(plan, noise, spec, head, jobs, &|| progress(done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1, total))
+}
+
+fn head_with(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, tick: &(dyn Fn() + Sync)) -> Result<CampaignHead, CalibrationError> {
+    let info = PlanInfo::from_plan(plan).map_err(CalibrationError::Unusable)?;
+    let spacing = info.injection_spacing_bins();
     // Null realisations (at least one: it fixes the per-bin reference).
     let nulls: Vec<Reduction> = (0..spec.null_realisations.max(1))
         .into_par_iter()
@@ -284,24 +339,34 @@ pub fn calibrate(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, progress
     let reference = Reference::from_null(&nulls[0], spacing)?;
     let threshold = nulls[0].spectrum.threshold.ok_or_else(|| CalibrationError::Unusable("the plan has no flag stage".into()))?;
     let null = null_spread(&nulls);
-    let radiometer_bins: Vec<usize> = reference.slots.clone();
-
-    let mut jobs: Vec<Job> = (0..spec.eta_realisations).map(|i| Job { realisation: spec.null_realisations.max(1) + i, kind: JobKind::Eta }).collect();
-    let eta_records = run_jobs(plan, noise, spec, &info, &reference, &jobs, 1.0, &tick)?;
+    let jobs: Vec<Job> = (0..spec.eta_realisations).map(|i| Job { realisation: spec.null_realisations.max(1) + i, kind: JobKind::Eta }).collect();
+    let eta_records = run_jobs(plan, noise, spec, &info, &reference, &jobs, 1.0, tick)?;
     let attenuation = attenuation(&eta_records)?;
+    let radiometer = radiometer::check(&nulls[0], &info, &reference.slots, attenuation.eta);
+    Ok(CampaignHead { reference, threshold, null, attenuation, radiometer, eta_records })
+}
 
-    let first_efficiency = spec.null_realisations.max(1) + spec.eta_realisations;
-    jobs = spec
-        .snr_grid
-        .iter()
-        .enumerate()
-        .flat_map(|(g, &snr)| (0..spec.realisations_per_snr).map(move |i| Job { realisation: first_efficiency + g * spec.realisations_per_snr + i, kind: JobKind::Efficiency(snr) }))
+fn efficiency_with(
+    plan: &Plan,
+    noise: &NoiseSource,
+    spec: &CampaignSpec,
+    head: &CampaignHead,
+    jobs: std::ops::Range<usize>,
+    tick: &(dyn Fn() + Sync),
+) -> Result<Vec<InjectionRecord>, CalibrationError> {
+    let info = PlanInfo::from_plan(plan).map_err(CalibrationError::Unusable)?;
+    let first_efficiency = campaign_size(spec).0;
+    let per_snr = spec.realisations_per_snr.max(1);
+    let jobs: Vec<Job> = jobs
+        .filter_map(|k| spec.snr_grid.get(k / per_snr).map(|&snr| Job { realisation: first_efficiency + k, kind: JobKind::Efficiency(snr) }))
         .collect();
-    let efficiency_records = run_jobs(plan, noise, spec, &info, &reference, &jobs, attenuation.eta, &tick)?;
-    let efficiency = efficiency_curve(&spec.snr_grid, &efficiency_records, threshold);
+    run_jobs(plan, noise, spec, &info, &head.reference, &jobs, head.attenuation.eta, tick)
+}
 
-    let radiometer = radiometer::check(&nulls[0], &info, &radiometer_bins, attenuation.eta);
-    Ok(Calibration {
+/// The calibration from a campaign's head and all its efficiency records (in job order).
+pub fn assemble(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, head: CampaignHead, efficiency_records: Vec<InjectionRecord>) -> Calibration {
+    let efficiency = efficiency_curve(&spec.snr_grid, &efficiency_records, head.threshold);
+    Calibration {
         version: CALIBRATION_VERSION,
         tool_version: env!("CARGO_PKG_VERSION").into(),
         stage_hash: stage_hash(plan),
@@ -309,14 +374,14 @@ pub fn calibrate(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, progress
             NoiseSource::Simulated { .. } => "simulated".into(),
             NoiseSource::Recorded(_) => "recorded".into(),
         },
-        threshold,
+        threshold: head.threshold,
         spec: spec.clone(),
-        null,
-        attenuation,
+        null: head.null,
+        attenuation: head.attenuation,
         efficiency,
-        radiometer,
-        injections: eta_records.into_iter().chain(efficiency_records).collect(),
-    })
+        radiometer: head.radiometer,
+        injections: head.eta_records.into_iter().chain(efficiency_records).collect(),
+    }
 }
 
 /// Runs injection jobs in parallel; the records come back in job order.

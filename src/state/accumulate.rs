@@ -46,7 +46,37 @@ fn refused(msg: String) -> StateError {
     StateError::Refused(msg)
 }
 
-fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update, StateError> {
+/// A night reduced up to and including the combination, not yet added to a state: what one
+/// shard of a sharded reprocessing computes ([`crate::shard`]).
+#[derive(Debug)]
+pub struct ReducedNight {
+    /// Each run file as given, with the SHA-256 of its content.
+    pub inputs: Vec<(String, String)>,
+    /// Steps read from each file, in the same order.
+    pub n_steps: Vec<usize>,
+    /// The night's reduction through the combine stage (no spectrum stage applied).
+    pub reduction: Reduction,
+}
+
+/// Reduces one night (its run files, in acquisition order) through the combine stage of
+/// `plan`, without touching any state; add it with [`add_reduced_night`].
+pub fn reduce_night(plan: &Plan, paths: &[PathBuf]) -> Result<ReducedNight, StateError> {
+    let inputs = hash_inputs(plan, paths)?;
+    reduce_hashed(plan, paths, inputs)
+}
+
+fn hash_inputs(plan: &Plan, paths: &[PathBuf]) -> Result<Vec<(String, String)>, StateError> {
+    Ok(Provenance::new(&plan.text, paths).map_err(|e| refused(format!("cannot hash the run files: {e}")))?.inputs)
+}
+
+fn reduce_hashed(plan: &Plan, paths: &[PathBuf], inputs: Vec<(String, String)>) -> Result<ReducedNight, StateError> {
+    let front = up_to_combine(plan)?;
+    let reduction = reduce(&front, paths, &|_, _| {}).map_err(|e| refused(e.to_string()))?;
+    let n_steps = paths.iter().map(|path| crate::runfile::RunReader::open(path).map(|r| r.steps().len()).unwrap_or(0)).collect();
+    Ok(ReducedNight { inputs, n_steps, reduction })
+}
+
+fn check_config(state: &State, plan: &Plan) -> Result<(), StateError> {
     let hash = plan_hash(plan);
     if state.config_hash != hash {
         return Err(refused(format!(
@@ -55,14 +85,32 @@ fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update
             &hash[..12]
         )));
     }
-    let provenance = Provenance::new(&plan.text, paths).map_err(|e| refused(format!("cannot hash the run files: {e}")))?;
-    for (path, sha) in &provenance.inputs {
+    Ok(())
+}
+
+fn check_new(state: &State, inputs: &[(String, String)]) -> Result<(), StateError> {
+    for (path, sha) in inputs {
         if let Some((night, f)) = state.holder_of(sha) {
             return Err(refused(format!("{path}: already in the state (night {night}, as {}); a run file is added once", f.path)));
         }
     }
-    let front = up_to_combine(plan)?;
-    let night_red = reduce(&front, paths, &|_, _| {}).map_err(|e| refused(e.to_string()))?;
+    Ok(())
+}
+
+fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update, StateError> {
+    check_config(state, plan)?;
+    let inputs = hash_inputs(plan, paths)?;
+    check_new(state, &inputs)?;
+    add_reduced_night(state, plan, reduce_hashed(plan, paths, inputs)?)
+}
+
+/// Adds a night reduced by [`reduce_night`] to the state: the same operations, in the same
+/// order, as adding it from its run files, so the sums and the grand spectrum are
+/// bit-identical whichever way (or on whichever machine) the night was reduced.
+pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) -> Result<Update, StateError> {
+    check_config(state, plan)?;
+    check_new(state, &night.inputs)?;
+    let ReducedNight { inputs, n_steps, reduction: night_red } = night;
     let night_index = state.nights.len();
     let offset = merge(state, &night_red.spectrum)?;
 
@@ -87,12 +135,7 @@ fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update
 
     state.nights.push(NightRecord {
         index: night_index,
-        files: provenance
-            .inputs
-            .iter()
-            .zip(paths)
-            .map(|((p, sha), path)| FileRecord { path: p.clone(), sha256: sha.clone(), n_steps: crate::runfile::RunReader::open(path).map(|r| r.steps().len()).unwrap_or(0) })
-            .collect(),
+        files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
         n_steps_used: night_red.used_steps.len(),
     });
     let reduction = Reduction { spectrum, ..night_red };

@@ -20,7 +20,7 @@ mod accumulate;
 mod rescan;
 mod store;
 
-pub use accumulate::{RESCAN_TARGET_SNR, Update, add_nights, plan_hash};
+pub use accumulate::{RESCAN_TARGET_SNR, ReducedNight, Update, add_nights, add_reduced_night, plan_hash, reduce_night};
 pub use rescan::{Class, TrackedCandidate};
 pub use store::{State, StateError};
 

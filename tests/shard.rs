@@ -1,0 +1,256 @@
+//! Sharded reductions and campaigns: shards run as child processes of the built binary give
+//! bit-identical results to the single-machine run; the merge refuses missing, duplicated and
+//! foreign shards; a shard killed mid-run and rerun changes nothing.
+
+mod common;
+
+use axsift::calib::{self, CampaignSpec, NoiseSource};
+use axsift::config;
+use axsift::sim;
+use axsift::state::State;
+use common::{PIPELINE, null_scenario};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Output};
+
+const BIN: &str = env!("CARGO_BIN_EXE_axsift");
+
+fn axsift(args: &[&str]) -> Command {
+    let mut c = Command::new(BIN);
+    c.arg("--quiet").args(args).env("HDF5_USE_FILE_LOCKING", "FALSE");
+    c
+}
+
+fn run_ok(args: &[&str]) -> Output {
+    let out = axsift(args).output().expect("axsift starts");
+    assert!(out.status.success(), "axsift {args:?} failed: {}", String::from_utf8_lossy(&out.stderr));
+    out
+}
+
+fn s(p: &Path) -> &str {
+    p.to_str().expect("utf-8 temporary path")
+}
+
+/// A small simulated night (null demo facility), its band starting at `first_cavity_hz`.
+fn night(dir: &Path, seed: u64, first_cavity_hz: f64, n_steps: usize) -> PathBuf {
+    let mut sc = null_scenario(seed);
+    sc.scan.n_steps = n_steps;
+    sc.scan.first_cavity_freq_hz = first_cavity_hz;
+    let path = dir.join(format!("night-{seed}.h5"));
+    sim::simulate(&sc, &path).expect("simulate");
+    path
+}
+
+/// Three nights with overlapping, shifted bands (the third extends below the first).
+fn three_nights(dir: &Path) -> Vec<PathBuf> {
+    [(11, 5.2e9), (12, 5.2015e9), (13, 5.1995e9)].iter().map(|&(seed, f)| night(dir, seed, f, 200)).collect()
+}
+
+/// The single-machine reference: nightly `reduce --state` in order.
+fn nightly(dir: &Path, nights: &[PathBuf]) -> (PathBuf, PathBuf) {
+    let (state, out) = (dir.join("ref-state"), dir.join("ref-out"));
+    for n in nights {
+        run_ok(&["reduce", "--config", "pipeline.toml", "--state", s(&state), "--out", s(&out), s(n)]);
+    }
+    (state, out)
+}
+
+fn plan_reduction(work: &Path, nights: &[PathBuf], shards: usize) -> PathBuf {
+    let mut args = vec!["shard-plan", "--config", "pipeline.toml", "--work", s(work)];
+    let shards = shards.to_string();
+    args.extend(["--shards", &shards]);
+    for n in nights {
+        args.extend(["--night", s(n)]);
+    }
+    run_ok(&args);
+    work.join("plan.json")
+}
+
+/// Runs the given shards as concurrent child processes and waits for all of them.
+fn run_shards(plan: &Path, indices: &[usize]) {
+    let children: Vec<(usize, Child)> = indices.iter().map(|&i| (i, axsift(&["shard-run", "--plan", s(plan), "--index", &i.to_string()]).spawn().expect("spawn shard"))).collect();
+    for (i, c) in children {
+        let out = c.wait_with_output().expect("shard finishes");
+        assert!(out.status.success(), "shard {i} failed");
+    }
+}
+
+fn merge(plan: &Path, out: &Path, state: Option<&Path>) -> Output {
+    let mut args = vec!["shard-merge", "--plan", s(plan), "--out", s(out)];
+    if let Some(st) = state {
+        args.extend(["--state", s(st)]);
+    }
+    axsift(&args).output().expect("merge starts")
+}
+
+fn bits(v: &[f64]) -> Vec<u64> {
+    v.iter().map(|x| x.to_bits()).collect()
+}
+
+fn dataset(file: &Path, name: &str) -> Vec<u64> {
+    let f = hdf5::File::open(file).expect("results.h5 opens");
+    bits(&f.dataset(name).and_then(|d| d.read_raw::<f64>()).expect("dataset reads"))
+}
+
+/// state.json without the generation counter (the nightly reference saved once per night,
+/// the merge once).
+fn state_index(dir: &Path) -> String {
+    let text = std::fs::read_to_string(dir.join("state.json")).expect("state.json");
+    text.lines().filter(|l| !l.trim_start().starts_with("\"generation\"")).collect::<Vec<_>>().join("\n")
+}
+
+/// The merged reduction equals the reference bit for bit: state sums, candidates, index,
+/// and the output folder's summary, candidate list and grand-spectrum datasets.
+fn assert_same_reduction(reference: (&Path, &Path), merged: (&Path, &Path)) {
+    let (a, b) = (State::load(reference.0).unwrap().expect("reference state"), State::load(merged.0).unwrap().expect("merged state"));
+    assert!(a.weight.iter().filter(|w| **w > 0.0).count() > 1000, "the reference covers the nights");
+    assert_eq!(bits(&a.weight), bits(&b.weight));
+    assert_eq!(bits(&a.weighted_sum), bits(&b.weighted_sum));
+    assert_eq!(a.coverage, b.coverage);
+    assert_eq!(a.candidates, b.candidates);
+    assert_eq!(a.nights, b.nights);
+    assert_eq!(state_index(reference.0), state_index(merged.0));
+    for name in ["summary.json", "candidates.csv"] {
+        assert_eq!(std::fs::read(reference.1.join(name)).unwrap(), std::fs::read(merged.1.join(name)).unwrap(), "{name} differs");
+    }
+    for name in ["combined", "combined_sigma", "amplitude", "sigma_a", "grand"] {
+        assert_eq!(dataset(&reference.1.join("results.h5"), name), dataset(&merged.1.join("results.h5"), name), "results.h5 dataset {name} differs");
+    }
+}
+
+/// Acceptance: three nights in two shards (one holds two nights), run concurrently as child
+/// processes, merge bit-identical to three nightly `reduce --state` runs.
+#[test]
+fn sharded_reduction_equals_nightly_reduction() {
+    let dir = tempfile::tempdir().unwrap();
+    let nights = three_nights(dir.path());
+    let reference = nightly(dir.path(), &nights);
+    let plan = plan_reduction(&dir.path().join("work"), &nights, 2);
+    run_shards(&plan, &[0, 1]);
+    let (state, out) = (dir.path().join("state"), dir.path().join("out"));
+    let m = merge(&plan, &out, Some(&state));
+    assert!(m.status.success(), "{}", String::from_utf8_lossy(&m.stderr));
+    assert_same_reduction((&reference.0, &reference.1), (&state, &out));
+    // The merge builds a new state: a second merge into the same folder is refused.
+    let again = merge(&plan, &dir.path().join("out2"), Some(&state));
+    assert_eq!(again.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&again.stderr).contains("already holds a state"));
+}
+
+fn small_spec() -> CampaignSpec {
+    CampaignSpec { seed: 3, null_realisations: 1, eta_realisations: 1, eta_snr: 20.0, snr_grid: vec![4.0, 6.0], realisations_per_snr: 2, max_injections_per_realisation: 20 }
+}
+
+/// Acceptance: a small campaign (head + two efficiency shards) gives a calibration.json
+/// byte-identical to the single-machine campaign with the same spec.
+#[test]
+fn sharded_campaign_equals_single_machine_campaign() {
+    let dir = tempfile::tempdir().unwrap();
+    let scenario_text = common::DEMO_SCENARIO.replace("n_steps = 600", "n_steps = 200");
+    assert!(scenario_text.contains("n_steps = 200"));
+    let scenario_file = dir.path().join("scenario.toml");
+    std::fs::write(&scenario_file, &scenario_text).unwrap();
+    let spec_file = dir.path().join("spec.toml");
+    std::fs::write(&spec_file, toml::to_string(&small_spec()).unwrap()).unwrap();
+
+    let plan_cfg = config::load(PIPELINE, "pipeline.toml").unwrap();
+    let reference_sc = sim::Scenario::from_toml(&scenario_text).unwrap();
+    let scratch = dir.path().join("scratch");
+    std::fs::create_dir_all(&scratch).unwrap();
+    let cal = calib::calibrate(&plan_cfg, &NoiseSource::Simulated { scenario: &reference_sc, scratch: &scratch }, &small_spec(), &|_, _| {}).unwrap();
+    assert!(cal.injections.iter().any(|r| r.snr > 0.0), "the campaign has efficiency injections");
+    let reference = dir.path().join("ref-cal");
+    cal.write(&reference).unwrap();
+
+    let work = dir.path().join("work");
+    run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(&work), "--shards", "3", "--campaign", "--scenario", s(&scenario_file), "--spec", s(&spec_file)]);
+    let plan = work.join("plan.json");
+    // Efficiency shards need the head's file.
+    let early = axsift(&["shard-run", "--plan", s(&plan), "--index", "1"]).output().unwrap();
+    assert_eq!(early.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&early.stderr).contains("shard-0000.json: missing"), "{}", String::from_utf8_lossy(&early.stderr));
+    run_shards(&plan, &[0]);
+    run_shards(&plan, &[1, 2]);
+    let out = dir.path().join("cal");
+    let m = merge(&plan, &out, None);
+    assert!(m.status.success(), "{}", String::from_utf8_lossy(&m.stderr));
+    assert_eq!(std::fs::read(reference.join("calibration.json")).unwrap(), std::fs::read(out.join("calibration.json")).unwrap());
+    assert_eq!(std::fs::read(reference.join("efficiency.csv")).unwrap(), std::fs::read(out.join("efficiency.csv")).unwrap());
+}
+
+fn refused(plan: &Path, out: &Path, state: &Path, expect: &[&str]) {
+    let m = merge(plan, out, Some(state));
+    let err = String::from_utf8_lossy(&m.stderr);
+    assert_eq!(m.status.code(), Some(2), "merge should refuse: {err}");
+    for e in expect {
+        assert!(err.contains(e), "message lacks {e:?}: {err}");
+    }
+    assert!(!state.join("state.json").exists(), "a refused merge writes no state");
+}
+
+/// Missing, duplicated and foreign shard files are refused with a message naming the file.
+#[test]
+fn merge_refuses_missing_duplicated_and_foreign_shards() {
+    let dir = tempfile::tempdir().unwrap();
+    let nights = three_nights(dir.path());
+    let plan = plan_reduction(&dir.path().join("work"), &nights, 3);
+    let other = plan_reduction(&dir.path().join("other"), &nights[..2], 3);
+    run_shards(&plan, &[0, 1, 2]);
+    run_shards(&other, &[1]);
+    let shards = dir.path().join("work/shards");
+    let (f0, f1) = (shards.join("shard-0000.json"), shards.join("shard-0001.json"));
+    let good = std::fs::read(&f1).unwrap();
+    let (out, state) = (dir.path().join("out"), dir.path().join("state"));
+
+    std::fs::remove_file(&f1).unwrap();
+    refused(&plan, &out, &state, &["shard-0001.json: missing", "shard-run"]);
+    std::fs::copy(&f0, &f1).unwrap();
+    refused(&plan, &out, &state, &["shard-0001.json: duplicated shard", "shard-0000.json"]);
+    std::fs::copy(dir.path().join("other/shards/shard-0001.json"), &f1).unwrap();
+    refused(&plan, &out, &state, &["shard-0001.json: foreign shard", "plan_sha256"]);
+    std::fs::write(&f1, &good).unwrap();
+    std::fs::write(shards.join("shard-0007.json"), b"{}").unwrap();
+    refused(&plan, &out, &state, &["shard-0007.json: foreign shard file", "0..3"]);
+    std::fs::remove_file(shards.join("shard-0007.json")).unwrap();
+    let m = merge(&plan, &out, Some(&state));
+    assert!(m.status.success(), "{}", String::from_utf8_lossy(&m.stderr));
+}
+
+/// A shard killed with SIGKILL mid-run leaves no shard file (the merge refuses it as
+/// missing); rerun, the merge equals the single-machine result.
+#[test]
+fn killed_shard_rerun_gives_the_same_result() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut nights = three_nights(dir.path());
+    nights[1] = night(dir.path(), 14, 5.2015e9, 3000);
+    let reference = nightly(dir.path(), &nights);
+    let plan = plan_reduction(&dir.path().join("work"), &nights, 3);
+    run_shards(&plan, &[0, 2]);
+    let mut child = axsift(&["shard-run", "--plan", s(&plan), "--index", "1"]).spawn().unwrap();
+    std::thread::sleep(std::time::Duration::from_millis(150));
+    assert!(child.try_wait().unwrap().is_none(), "the 3000-step shard should still be running");
+    child.kill().unwrap(); // SIGKILL on Unix
+    child.wait().unwrap();
+    let (out, state) = (dir.path().join("out"), dir.path().join("state"));
+    refused(&plan, &out, &state, &["shard-0001.json: missing"]);
+    run_shards(&plan, &[1]);
+    let m = merge(&plan, &out, Some(&state));
+    assert!(m.status.success(), "{}", String::from_utf8_lossy(&m.stderr));
+    assert_same_reduction((&reference.0, &reference.1), (&state, &out));
+}
+
+/// The shard index comes from SLURM_ARRAY_TASK_ID when --index is absent; a bad value or an
+/// index past the plan is refused.
+#[test]
+fn shard_index_from_the_slurm_environment() {
+    let dir = tempfile::tempdir().unwrap();
+    let nights = three_nights(dir.path());
+    let plan = plan_reduction(&dir.path().join("work"), &nights, 3);
+    let ok = axsift(&["shard-run", "--plan", s(&plan)]).env("SLURM_ARRAY_TASK_ID", "2").output().unwrap();
+    assert!(ok.status.success(), "{}", String::from_utf8_lossy(&ok.stderr));
+    assert!(dir.path().join("work/shards/shard-0002.json").exists());
+    assert!(!dir.path().join("work/shards/shard-0000.json").exists());
+    let bad = axsift(&["shard-run", "--plan", s(&plan)]).env("SLURM_ARRAY_TASK_ID", "x").output().unwrap();
+    assert_eq!(bad.status.code(), Some(2));
+    let past = axsift(&["shard-run", "--plan", s(&plan), "--index", "3"]).output().unwrap();
+    assert!(String::from_utf8_lossy(&past.stderr).contains("shard 3 does not exist"));
+}
