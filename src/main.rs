@@ -122,12 +122,16 @@ enum Command {
         #[arg(long)]
         config: PathBuf,
     },
-    /// Print an analysis state: nights and files, coverage, candidates by class.
-    /// Example: axsift status --state state/
+    /// Print an analysis state: nights and files, coverage, candidates by class (new,
+    /// persists, cleared, interference), the IF lines of each night and the limit range.
+    /// Example: axsift status --state state/ --json
     Status {
         /// Analysis state folder.
         #[arg(long)]
         state: PathBuf,
+        /// Print machine-readable JSON instead of text.
+        #[arg(long)]
+        json: bool,
     },
     /// Validate a run file and summarise it. Example: axsift inspect night.h5
     Inspect {
@@ -243,7 +247,7 @@ fn main() -> ExitCode {
                 None => reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet),
             })
             .and_then(|()| if report { write_report(&out, calibration.as_deref(), cli.quiet) } else { Ok(()) }),
-        Command::Status { state } => status(&state),
+        Command::Status { state, json } => status(&state, json),
         Command::Calibrate { config, out, scenario, seed, runs } => calibrate(&config, &out, scenario.as_deref(), seed, &runs, cli.quiet),
         Command::Forecast { config, run_plan, calibration, out } => forecast(&config, &run_plan, &calibration, &out, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
@@ -353,6 +357,9 @@ fn reduce_into_state(config_text: &str, config_name: &str, runs: &[PathBuf], cal
     let calibrated = calibration.as_ref().zip(limits.as_ref());
     let provenance = output::Provenance::new(config_text, runs).context("hashing the inputs")?;
     let written = update.reduction.write(out, config_text, &provenance, calibrated)?;
+    if let Some(limits) = &limits {
+        st.record_limit(limits, &update.reduction.spectrum, update.match_hz);
+    }
     st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
     if !quiet {
         print!("{}", output::console::night_report(&update.reduction, &provenance, calibrated, &written));
@@ -361,11 +368,18 @@ fn reduce_into_state(config_text: &str, config_name: &str, runs: &[PathBuf], cal
     Ok(())
 }
 
-fn status(state_dir: &Path) -> Result<(), Failure> {
+fn status(state_dir: &Path, json: bool) -> Result<(), Failure> {
     let st = axsift::state::State::load(state_dir)
         .map_err(|e| Failure::BadInput(e.into()))?
         .ok_or_else(|| Failure::BadInput(anyhow::anyhow!("{}: no state.json here", state_dir.display())))?;
+    if json {
+        println!("{}", serde_json::to_string_pretty(&axsift::state::StatusSummary::of(&st)).context("formatting JSON")?);
+        return Ok(());
+    }
     print!("{}", output::console::state_report(&st, &[]));
+    if st.limit.is_none() {
+        println!("  limit: none recorded (no update of this state was made with --calibration)");
+    }
     Ok(())
 }
 

@@ -47,6 +47,8 @@ pub struct Reduction {
     pub cuts: Vec<CutStep>,
     /// Night-wide facts.
     pub night: NightInfo,
+    /// The night's IF profile (interference fixed in IF) over the combined steps.
+    pub if_scan: crate::state::IfScan,
 }
 
 /// Errors of a reduction run.
@@ -203,10 +205,12 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     }
 
     let mut used_steps = Vec::new();
+    let mut if_profile = crate::state::IfProfile::new(&night);
     let mut done = 0;
     for_each_chunk(&readers, &night, injection, &mut steps, |chunk| {
         let n = chunk.len();
         let kept = run_stages(&mut step_stages, chunk, &night, &mut cuts, paths);
+        if_profile.add_all(&kept);
         for step in kept {
             combiner.add(step).map_err(ReduceError::Night)?;
             used_steps.push((step.index, step.meta));
@@ -220,7 +224,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     for stage in &spectrum_stages {
         stage.apply(&mut spectrum, &used_steps).map_err(ReduceError::Night)?;
     }
-    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night })
+    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: if_profile.finish() })
 }
 
 /// Applies `stages` to a chunk in parallel; returns the kept steps in order and records cuts.

@@ -4,7 +4,7 @@
 mod common;
 
 use axsift::config;
-use axsift::sim::{self, Axion};
+use axsift::sim::{self, Axion, IfBurst};
 use axsift::state::{self, Class, State};
 use common::{PIPELINE, null_scenario};
 use std::path::{Path, PathBuf};
@@ -96,7 +96,7 @@ fn refusals_are_clear() {
     let state_dir = dir.path().join("state");
     st.save(&state_dir).unwrap();
     let index = state_dir.join("state.json");
-    let text = std::fs::read_to_string(&index).unwrap().replace("\"schema_version\": 1", "\"schema_version\": 7");
+    let text = std::fs::read_to_string(&index).unwrap().replace(&format!("\"schema_version\": {}", state::STATE_SCHEMA_VERSION), "\"schema_version\": 7");
     std::fs::write(&index, text).unwrap();
     let err = State::load(&state_dir).unwrap_err().to_string();
     assert!(err.contains("state.json") && err.contains("schema_version") && err.contains('7'), "{err}");
@@ -135,4 +135,147 @@ fn a_killed_update_leaves_a_usable_state() {
         assert_eq!(bits(&done.weighted_sum), bits(&expected.weighted_sum), "kill after {delay_ms} ms");
         assert_eq!(done.candidates, expected.candidates);
     }
+}
+
+/// IF bins of the simulated receiver line of the interference tests: 30 bins (3 kHz) wide,
+/// 660 bins below the cavity (IF bin 2048), on in 12 of the night's 200 steps.
+const BURST_IF_BINS: std::ops::Range<usize> = 1388..1418;
+
+/// A night like [`night`] with a receiver line fixed in IF that is on in steps 60 to 71:
+/// about 6 sigma per bin in each of those steps (power 0.045 k_B T dnu_b, N = 20000).
+fn night_with_burst(seed: u64, dir: &Path) -> PathBuf {
+    let mut sc = null_scenario(seed);
+    sc.scan.n_steps = 200;
+    sc.scan.first_cavity_freq_hz = 5.2e9;
+    sc.axion.push(Axion { freq_hz: 5.2021e9, coupling_rel_ksvz: 1.2 });
+    sc.if_burst = BURST_IF_BINS.map(|if_bin| IfBurst { if_bin, power_rel: 0.045, first_step: 60, last_step: 71 }).collect();
+    let path = dir.join(format!("burst-{seed}.h5"));
+    sim::simulate(&sc, &path).unwrap();
+    path
+}
+
+/// RF span (line-start frequencies) that the burst reaches: its IF bins in steps 60 to 71.
+fn burst_rf_span_hz(seed: u64) -> (f64, f64) {
+    let mut sc = null_scenario(seed);
+    sc.scan.first_cavity_freq_hz = 5.2e9;
+    let bw = sc.scan.bin_width_hz;
+    (sc.start_freq_hz(60) + BURST_IF_BINS.start as f64 * bw, sc.start_freq_hz(71) + BURST_IF_BINS.end as f64 * bw)
+}
+
+/// Acceptance: a receiver line fixed in IF, on in part of a night, shows in that night's IF
+/// profile at its IF bins; the candidates it makes in RF are classified interference at once,
+/// with the IF offsets, their IF-profile significance and the steps as evidence; the
+/// injected axion is not, and persists after a rescan night, which clears the noise
+/// candidates. The state saves and reloads with the new class and evidence.
+#[test]
+fn an_if_fixed_line_is_interference_and_the_axion_persists() {
+    let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let mut st = State::new(state::plan_hash(&plan));
+    let first = night_with_burst(41, dir.path());
+    state::add_nights(&mut st, &plan, &[vec![first]]).unwrap();
+
+    let lines: Vec<usize> = st.nights[0].if_lines.iter().map(|l| l.if_bin).collect();
+    let inside = lines.iter().filter(|k| BURST_IF_BINS.contains(k)).count();
+    assert!(inside >= BURST_IF_BINS.len() / 2, "IF lines {lines:?}");
+    // Outside the line's bins (and the baseline fit's reach around them) the null holds.
+    let outside: Vec<&usize> = lines.iter().filter(|&&k| k + 200 < BURST_IF_BINS.start || k > BURST_IF_BINS.end + 200).collect();
+    assert!(outside.is_empty(), "IF lines away from the burst: {outside:?}");
+
+    let (lo, hi) = burst_rf_span_hz(41);
+    let bursty: Vec<_> = st.candidates.iter().filter(|c| c.frequency_hz > lo - 5e3 && c.frequency_hz < hi).collect();
+    assert!(!bursty.is_empty(), "the burst should make candidates in {lo}..{hi} Hz: {:#?}", st.candidates);
+    let interference: Vec<_> = bursty.iter().filter(|c| c.class == Class::Interference).collect();
+    assert!(interference.len() as f64 >= 0.8 * bursty.len() as f64, "{:#?}", bursty);
+    let n_interference = interference.len();
+    for c in &interference {
+        let ev = c.interference.as_ref().expect("interference evidence");
+        assert!(ev.n_steps >= 1 && ev.significance_without <= 3.355 + 1e-9, "{ev:?}");
+        assert!(ev.lines.iter().all(|l| l.night == 0 && BURST_IF_BINS.contains(&l.if_bin) && l.if_profile_sigma > state::IF_LINE_SIGMA), "{ev:?}");
+        assert!(ev.lines.iter().all(|l| l.if_offset_hz == l.if_bin as f64 * 100.0));
+        assert!(c.evidence.contains("fixed-IF line") && c.evidence.contains("IF bin"), "{}", c.evidence);
+    }
+    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion flagged");
+    assert_eq!(axion.class, Class::New, "{}", axion.evidence);
+    let noise_first: Vec<f64> = st.candidates.iter().filter(|c| c.class == Class::New && (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
+
+    let state_dir = dir.path().join("state");
+    st.save(&state_dir).unwrap();
+    let mut st = State::load(&state_dir).unwrap().unwrap();
+    assert_eq!(st.candidates.iter().filter(|c| c.class == Class::Interference).count(), n_interference);
+    assert!(st.nights[0].if_profile_sigma.len() == 4096 && st.nights[0].if_steps.iter().all(|&n| n <= 200));
+
+    state::add_nights(&mut st, &plan, &[vec![night(42, 5.2e9, dir.path(), true)]]).unwrap();
+    assert!(st.nights[1].if_lines.iter().all(|l| !BURST_IF_BINS.contains(&l.if_bin)), "{:?}", st.nights[1].if_lines);
+    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).unwrap();
+    assert_eq!(axion.class, Class::Persists, "{}", axion.evidence);
+    let cleared = st.candidates.iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
+    assert!(cleared as f64 >= 0.7 * noise_first.len() as f64, "{cleared} of {} cleared", noise_first.len());
+    assert_eq!(st.candidates.iter().filter(|c| c.class == Class::Interference).count(), n_interference, "interference stays interference");
+}
+
+/// The IF profile is accumulated in step order whatever the thread count: one and two
+/// threads give bit-identical profiles and line samples.
+#[test]
+fn the_if_profile_does_not_depend_on_the_thread_count() {
+    let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let file = night_with_burst(43, dir.path());
+    let scan = |threads: usize| {
+        let pool = rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap();
+        pool.install(|| axsift::pipeline::reduce(&plan, std::slice::from_ref(&file), &|_, _| {}).unwrap().if_scan)
+    };
+    let (one, two) = (scan(1), scan(2));
+    assert!(!one.lines.is_empty());
+    assert_eq!(bits(&one.if_profile_sigma), bits(&two.if_profile_sigma));
+    assert_eq!(bits(&one.removed_weighted_sum), bits(&two.removed_weighted_sum));
+    assert_eq!((one.lines, one.removed_if_bin, one.if_steps), (two.lines, two.removed_if_bin, two.if_steps));
+}
+
+/// `status` prints the nights, coverage and candidates by class of a state written by
+/// `reduce --state`; `status --json` gives the same as JSON with unit-named keys, agreeing
+/// with the state read through the library.
+#[test]
+fn status_reports_text_and_json() {
+    let dir = tempfile::tempdir().unwrap();
+    let exe = env!("CARGO_BIN_EXE_axsift");
+    let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    let state_dir = dir.path().join("state");
+    for file in [night_with_burst(51, dir.path()), night(52, 5.2e9, dir.path(), true)] {
+        let out = Command::new(exe).args(["-q", "reduce", "--config", pipeline, "--state"]).arg(&state_dir).arg("--out").arg(dir.path().join("out")).arg(&file).output().unwrap();
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    }
+    let st = State::load(&state_dir).unwrap().unwrap();
+    let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
+    assert!(count(Class::Interference) > 0 && count(Class::Persists) > 0);
+
+    let text = Command::new(exe).args(["status", "--state"]).arg(&state_dir).output().unwrap();
+    assert!(text.status.success());
+    let text = String::from_utf8(text.stdout).unwrap();
+    assert!(text.contains("2 night(s), 2 run file(s)"), "{text}");
+    assert!(text.contains(&format!("{} interference", count(Class::Interference))) && text.contains("Interference (fixed IF offset"), "{text}");
+    assert!(text.contains("night 0:") && text.contains("IF bin(s) with a line"), "{text}");
+    assert!(text.contains("limit: none recorded"), "{text}");
+
+    let json = Command::new(exe).args(["status", "--json", "--state"]).arg(&state_dir).output().unwrap();
+    assert!(json.status.success());
+    let v: serde_json::Value = serde_json::from_slice(&json.stdout).unwrap();
+    assert_eq!(v["schema_version"], state::STATE_SCHEMA_VERSION);
+    assert_eq!(v["nights"].as_array().unwrap().len(), 2);
+    assert_eq!(v["nights"][0]["n_steps"], 200);
+    assert!(v["nights"][0]["if_line_bins"].as_array().unwrap().iter().any(|k| BURST_IF_BINS.contains(&(k.as_u64().unwrap() as usize))));
+    assert_eq!(v["bin_width_hz"], 100.0);
+    assert_eq!(v["rf_span_hz"][0].as_f64().unwrap(), st.rf_origin_hz);
+    let covered = st.coverage.iter().filter(|&&c| c > 0).count() as f64 * 100.0;
+    assert_eq!(v["covered_hz"].as_f64().unwrap(), covered);
+    for (key, class) in [("new", Class::New), ("persists", Class::Persists), ("cleared", Class::Cleared), ("interference", Class::Interference)] {
+        assert_eq!(v["candidates_by_class"][key].as_u64().unwrap() as usize, count(class), "{key}");
+    }
+    assert_eq!(v["candidates"].as_array().unwrap().len(), st.candidates.len());
+    assert!(v["candidates"].as_array().unwrap().iter().any(|c| c["class"] == "interference" && c["evidence"].as_str().unwrap().contains("fixed-IF line")));
+    assert!(v["limit"].is_null());
+
+    let missing = Command::new(exe).args(["status", "--json", "--state"]).arg(dir.path().join("nothing")).output().unwrap();
+    assert_eq!(missing.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&missing.stderr).contains("no state.json"));
 }

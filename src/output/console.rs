@@ -183,7 +183,38 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
         let _ = writeln!(out, "  changed: {c}");
     }
     let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
-    let _ = writeln!(out, "  candidates: {} new, {} persist, {} cleared", count(Class::New), count(Class::Persists), count(Class::Cleared));
+    let _ = writeln!(
+        out,
+        "  candidates: {} new, {} persist, {} cleared, {} interference",
+        count(Class::New),
+        count(Class::Persists),
+        count(Class::Cleared),
+        count(Class::Interference)
+    );
+    for n in st.nights.iter().filter(|n| !n.if_lines.is_empty()) {
+        let peak = n.if_lines.iter().map(|l| l.if_profile_sigma).fold(f64::NEG_INFINITY, f64::max);
+        let (lo, hi) = (n.if_lines[0].if_offset_hz, n.if_lines[n.if_lines.len() - 1].if_offset_hz);
+        let _ = writeln!(out, "  night {}: {} IF bin(s) with a line, +{:.1} to +{:.1} kHz into the step, up to {peak:.1} sigma", n.index, n.if_lines.len(), lo / 1e3, hi / 1e3);
+    }
+    if let Some(l) = &st.limit {
+        let _ = writeln!(
+            out,
+            "  limit (night {}, {:.0}% confidence): |g_gamma| / KSVZ {:.3} to {:.3} over {} bins",
+            l.night,
+            100.0 * l.confidence,
+            l.min_rel_ksvz,
+            l.max_rel_ksvz,
+            l.excluded_bins
+        );
+    }
+    let interference: Vec<_> = st.candidates.iter().filter(|c| c.class == Class::Interference).collect();
+    if !interference.is_empty() {
+        let _ = writeln!(out, "\n  Interference (fixed IF offset; no rescan needed):");
+        let _ = writeln!(out, "  {:>20}  {:>8}  {}", "RF frequency (MHz)", "grand", "evidence");
+        for c in interference {
+            let _ = writeln!(out, "  {:>20.6}  {:>8.2}  {}", c.frequency_hz / 1e6, c.significance, c.evidence);
+        }
+    }
     let open: Vec<_> = st.candidates.iter().filter(|c| c.class.is_open()).collect();
     if !open.is_empty() {
         let _ = writeln!(out, "\n  Rescan plan (target SNR {}):", crate::state::RESCAN_TARGET_SNR);

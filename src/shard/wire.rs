@@ -5,7 +5,7 @@
 use crate::pipeline::{CutStep, Reduction};
 use crate::runfile::{RunHeader, StepMeta};
 use crate::stage::{NightInfo, Spectrum};
-use crate::state::ReducedNight;
+use crate::state::{IfLine, IfScan, ReducedNight};
 use serde::{Deserialize, Serialize};
 use std::path::PathBuf;
 
@@ -32,6 +32,20 @@ pub struct NightWire {
     #[serde(with = "super::bits")]
     rf_span_hz: Vec<f64>,
     headers: Vec<HeaderWire>,
+    if_scan: IfScanWire,
+}
+
+#[derive(Debug, Serialize, Deserialize)]
+struct IfScanWire {
+    #[serde(with = "super::bits")]
+    if_profile_sigma: Vec<f64>,
+    if_steps: Vec<u32>,
+    lines: Vec<IfLine>,
+    #[serde(with = "super::bits")]
+    removed_weight: Vec<f64>,
+    #[serde(with = "super::bits")]
+    removed_weighted_sum: Vec<f64>,
+    removed_if_bin: Vec<i32>,
 }
 
 #[derive(Debug, Serialize, Deserialize)]
@@ -86,6 +100,14 @@ impl NightWire {
                 .iter()
                 .map(|h| HeaderWire { floats: vec![h.bin_width_hz, h.magnet_field_t, h.cavity_volume_m3, h.form_factor], run_label: h.run_label.clone() })
                 .collect(),
+            if_scan: IfScanWire {
+                if_profile_sigma: r.if_scan.if_profile_sigma.clone(),
+                if_steps: r.if_scan.if_steps.clone(),
+                lines: r.if_scan.lines.clone(),
+                removed_weight: r.if_scan.removed_weight.clone(),
+                removed_weighted_sum: r.if_scan.removed_weighted_sum.clone(),
+                removed_if_bin: r.if_scan.removed_if_bin.clone(),
+            },
         }
     }
 
@@ -128,7 +150,16 @@ impl NightWire {
         };
         let night = NightInfo { bin_width_hz: headers[0].bin_width_hz, n_bins: self.n_bins, rf_span_hz: (self.rf_span_hz[0], self.rf_span_hz[1]), headers };
         let cuts = self.cuts.into_iter().map(|c| CutStep { step: c.step, file: c.file, row: c.row, stage: c.stage, reason: c.reason }).collect();
-        let reduction = Reduction { spectrum, n_steps_in: self.n_steps_in, used_steps, cuts, night };
+        let w = self.if_scan;
+        let if_scan = IfScan {
+            if_profile_sigma: w.if_profile_sigma,
+            if_steps: w.if_steps,
+            lines: w.lines,
+            removed_weight: w.removed_weight,
+            removed_weighted_sum: w.removed_weighted_sum,
+            removed_if_bin: w.removed_if_bin,
+        };
+        let reduction = Reduction { spectrum, n_steps_in: self.n_steps_in, used_steps, cuts, night, if_scan };
         Ok(ReducedNight { inputs: self.inputs, n_steps: self.n_steps, reduction })
     }
 }

@@ -3,8 +3,9 @@
 //! Each step: raw power P[k] = G[k] b_i[k] (k_B T dnu_b (1 + n_k / sqrt(N)) + S_k + I_k), with
 //! G a fixed gain ripple, b_i a slowly varying per-step baseline (random quadratic), n_k unit
 //! Gaussian noise, S_k injected axion power (signal power formula times the lineshape
-//! integrated over the bin) and I_k narrowband interference fixed in IF or RF. Step i uses a
-//! random stream seeded by (seed, i), so files are reproducible whatever the thread count.
+//! integrated over the bin) and I_k narrowband interference fixed in IF or RF (IF lines also as
+//! bursts, on for a range of steps only). Step i uses a random stream seeded by (seed, i), so
+//! files are reproducible whatever the thread count.
 
 use crate::physics::constants::{BOLTZMANN_J_PER_K, DEFAULT_DM_DENSITY_GEV_PER_CM3, G_GAMMA_KSVZ};
 use crate::physics::lineshape::HaloModel;
@@ -37,6 +38,9 @@ pub struct Scenario {
     /// Narrowband interference lines.
     #[serde(default)]
     pub interference: Vec<Interference>,
+    /// Interference lines fixed in IF that are on for a range of steps only.
+    #[serde(default)]
+    pub if_burst: Vec<IfBurst>,
     /// Injected axion signals.
     #[serde(default)]
     pub axion: Vec<Axion>,
@@ -111,6 +115,22 @@ pub struct Interference {
     pub position: f64,
     /// Power in units of the per-bin noise power k_B T dnu_b.
     pub power_rel: f64,
+}
+
+/// A narrowband line at a fixed IF bin, on from step `first_step` to `last_step` (inclusive).
+/// A line of constant power in every step is absorbed by the night's gain shape; one that
+/// comes and goes is what reaches the spectrum.
+#[derive(Debug, Clone, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct IfBurst {
+    /// IF bin of the line.
+    pub if_bin: usize,
+    /// Power in units of the per-bin noise power k_B T dnu_b.
+    pub power_rel: f64,
+    /// First step with the line on.
+    pub first_step: usize,
+    /// Last step with the line on.
+    pub last_step: usize,
 }
 
 /// An injected axion.
@@ -197,6 +217,9 @@ fn step(sc: &Scenario, i: usize) -> (StepMeta, Array1<f32>) {
             if here {
                 excess += line.power_rel * noise_w;
             }
+        }
+        for burst in sc.if_burst.iter().filter(|b| b.if_bin == k && (b.first_step..=b.last_step).contains(&i)) {
+            excess += burst.power_rel * noise_w;
         }
         *p = (gain * drift * (noise_w * (1.0 + noise / root_n) + excess)) as f32;
     }

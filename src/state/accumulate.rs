@@ -1,6 +1,7 @@
 //! Adding nights to the state: per-night combination, accumulation on the state's RF grid,
 //! the spectrum stages on the accumulated spectrum, and candidate tracking.
 
+use super::interference::IfScan;
 use super::rescan;
 use super::store::{FileRecord, NightRecord, State, StateError};
 use crate::calib::PlanInfo;
@@ -25,6 +26,9 @@ pub struct Update {
     pub night: usize,
     /// Changes of candidate class.
     pub changes: Vec<String>,
+    /// Distance within which a tracked candidate matches a grand-spectrum one (a line's
+    /// mean width), Hz.
+    pub match_hz: f64,
 }
 
 /// SHA-256 over every stage's kind and resolved options, in order.
@@ -112,17 +116,34 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) ->
     check_new(state, &night.inputs)?;
     let ReducedNight { inputs, n_steps, reduction: night_red } = night;
     let night_index = state.nights.len();
-    let offset = merge(state, &night_red.spectrum)?;
+    let offset = merge(state, &night_red.spectrum, &night_red.if_scan, night_index)?;
 
-    let mut spectrum = accumulated(state, night_red.spectrum.step_span_hz);
+    let mut spectrum = accumulated(state, night_red.spectrum.step_span_hz, false);
     let info = NightInfo { rf_span_hz: (spectrum.freq_hz(0), spectrum.freq_hz(spectrum.combined.len() - 1)), ..night_red.night.clone() };
     // The whole plan is built for the accumulated grid (so the filter sees the baseline
     // kernel for its spread prediction); only its spectrum stages are applied.
-    for built in plan.build(&info).map_err(refused)? {
-        if let Built::Spectrum(stage) = built {
-            stage.apply(&mut spectrum, &night_red.used_steps).map_err(refused)?;
-        }
+    let stages: Vec<_> = plan.build(&info).map_err(refused)?.into_iter().filter_map(|b| if let Built::Spectrum(stage) = b { Some(stage) } else { None }).collect();
+    for stage in &stages {
+        stage.apply(&mut spectrum, &night_red.used_steps).map_err(refused)?;
     }
+    // The same stages on the spectrum without the IF-line samples, if there are any.
+    let without = if state.line_steps.iter().any(|&n| n > 0) {
+        let mut without = accumulated(state, night_red.spectrum.step_span_hz, true);
+        for stage in &stages {
+            stage.apply(&mut without, &night_red.used_steps).map_err(refused)?;
+        }
+        Some(without)
+    } else {
+        None
+    };
+    state.nights.push(NightRecord {
+        index: night_index,
+        files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
+        n_steps_used: night_red.used_steps.len(),
+        if_lines: night_red.if_scan.lines.clone(),
+        if_profile_sigma: night_red.if_scan.if_profile_sigma.clone(),
+        if_steps: night_red.if_scan.if_steps.clone(),
+    });
 
     let plan_info = PlanInfo::from_plan(plan).map_err(refused)?;
     let night_cov = &night_red.spectrum.coverage;
@@ -130,16 +151,12 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) ->
     let integration = |j: usize| rescan_integration_s(&spectrum, &night_red, &plan_info, j);
     let match_hz = spectrum.freq_hz(0) * plan_info.halo.mean_beta_sq();
     let mut tracked = std::mem::take(&mut state.candidates);
-    let changes = rescan::update(&mut tracked, &spectrum, night_index, match_hz, &covered, &integration);
+    let explain = |j: usize| line_sources(state, j, (match_hz / spectrum.bin_width_hz).ceil() as usize);
+    let view = without.as_ref().map(|without| rescan::LineView { without, explain: &explain });
+    let changes = rescan::update(&mut tracked, &spectrum, view.as_ref(), night_index, match_hz, &covered, &integration);
     state.candidates = tracked;
-
-    state.nights.push(NightRecord {
-        index: night_index,
-        files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
-        n_steps_used: night_red.used_steps.len(),
-    });
     let reduction = Reduction { spectrum, ..night_red };
-    Ok(Update { reduction, night: night_index, changes })
+    Ok(Update { reduction, night: night_index, changes, match_hz })
 }
 
 /// The plan up to and including the combine stage.
@@ -150,8 +167,36 @@ fn up_to_combine(plan: &Plan) -> Result<Plan, StateError> {
     Ok(front)
 }
 
-/// Adds a night's combined spectrum to the state's sums; returns the night's offset in bins.
-fn merge(state: &mut State, sp: &Spectrum) -> Result<usize, StateError> {
+/// The IF lines with samples in the filter window of an axion line starting at RF bin `j`,
+/// and the number of steps those samples came from (the latest night's, where nights
+/// overlap). The window runs from `reach` bins (the line's mean width)
+/// below to six times that above: a Maxwellian line keeps 99.9 % of its power within 5.4
+/// times its mean (chi-square quantile with 3 degrees of freedom, 16.27 / 3, computed).
+fn line_sources(state: &State, j: usize, reach: usize) -> Option<(Vec<rescan::LineSource>, u32)> {
+    let window = j.saturating_sub(reach)..(j + 6 * reach + 1).min(state.line_steps.len());
+    let mut sources: Vec<rescan::LineSource> = Vec::new();
+    // A step is known by its night and first RF bin (the sample's RF bin less its IF bin).
+    let mut steps: Vec<(usize, usize)> = Vec::new();
+    for b in window {
+        if state.line_steps[b] == 0 {
+            continue;
+        }
+        let (night, if_bin) = (state.line_night[b].max(0) as usize, state.line_if_bin[b].max(0) as usize);
+        let step = (night, b.wrapping_sub(if_bin));
+        if !steps.contains(&step) {
+            steps.push(step);
+        }
+        if !sources.iter().any(|s| s.night == night && s.if_bin == if_bin) {
+            let if_profile_sigma = state.nights.get(night).and_then(|n| n.if_profile_sigma.get(if_bin)).copied().unwrap_or(f64::NAN);
+            sources.push(rescan::LineSource { night, if_bin, if_offset_hz: if_bin as f64 * state.bin_width_hz, if_profile_sigma });
+        }
+    }
+    (!steps.is_empty()).then_some((sources, steps.len() as u32))
+}
+
+/// Adds a night's combined spectrum, and the IF-line samples of its IF profile, to the
+/// state's sums; returns the night's offset in bins.
+fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, night_index: usize) -> Result<usize, StateError> {
     if state.weight.is_empty() {
         state.bin_width_hz = sp.bin_width_hz;
         state.rf_origin_hz = sp.rf_start_hz;
@@ -166,18 +211,36 @@ fn merge(state: &mut State, sp: &Spectrum) -> Result<usize, StateError> {
     }
     if whole < 0.0 {
         let pad = (-whole) as usize;
-        for v in [&mut state.weight, &mut state.weighted_sum] {
+        for v in [&mut state.weight, &mut state.weighted_sum, &mut state.line_weight, &mut state.line_weighted_sum] {
             v.splice(0..0, std::iter::repeat_n(0.0, pad));
         }
-        state.coverage.splice(0..0, std::iter::repeat_n(0, pad));
+        for v in [&mut state.coverage, &mut state.line_steps] {
+            v.splice(0..0, std::iter::repeat_n(0, pad));
+        }
+        for v in [&mut state.line_night, &mut state.line_if_bin] {
+            v.splice(0..0, std::iter::repeat_n(-1, pad));
+        }
         state.rf_origin_hz = sp.rf_start_hz;
     }
     let first = whole.max(0.0) as usize;
     let needed = first + sp.combined.len();
     if state.weight.len() < needed {
-        state.weight.resize(needed, 0.0);
-        state.weighted_sum.resize(needed, 0.0);
-        state.coverage.resize(needed, 0);
+        for v in [&mut state.weight, &mut state.weighted_sum, &mut state.line_weight, &mut state.line_weighted_sum] {
+            v.resize(needed, 0.0);
+        }
+        for v in [&mut state.coverage, &mut state.line_steps] {
+            v.resize(needed, 0);
+        }
+        for v in [&mut state.line_night, &mut state.line_if_bin] {
+            v.resize(needed, -1);
+        }
+    }
+    for (k, &w) in scan.removed_weight.iter().enumerate().filter(|(k, w)| **w > 0.0 && *k < sp.combined.len()) {
+        state.line_weight[first + k] += w;
+        state.line_weighted_sum[first + k] += scan.removed_weighted_sum[k];
+        state.line_steps[first + k] += 1;
+        state.line_night[first + k] = night_index as i32;
+        state.line_if_bin[first + k] = scan.removed_if_bin[k];
     }
     for (k, (&c, &s)) in sp.combined.iter().zip(&sp.combined_sigma).enumerate() {
         if c.is_finite() && s.is_finite() && s > 0.0 {
@@ -190,14 +253,25 @@ fn merge(state: &mut State, sp: &Spectrum) -> Result<usize, StateError> {
     Ok(first)
 }
 
-/// The combined spectrum of all nights so far.
-fn accumulated(state: &State, step_span_hz: f64) -> Spectrum {
+/// The combined spectrum of all nights so far; with `without_lines`, of all their samples
+/// except the IF-line ones (bins without such samples are the same, bit for bit).
+fn accumulated(state: &State, step_span_hz: f64, without_lines: bool) -> Spectrum {
+    let n = state.weight.len();
+    let (mut weight, mut weighted_sum, mut coverage) = (state.weight.clone(), state.weighted_sum.clone(), state.coverage.clone());
+    if without_lines {
+        for j in (0..n).filter(|&j| state.line_steps[j] > 0) {
+            let rest = state.weight[j] - state.line_weight[j];
+            // Nothing left (up to rounding) when every sample of the bin was a line sample.
+            (weight[j], weighted_sum[j]) = if rest > 1e-9 * state.weight[j] { (rest, state.weighted_sum[j] - state.line_weighted_sum[j]) } else { (0.0, 0.0) };
+            coverage[j] = state.coverage[j].saturating_sub(state.line_steps[j]);
+        }
+    }
     Spectrum {
         rf_start_hz: state.rf_origin_hz,
         bin_width_hz: state.bin_width_hz,
-        combined: state.weighted_sum.iter().zip(&state.weight).map(|(s, w)| if *w > 0.0 { s / w } else { f64::NAN }).collect(),
-        combined_sigma: state.weight.iter().map(|w| if *w > 0.0 { w.sqrt().recip() } else { f64::INFINITY }).collect(),
-        coverage: state.coverage.clone(),
+        combined: weighted_sum.iter().zip(&weight).map(|(s, w)| if *w > 0.0 { s / w } else { f64::NAN }).collect(),
+        combined_sigma: weight.iter().map(|w| if *w > 0.0 { w.sqrt().recip() } else { f64::INFINITY }).collect(),
+        coverage,
         step_span_hz,
         ..Spectrum::default()
     }

@@ -1,0 +1,226 @@
+//! Interference fixed in IF: the night's IF profile, and the step samples it explains.
+//!
+//! An axion stays at one RF frequency as the LO moves; a receiver line stays at one IF offset
+//! (RF frequency minus the step's `start_freq_hz`). The night's gain shape is the mean raw
+//! power per IF bin, so a line of constant power in every step is divided out before it
+//! reaches the spectrum, and the mean residual of every IF bin over the night is close to zero
+//! by construction. What a line leaves behind is the part that comes and goes: extra scatter
+//! across the steps at its IF bin. The IF profile is therefore, per IF bin k, the weighted
+//! scatter of the combined-stage inputs (reference-axion units, weights 1/sigma^2) about
+//! their weighted mean,
+//!     chi2_k = sum w r^2 - (sum w r)^2 / sum w,   nu_k = steps_k - 1 degrees of freedom,
+//! scaled by the median of chi2_k / nu_k over all IF bins (the baseline fit removes a little
+//! of the variance, the same in every bin; a line touches few bins, so the median is the null
+//! scale) and turned into a significance with the Wilson-Hilferty normal approximation of
+//! chi-square (Wilson & Hilferty, PNAS 17, 684 (1931)). An IF bin above [`IF_LINE_SIGMA`]
+//! holds a line.
+//!
+//! While the steps stream through, every RF bin also keeps its most significant single-step
+//! sample (r / sigma) and the IF bin it came from. Where that sample sits in a line's IF bin,
+//! it is the line's sample: the state keeps it aside, and the spectrum without those samples
+//! tells whether a candidate is explained by them alone. Cost: a few operations per bin and
+//! step, arrays of the IF and RF lengths; the accumulation runs in step order, so the result
+//! does not depend on the thread count.
+
+use crate::stage::{NightInfo, Step};
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+
+/// Bins one parallel task of [`IfProfile::add_all`] works on.
+const PIECE_BINS: usize = 8192;
+
+/// Significance in the IF profile (excess scatter, in normal sigma) above which an IF bin
+/// holds a line. With 4096 IF bins a null night puts a bin above 5 sigma with probability
+/// 4096 x 2.9e-7 = 1.2e-3 (one-sided normal tail, computed).
+pub const IF_LINE_SIGMA: f64 = 5.0;
+
+/// The streaming accumulator: fed every step that reaches the combination, in step order.
+#[derive(Debug, Clone, Default)]
+pub struct IfProfile {
+    origin_hz: f64,
+    bin_width_hz: f64,
+    /// Per IF bin: valid samples, sum w, sum w r, sum w r^2.
+    steps: Vec<u32>,
+    weight: Vec<f64>,
+    weighted_sum: Vec<f64>,
+    weighted_sq_sum: Vec<f64>,
+    /// Per RF bin of the night's grid: the most significant sample (r / sigma), its weight,
+    /// value and IF bin.
+    top_z: Vec<f64>,
+    top_weight: Vec<f64>,
+    top_value: Vec<f64>,
+    top_if_bin: Vec<u32>,
+}
+
+/// A line found in a night's IF profile.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct IfLine {
+    /// IF bin (position within the step).
+    pub if_bin: usize,
+    /// IF offset: RF frequency minus the step's start frequency, Hz.
+    pub if_offset_hz: f64,
+    /// Excess scatter in the IF profile, normal sigma.
+    pub if_profile_sigma: f64,
+    /// Steps with a valid sample in this IF bin.
+    pub n_steps: u32,
+}
+
+/// A night's finished IF profile and the RF samples its lines explain.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct IfScan {
+    /// Per IF bin: excess scatter in normal sigma (NaN with fewer than 3 steps).
+    pub if_profile_sigma: Vec<f64>,
+    /// Per IF bin: steps with a valid sample.
+    pub if_steps: Vec<u32>,
+    /// IF bins above [`IF_LINE_SIGMA`].
+    pub lines: Vec<IfLine>,
+    /// Per RF bin of the night's grid (origin at the night's lowest start frequency): weight
+    /// of the line sample set aside (0 = none).
+    pub removed_weight: Vec<f64>,
+    /// Per RF bin: weight times value of that sample.
+    pub removed_weighted_sum: Vec<f64>,
+    /// Per RF bin: IF bin of that sample (-1 = none).
+    pub removed_if_bin: Vec<i32>,
+}
+
+impl IfProfile {
+    /// An empty profile for a night's IF length and RF grid (the combine stage's grid).
+    pub fn new(night: &NightInfo) -> Self {
+        let (lo, hi) = night.rf_span_hz;
+        let n_rf = ((hi - lo) / night.bin_width_hz).round().max(0.0) as usize + 1;
+        Self {
+            origin_hz: lo,
+            bin_width_hz: night.bin_width_hz,
+            steps: vec![0; night.n_bins],
+            weight: vec![0.0; night.n_bins],
+            weighted_sum: vec![0.0; night.n_bins],
+            weighted_sq_sum: vec![0.0; night.n_bins],
+            top_z: vec![f64::NEG_INFINITY; n_rf],
+            top_weight: vec![0.0; n_rf],
+            top_value: vec![0.0; n_rf],
+            top_if_bin: vec![0; n_rf],
+        }
+    }
+
+    /// Adds consecutive steps as they enter the combination, in step order (values and sigma
+    /// in reference-axion units). IF bins and RF bins are worked on in pieces in parallel;
+    /// within a piece the steps are taken in their order, so the sums and the kept samples do
+    /// not depend on the number of threads.
+    pub fn add_all(&mut self, steps: &[&Step]) {
+        let n_if = self.steps.len();
+        let (steps_k, weight, weighted_sum, weighted_sq_sum) = (&mut self.steps, &mut self.weight, &mut self.weighted_sum, &mut self.weighted_sq_sum);
+        steps_k.par_chunks_mut(PIECE_BINS).zip(weight.par_chunks_mut(PIECE_BINS)).zip(weighted_sum.par_chunks_mut(PIECE_BINS)).zip(weighted_sq_sum.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
+            |(piece, (((count, w_sum), wr_sum), wrr_sum))| {
+                let a = piece * PIECE_BINS;
+                for step in steps {
+                    for (i, k) in (a..a + count.len()).enumerate() {
+                        if let Some((r, w)) = sample(step, k) {
+                            count[i] += 1;
+                            w_sum[i] += w;
+                            wr_sum[i] += w * r;
+                            wrr_sum[i] += w * r * r;
+                        }
+                    }
+                }
+            },
+        );
+        let placed: Vec<(i64, &Step)> = steps.iter().map(|&step| (((step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz).round() as i64, step)).collect();
+        let (top_z, top_weight, top_value, top_if_bin) = (&mut self.top_z, &mut self.top_weight, &mut self.top_value, &mut self.top_if_bin);
+        top_z.par_chunks_mut(PIECE_BINS).zip(top_weight.par_chunks_mut(PIECE_BINS)).zip(top_value.par_chunks_mut(PIECE_BINS)).zip(top_if_bin.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
+            |(piece, (((z_top, w_top), r_top), k_top))| {
+                // This piece holds RF bins a..b.
+                let a = (piece * PIECE_BINS) as i64;
+                let b = a + z_top.len() as i64;
+                for &(first, step) in &placed {
+                    for j in first.max(a)..(first + n_if as i64).min(b) {
+                        let (k, i) = ((j - first) as usize, (j - a) as usize);
+                        // Strictly greater: of equal samples the first in step order stays.
+                        if let Some((r, w)) = sample(step, k).filter(|&(r, w)| r * w.sqrt() > z_top[i]) {
+                            (z_top[i], w_top[i], r_top[i], k_top[i]) = (r * w.sqrt(), w, r, k as u32);
+                        }
+                    }
+                }
+            },
+        );
+    }
+
+    /// The profile's significances, its lines, and the RF samples in those lines.
+    pub fn finish(&self) -> IfScan {
+        let chi2: Vec<(f64, f64)> = (0..self.steps.len())
+            .map(|k| {
+                let nu = f64::from(self.steps[k]) - 1.0;
+                let w = self.weight[k];
+                let c = if nu >= 2.0 && w > 0.0 { (self.weighted_sq_sum[k] - self.weighted_sum[k] * self.weighted_sum[k] / w).max(0.0) } else { f64::NAN };
+                (c, nu)
+            })
+            .collect();
+        // Null scale: median over IF bins of chi2 / nu over the chi-square median's own ratio.
+        let mut ratios: Vec<f64> = chi2.iter().filter(|(c, _)| c.is_finite()).map(|&(c, nu)| c / nu / (1.0 - 2.0 / (9.0 * nu)).powi(3)).collect();
+        ratios.sort_by(f64::total_cmp);
+        let scale = ratios.get(ratios.len() / 2).copied().filter(|s| *s > 0.0);
+        let sigma: Vec<f64> = chi2
+            .iter()
+            .map(|&(c, nu)| match scale {
+                Some(scale) if c.is_finite() => wilson_hilferty_sigma(c / scale, nu),
+                _ => f64::NAN,
+            })
+            .collect();
+        let lines: Vec<IfLine> = sigma
+            .iter()
+            .enumerate()
+            .filter(|(_, z)| **z > IF_LINE_SIGMA)
+            .map(|(k, &z)| IfLine { if_bin: k, if_offset_hz: k as f64 * self.bin_width_hz, if_profile_sigma: z, n_steps: self.steps[k] })
+            .collect();
+        let in_line: Vec<bool> = sigma.iter().map(|z| *z > IF_LINE_SIGMA).collect();
+        let n_rf = self.top_z.len();
+        let mut scan = IfScan {
+            if_profile_sigma: sigma,
+            if_steps: self.steps.clone(),
+            lines,
+            removed_weight: vec![0.0; n_rf],
+            removed_weighted_sum: vec![0.0; n_rf],
+            removed_if_bin: vec![-1; n_rf],
+        };
+        for j in 0..n_rf {
+            let k = self.top_if_bin[j] as usize;
+            if self.top_z[j].is_finite() && in_line[k] {
+                scan.removed_weight[j] = self.top_weight[j];
+                scan.removed_weighted_sum[j] = self.top_weight[j] * self.top_value[j];
+                scan.removed_if_bin[j] = k as i32;
+            }
+        }
+        scan
+    }
+}
+
+/// A step's value and weight 1/sigma^2 in IF bin k, if valid.
+fn sample(step: &Step, k: usize) -> Option<(f64, f64)> {
+    let (r, s) = (*step.values.get(k)?, *step.sigma.get(k)?);
+    (r.is_finite() && s.is_finite() && s > 0.0).then(|| (r, 1.0 / (s * s)))
+}
+
+/// Normal significance of a chi-square value with `nu` degrees of freedom (Wilson-Hilferty:
+/// (chi2 / nu)^(1/3) is close to normal with mean 1 - 2 / (9 nu), variance 2 / (9 nu)).
+fn wilson_hilferty_sigma(chi2: f64, nu: f64) -> f64 {
+    let v = 2.0 / (9.0 * nu);
+    ((chi2 / nu).cbrt() - (1.0 - v)) / v.sqrt()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::wilson_hilferty_sigma;
+
+    /// Wilson-Hilferty against chi-square quantiles computed with statrs (exact inverse CDF).
+    #[test]
+    fn wilson_hilferty_matches_chi_square_quantiles() {
+        use statrs::distribution::{ChiSquared, ContinuousCDF, Normal};
+        let normal = Normal::new(0.0, 1.0).unwrap();
+        for nu in [10.0, 50.0, 200.0] {
+            let chi = ChiSquared::new(nu).unwrap();
+            for p in [0.5, 0.99, 1.0 - 2.87e-7] {
+                let z = wilson_hilferty_sigma(chi.inverse_cdf(p), nu);
+                assert!((z - normal.inverse_cdf(p)).abs() < 0.06 * normal.inverse_cdf(p).abs().max(1.0), "nu {nu} p {p}: {z}");
+            }
+        }
+    }
+}

@@ -1,0 +1,145 @@
+//! What `axsift status` reports about a state, as one serialisable summary.
+
+use super::{Class, LimitRange, State};
+use serde::Serialize;
+
+/// The state at a glance: nights and files, coverage, candidates by class, the limit range.
+/// Field names carry their units; the JSON form of `status --json` is this struct.
+#[derive(Debug, Clone, Serialize)]
+pub struct StatusSummary {
+    /// Layout version of the state read.
+    pub schema_version: u32,
+    /// Generation of its sums file.
+    pub generation: u64,
+    /// Nights in order, with their files.
+    pub nights: Vec<NightSummary>,
+    /// RF bin width, Hz.
+    pub bin_width_hz: f64,
+    /// Lowest and highest bin-centre RF frequency of the grid, Hz (null when empty).
+    pub rf_span_hz: Option<(f64, f64)>,
+    /// Total width of the covered bins, Hz.
+    pub covered_hz: f64,
+    /// Candidates per class.
+    pub candidates_by_class: ClassCounts,
+    /// Every tracked candidate.
+    pub candidates: Vec<CandidateSummary>,
+    /// The limit range of the latest calibrated update (null if none was calibrated).
+    pub limit: Option<LimitRange>,
+}
+
+/// One night of the summary.
+#[derive(Debug, Clone, Serialize)]
+pub struct NightSummary {
+    /// Position in the sequence of nights.
+    pub index: usize,
+    /// Its run files as given.
+    pub files: Vec<String>,
+    /// Steps read from its files.
+    pub n_steps: usize,
+    /// Steps that reached the combination.
+    pub n_steps_used: usize,
+    /// IF bins where its IF profile shows a line.
+    pub if_line_bins: Vec<usize>,
+    /// Largest IF-profile significance among them, normal sigma (null if none).
+    pub if_line_max_sigma: Option<f64>,
+}
+
+/// Candidates per class.
+#[derive(Debug, Clone, Serialize)]
+pub struct ClassCounts {
+    /// Flagged, not yet revisited.
+    pub new: usize,
+    /// Still above threshold after a revisit.
+    pub persists: usize,
+    /// Fell below threshold after a revisit.
+    pub cleared: usize,
+    /// Explained by a line at a fixed IF offset.
+    pub interference: usize,
+}
+
+/// One tracked candidate.
+#[derive(Debug, Clone, Serialize)]
+pub struct CandidateSummary {
+    /// Axion frequency hypothesis (line start), Hz.
+    pub frequency_hz: f64,
+    /// Its class.
+    pub class: Class,
+    /// Grand-spectrum value at the latest update.
+    pub significance: f64,
+    /// Night in which it was first flagged.
+    pub first_night: usize,
+    /// Cavity frequency for a rescan, Hz.
+    pub revisit_cavity_hz: f64,
+    /// Integration of one rescan step, s (0 for interference).
+    pub rescan_integration_s: f64,
+    /// Why it has its class.
+    pub evidence: String,
+}
+
+impl StatusSummary {
+    /// Summarises a loaded state.
+    pub fn of(st: &State) -> Self {
+        let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
+        let n_rf = st.coverage.len();
+        Self {
+            schema_version: st.schema_version,
+            generation: st.generation,
+            nights: st
+                .nights
+                .iter()
+                .map(|n| NightSummary {
+                    index: n.index,
+                    files: n.files.iter().map(|f| f.path.clone()).collect(),
+                    n_steps: n.files.iter().map(|f| f.n_steps).sum(),
+                    n_steps_used: n.n_steps_used,
+                    if_line_bins: n.if_lines.iter().map(|l| l.if_bin).collect(),
+                    if_line_max_sigma: n.if_lines.iter().map(|l| l.if_profile_sigma).reduce(f64::max),
+                })
+                .collect(),
+            bin_width_hz: st.bin_width_hz,
+            rf_span_hz: (n_rf > 0).then(|| (st.rf_origin_hz, st.rf_origin_hz + (n_rf - 1) as f64 * st.bin_width_hz)),
+            covered_hz: st.coverage.iter().filter(|&&c| c > 0).count() as f64 * st.bin_width_hz,
+            candidates_by_class: ClassCounts { new: count(Class::New), persists: count(Class::Persists), cleared: count(Class::Cleared), interference: count(Class::Interference) },
+            candidates: st
+                .candidates
+                .iter()
+                .map(|c| CandidateSummary {
+                    frequency_hz: c.frequency_hz,
+                    class: c.class,
+                    significance: c.significance,
+                    first_night: c.first_night,
+                    revisit_cavity_hz: c.revisit_cavity_hz,
+                    rescan_integration_s: c.rescan_integration_s,
+                    evidence: c.evidence.clone(),
+                })
+                .collect(),
+            limit: st.limit.clone(),
+        }
+    }
+}
+
+impl State {
+    /// Records the limit range of an update from its per-bin limits: over the covered bins
+    /// that no open tracked candidate holds (a candidate within `match_hz` of a bin's
+    /// frequency holds it). Limits computed with every current candidate blocked are
+    /// recomputed here with only the open ones blocked, from the same `sigma_eff`.
+    pub fn record_limit(&mut self, limits: &crate::limits::Limits, spectrum: &crate::stage::Spectrum, match_hz: f64) {
+        let open: Vec<usize> = spectrum
+            .candidates
+            .iter()
+            .enumerate()
+            .filter(|(_, c)| self.candidates.iter().any(|t| t.class.is_open() && (t.frequency_hz - c.frequency_hz).abs() <= match_hz))
+            .map(|(i, _)| i)
+            .collect();
+        let per_bin = crate::limits::limits(spectrum, limits.assumptions.clone(), &open);
+        let excluded: Vec<_> = per_bin.bins.iter().filter(|b| b.excluded && b.rel_ksvz.is_finite()).collect();
+        self.limit = (!excluded.is_empty()).then(|| LimitRange {
+            night: self.nights.len().saturating_sub(1),
+            confidence: limits.assumptions.confidence,
+            excluded_bins: excluded.len(),
+            min_rel_ksvz: excluded.iter().map(|b| b.rel_ksvz).fold(f64::INFINITY, f64::min),
+            max_rel_ksvz: excluded.iter().map(|b| b.rel_ksvz).fold(f64::NEG_INFINITY, f64::max),
+            excluded_span_hz: (excluded[0].freq_hz, excluded[excluded.len() - 1].freq_hz),
+        });
+    }
+}
