@@ -3,67 +3,15 @@
 //! foreign shards; a shard killed mid-run and rerun changes nothing.
 
 mod common;
+mod shard_common;
 
 use axsift::calib::{self, CampaignSpec, NoiseSource};
 use axsift::config;
 use axsift::sim;
-use axsift::state::State;
-use common::{PIPELINE, null_scenario};
-use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Output};
-
-const BIN: &str = env!("CARGO_BIN_EXE_axsift");
-
-fn axsift(args: &[&str]) -> Command {
-    let mut c = Command::new(BIN);
-    c.arg("--quiet").args(args).env("HDF5_USE_FILE_LOCKING", "FALSE");
-    c
-}
-
-fn run_ok(args: &[&str]) -> Output {
-    let out = axsift(args).output().expect("axsift starts");
-    assert!(out.status.success(), "axsift {args:?} failed: {}", String::from_utf8_lossy(&out.stderr));
-    out
-}
-
-fn s(p: &Path) -> &str {
-    p.to_str().expect("utf-8 temporary path")
-}
-
-/// A small simulated night (null demo facility), its band starting at `first_cavity_hz`.
-fn night(dir: &Path, seed: u64, first_cavity_hz: f64, n_steps: usize) -> PathBuf {
-    let mut sc = null_scenario(seed);
-    sc.scan.n_steps = n_steps;
-    sc.scan.first_cavity_freq_hz = first_cavity_hz;
-    let path = dir.join(format!("night-{seed}.h5"));
-    sim::simulate(&sc, &path).expect("simulate");
-    path
-}
-
-/// Three nights with overlapping, shifted bands (the third extends below the first).
-fn three_nights(dir: &Path) -> Vec<PathBuf> {
-    [(11, 5.2e9), (12, 5.2015e9), (13, 5.1995e9)].iter().map(|&(seed, f)| night(dir, seed, f, 200)).collect()
-}
-
-/// The single-machine reference: nightly `reduce --state` in order.
-fn nightly(dir: &Path, nights: &[PathBuf]) -> (PathBuf, PathBuf) {
-    let (state, out) = (dir.join("ref-state"), dir.join("ref-out"));
-    for n in nights {
-        run_ok(&["reduce", "--config", "pipeline.toml", "--state", s(&state), "--out", s(&out), s(n)]);
-    }
-    (state, out)
-}
-
-fn plan_reduction(work: &Path, nights: &[PathBuf], shards: usize) -> PathBuf {
-    let mut args = vec!["shard-plan", "--config", "pipeline.toml", "--work", s(work)];
-    let shards = shards.to_string();
-    args.extend(["--shards", &shards]);
-    for n in nights {
-        args.extend(["--night", s(n)]);
-    }
-    run_ok(&args);
-    work.join("plan.json")
-}
+use common::PIPELINE;
+use shard_common::{assert_same_reduction, axsift, night, nightly, plan_reduction, run_ok, s, three_nights};
+use std::path::Path;
+use std::process::{Child, Output};
 
 /// Runs the given shards as concurrent child processes and waits for all of them.
 fn run_shards(plan: &Path, indices: &[usize]) {
@@ -80,41 +28,6 @@ fn merge(plan: &Path, out: &Path, state: Option<&Path>) -> Output {
         args.extend(["--state", s(st)]);
     }
     axsift(&args).output().expect("merge starts")
-}
-
-fn bits(v: &[f64]) -> Vec<u64> {
-    v.iter().map(|x| x.to_bits()).collect()
-}
-
-fn dataset(file: &Path, name: &str) -> Vec<u64> {
-    let f = hdf5::File::open(file).expect("results.h5 opens");
-    bits(&f.dataset(name).and_then(|d| d.read_raw::<f64>()).expect("dataset reads"))
-}
-
-/// state.json without the generation counter (the nightly reference saved once per night,
-/// the merge once).
-fn state_index(dir: &Path) -> String {
-    let text = std::fs::read_to_string(dir.join("state.json")).expect("state.json");
-    text.lines().filter(|l| !l.trim_start().starts_with("\"generation\"")).collect::<Vec<_>>().join("\n")
-}
-
-/// The merged reduction equals the reference bit for bit: state sums, candidates, index,
-/// and the output folder's summary, candidate list and grand-spectrum datasets.
-fn assert_same_reduction(reference: (&Path, &Path), merged: (&Path, &Path)) {
-    let (a, b) = (State::load(reference.0).unwrap().expect("reference state"), State::load(merged.0).unwrap().expect("merged state"));
-    assert!(a.weight.iter().filter(|w| **w > 0.0).count() > 1000, "the reference covers the nights");
-    assert_eq!(bits(&a.weight), bits(&b.weight));
-    assert_eq!(bits(&a.weighted_sum), bits(&b.weighted_sum));
-    assert_eq!(a.coverage, b.coverage);
-    assert_eq!(a.candidates, b.candidates);
-    assert_eq!(a.nights, b.nights);
-    assert_eq!(state_index(reference.0), state_index(merged.0));
-    for name in ["summary.json", "candidates.csv"] {
-        assert_eq!(std::fs::read(reference.1.join(name)).unwrap(), std::fs::read(merged.1.join(name)).unwrap(), "{name} differs");
-    }
-    for name in ["combined", "combined_sigma", "amplitude", "sigma_a", "grand"] {
-        assert_eq!(dataset(&reference.1.join("results.h5"), name), dataset(&merged.1.join("results.h5"), name), "results.h5 dataset {name} differs");
-    }
 }
 
 /// Acceptance: three nights in two shards (one holds two nights), run concurrently as child

@@ -54,7 +54,7 @@ pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option
     let header = |name: &str, log: &str, mem_mb: u64, cpus: usize, minutes: u64| {
         format!(
             "#!/bin/sh\n#SBATCH --job-name=axsift-{name}\n#SBATCH --chdir={work_s}\n#SBATCH --output={dir_s}/{log}\n#SBATCH --mem={mem_mb}M\n#SBATCH --cpus-per-task={cpus}\n#SBATCH --time={minutes}\n{partition}\
-             # Written by axsift shard-slurm for {plan_s}. HDF5 file locking is off: network\n# filesystems often refuse it, and every job only reads the run files it shares.\n\
+             # Written by axsift shard-slurm for the plan\n# {plan_s}\n# HDF5 file locking is off: network filesystems often refuse it, and the jobs only\n# read the run files they share.\n\
              export HDF5_USE_FILE_LOCKING=FALSE\nexport RAYON_NUM_THREADS=\"${{SLURM_CPUS_PER_TASK:-{cpus}}}\"\n"
         )
     };
