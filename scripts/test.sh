@@ -7,9 +7,14 @@ bash scripts/setup.sh
 # HDF5 locks files with descriptors that child processes inherit; tests that start the
 # command line beside others in the same binary would see spurious "unable to lock" errors.
 export HDF5_USE_FILE_LOCKING=FALSE
+# tests/slurm.rs starts a local Slurm and stops it itself; this also stops it if the run is
+# interrupted (the script only stops daemons it started, and not while another run's Slurm
+# test holds the lock).
+stop_slurm() { flock -n /run/axsift-slurm-local.lock bash scripts/slurm_local.sh stop >/dev/null 2>&1 || true; }
+trap stop_slurm EXIT
 cargo test --release
 python3 scripts/check_savgol.py
 demo_out="$(mktemp -d)"
-trap 'rm -rf "$demo_out"' EXIT
+trap 'rm -rf "$demo_out"; stop_slurm' EXIT
 ./target/release/axsift demo --quiet --out "$demo_out"
 python3 scripts/check_results.py "$demo_out"

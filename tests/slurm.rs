@@ -13,6 +13,8 @@ use std::process::Command;
 use std::time::{Duration, Instant};
 
 const SCRIPT: &str = concat!(env!("CARGO_MANIFEST_DIR"), "/scripts/slurm_local.sh");
+/// Held while the local cluster runs (scripts/test.sh does not stop it while held).
+const LOCK: &str = "/run/axsift-slurm-local.lock";
 /// Longest wait for a set of jobs to leave the queue.
 const JOB_WAIT: Duration = Duration::from_secs(120);
 
@@ -68,6 +70,9 @@ fn shard_array_and_merge_on_a_local_slurm() {
         println!("skipped: {reason}");
         return;
     }
+    // One local cluster at a time: a concurrent run of this test waits here.
+    let lock = std::fs::File::create(LOCK).expect("lock file");
+    lock.lock().expect("lock");
     let start = Command::new("timeout").args(["300", "bash", SCRIPT, "start"]).output().expect("bash runs");
     let cluster = Cluster;
     match start.status.code() {
@@ -116,4 +121,5 @@ fn shard_array_and_merge_on_a_local_slurm() {
     assert_same_reduction((&reference.0, &reference.1), (&state, &out));
     assert!(Path::new(&scripts.join(format!("merge-{merge}.log"))).exists(), "the merge wrote its log");
     drop(cluster);
+    drop(lock);
 }

@@ -58,7 +58,15 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>) -> Result<M
     let work = plan_path.parent().unwrap_or(Path::new("."));
     let pipeline = crate::config::load(&plan.config_text, &plan.config_name).map_err(|e| ShardError::BadInput(format!("{}: field `config_text`: {e}", plan_path.display())))?;
     check_no_extra(work, plan.shards.len())?;
-    let files = (0..plan.shards.len()).map(|i| read_shard(work, &plan, &hash, i)).collect::<Result<Vec<_>, _>>()?;
+    // Every shard is checked before anything is merged; a reduction's are then read again
+    // one at a time, so the merge holds one shard's nights, not all of them.
+    let mut files = Vec::new();
+    for i in 0..plan.shards.len() {
+        let file = read_shard(work, &plan, &hash, i)?;
+        if matches!(plan.work, Work::Campaign { .. }) {
+            files.push(file);
+        }
+    }
     let failed = |e: &dyn std::fmt::Display| ShardError::Failed(e.to_string());
     match &plan.work {
         Work::Reduction { nights } => {
@@ -68,8 +76,8 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>) -> Result<M
             }
             let mut st = State::new(state::plan_hash(&pipeline));
             let mut last = None;
-            for (file, shard) in files.into_iter().zip(&plan.shards) {
-                let Payload::Nights(parts) = file.payload else {
+            for shard in &plan.shards {
+                let Payload::Nights(parts) = read_shard(work, &plan, &hash, shard.index)?.payload else {
                     return Err(ShardError::BadInput(format!("{}: holds campaign results, the plan is a reduction", super::shard_path(work, shard.index).display())));
                 };
                 for (k, part) in parts.into_iter().enumerate() {

@@ -18,6 +18,9 @@ pub const PLAN_FILE: &str = "plan.json";
 pub const BASE_MB_PER_32K_BINS: f64 = 40.0;
 /// Resident bytes per bin of the night's RF grid during the spectrum stages.
 pub const RF_BIN_BYTES: f64 = 100.0;
+/// Bytes per RF bin a shard keeps of each reduced night until its file is written (combined
+/// value, sigma and coverage, and the IF scan's per-RF-bin samples).
+pub const KEPT_BYTES_PER_RF_BIN: f64 = 48.0;
 /// Throughput assumed per core when sizing the time limit, bins per second (about half the
 /// figure measured on a busy 2-core machine, so the limit is generous).
 pub const BINS_PER_S_PER_CORE: f64 = 10.0e6;
@@ -75,8 +78,10 @@ pub struct ShardSpec {
 /// Resources of one shard (the largest over all shards).
 #[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct Resources {
-    /// Memory, MB.
+    /// Memory of a shard, MB.
     pub mem_mb: u64,
+    /// Memory of the merge, MB (the accumulated grid of all nights and one night at a time).
+    pub merge_mem_mb: u64,
     /// Cores.
     pub cpus: usize,
     /// Time limit, s.
@@ -119,19 +124,34 @@ fn night_mem_mb(n_bins: usize, rf_bins: f64) -> f64 {
     BASE_MB_PER_32K_BINS * n_bins as f64 / 32768.0 + RF_BIN_BYTES * rf_bins / 1e6
 }
 
-/// (steps x bins, memory in MB) of reducing one night, from the run files' metadata.
-fn night_cost(paths: &[PathBuf]) -> Result<(f64, f64), ShardError> {
+/// What reducing one night costs, from its run files' metadata.
+struct NightCost {
+    /// Steps x bins.
+    bins: f64,
+    /// Resident memory of its reduction, MB.
+    mem_mb: f64,
+    /// Bins of its RF grid.
+    rf_bins: f64,
+    /// Lowest and highest RF bin centre, Hz.
+    span_hz: (f64, f64),
+    /// Bin width, Hz.
+    bin_width_hz: f64,
+}
+
+fn night_cost(paths: &[PathBuf]) -> Result<NightCost, ShardError> {
     let (readers, night) = open_night(paths).map_err(|e| ShardError::BadInput(e.to_string()))?;
     let steps: usize = readers.iter().map(|r| r.steps().len()).sum();
     let rf_bins = (night.rf_span_hz.1 - night.rf_span_hz.0) / night.bin_width_hz + 1.0;
-    Ok(((steps * night.n_bins) as f64, night_mem_mb(night.n_bins, rf_bins)))
+    Ok(NightCost { bins: (steps * night.n_bins) as f64, mem_mb: night_mem_mb(night.n_bins, rf_bins), rf_bins, span_hz: night.rf_span_hz, bin_width_hz: night.bin_width_hz })
 }
 
 /// Resources from the largest shard: memory twice the model (at least [`MIN_MEM_MB`]), time
 /// three times the bins over the throughput of `cpus` cores (at least [`MIN_TIME_S`]).
-fn resources(bins: f64, mem_mb: f64, cpus: usize) -> Resources {
+fn resources(bins: f64, mem_mb: f64, merge_mem_mb: f64, cpus: usize) -> Resources {
+    let request = |mb: f64| ((2.0 * mb).ceil() as u64).max(MIN_MEM_MB);
     Resources {
-        mem_mb: ((2.0 * mem_mb).ceil() as u64).max(MIN_MEM_MB),
+        mem_mb: request(mem_mb),
+        merge_mem_mb: request(merge_mem_mb),
         cpus,
         time_s: ((3.0 * bins / (BINS_PER_S_PER_CORE * cpus as f64)).ceil() as u64).max(MIN_TIME_S),
     }
@@ -148,9 +168,16 @@ impl ShardPlan {
         let nights: Vec<Vec<PathBuf>> = nights.into_iter().map(|n| n.into_iter().map(absolute).collect::<Result<_, _>>()).collect::<Result<_, _>>()?;
         let costs = nights.iter().map(|n| night_cost(n)).collect::<Result<Vec<_>, _>>()?;
         let specs = split(nights.len(), shards, 0, 0);
-        let largest_bins = specs.iter().map(|s| costs[s.first..s.first + s.count].iter().map(|c| c.0).sum::<f64>()).fold(0.0, f64::max);
-        let largest_mem = costs.iter().map(|c| c.1).fold(0.0, f64::max);
-        Ok(Self::new(config_text, config_name, Work::Reduction { nights }, specs, resources(largest_bins, largest_mem, cpus)))
+        let of = |s: &ShardSpec| &costs[s.first..s.first + s.count];
+        let largest_bins = specs.iter().map(|s| of(s).iter().map(|c| c.bins).sum::<f64>()).fold(0.0, f64::max);
+        let shard_mem = |s: &ShardSpec| of(s).iter().map(|c| c.mem_mb).fold(0.0, f64::max) + of(s).iter().map(|c| c.rf_bins).sum::<f64>() * KEPT_BYTES_PER_RF_BIN / 1e6;
+        let largest_mem = specs.iter().map(shard_mem).fold(0.0, f64::max);
+        // The merge holds the grid of all nights (each bin as in the state and its spectrum
+        // stages) and decodes one night at a time.
+        let (lo, hi) = costs.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), c| (lo.min(c.span_hz.0), hi.max(c.span_hz.1)));
+        let grid_bins = (hi - lo) / costs[0].bin_width_hz + 1.0;
+        let merge_mem = grid_bins * RF_BIN_BYTES / 1e6 + costs.iter().map(|c| c.mem_mb).fold(0.0, f64::max);
+        Ok(Self::new(config_text, config_name, Work::Reduction { nights }, specs, resources(largest_bins, largest_mem, merge_mem, cpus)))
     }
 
     /// Plans a campaign into shard 0 (null and eta realisations) and up to `shards - 1`
@@ -162,7 +189,7 @@ impl ShardPlan {
             simulated => simulated,
         };
         let (bins, night_mem) = match &noise {
-            CampaignNoise::Recorded { runs } => night_cost(runs)?,
+            CampaignNoise::Recorded { runs } => night_cost(runs).map(|c| (c.bins, c.mem_mb))?,
             CampaignNoise::Simulated { scenario_text } => {
                 let sc = Scenario::from_toml(scenario_text).map_err(|e| ShardError::BadInput(format!("scenario: {e}")))?;
                 let rf_bins = ((sc.scan.n_steps.saturating_sub(1)) * sc.scan.step_bins + sc.scan.n_bins) as f64;
@@ -173,7 +200,7 @@ impl ShardPlan {
         let mut specs = vec![ShardSpec { index: 0, first: 0, count: head }];
         specs.extend(split(efficiency, shards.saturating_sub(1), 1, 0));
         let largest = specs.iter().map(|s| s.count).max().unwrap_or(1) as f64;
-        let res = resources(largest * bins, cpus as f64 * night_mem, cpus);
+        let res = resources(largest * bins, cpus as f64 * night_mem, night_mem, cpus);
         Ok(Self::new(config_text, config_name, Work::Campaign { spec, noise }, specs, res))
     }
 

@@ -34,7 +34,8 @@ fn script_path(path: &Path) -> Result<String, ShardError> {
 
 /// Writes `slurm/shard.sbatch` and `slurm/merge.sbatch` into the plan's work folder. The
 /// shard script requests the plan's resources (memory in MB, cpus, time in minutes rounded
-/// up); the merge reads every shard and writes `out` (and, for a reduction, `state_dir`).
+/// up); the merge (one cpu, the plan's merge memory, the shard time limit) reads every shard
+/// and writes `out` (and, for a reduction, `state_dir`).
 /// `exe` is the axsift binary the jobs run; `partition` is passed on if given.
 pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option<&Path>, partition: Option<&str>) -> Result<Scripts, ShardError> {
     let (plan, _) = ShardPlan::load(plan_path)?;
@@ -59,8 +60,7 @@ pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option
         )
     };
     let shard_text = format!("{}exec {exe_s} --quiet shard-run --plan {plan_s}\n", header("shard", "shard-%A_%a.log", r.mem_mb, r.cpus, r.time_s.div_ceil(60)));
-    let merge_mem = r.mem_mb.max(super::plan::MIN_MEM_MB);
-    let merge_text = format!("{}exec {exe_s} --quiet shard-merge --plan {plan_s} --out {out_s}{state_arg}\n", header("merge", "merge-%j.log", merge_mem, 1, r.time_s.div_ceil(60)));
+    let merge_text = format!("{}exec {exe_s} --quiet shard-merge --plan {plan_s} --out {out_s}{state_arg}\n", header("merge", "merge-%j.log", r.merge_mem_mb, 1, r.time_s.div_ceil(60)));
     let shard_script = dir.join("shard.sbatch");
     let merge_script = dir.join("merge.sbatch");
     super::write_atomic(&shard_script, shard_text.as_bytes())?;
