@@ -237,6 +237,7 @@ impl From<anyhow::Error> for Failure {
 }
 
 fn main() -> ExitCode {
+    restore_default_sigpipe();
     let cli = Cli::parse();
     init_logging(cli.verbose, cli.quiet);
     let result = match cli.command {
@@ -275,6 +276,16 @@ fn main() -> ExitCode {
             eprintln!("error: {e:#}");
             ExitCode::from(1)
         }
+    }
+}
+
+/// Output piped into `head` or a closed pager ends the process quietly, as Unix tools do,
+/// instead of a panic at the next print (Rust ignores SIGPIPE by default).
+fn restore_default_sigpipe() {
+    #[cfg(unix)]
+    // SAFETY: called first in `main`, before any thread exists; SIG_DFL is a valid disposition.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
 }
 

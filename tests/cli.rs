@@ -74,3 +74,19 @@ fn bad_input_exits_with_status_two() {
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(err.contains("garbage.h5") && !err.contains("panicked"), "{err}");
 }
+
+/// Output piped into a reader that has gone (`axsift plan ... | head -1`, a closed pager) ends
+/// the process quietly, as Unix tools do, never with a panic.
+#[test]
+fn closed_output_pipe_is_not_a_panic() {
+    let mut child = axsift()
+        .args(["plan", "--config", concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml")])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    drop(child.stdout.take());
+    let out = child.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(!err.contains("panicked"), "{err}");
+}
