@@ -5,11 +5,7 @@
 mod common;
 mod shard_common;
 
-use axsift::calib::{self, CampaignSpec, NoiseSource};
-use axsift::config;
-use axsift::sim;
-use common::PIPELINE;
-use shard_common::{assert_same_reduction, axsift, night, nightly, plan_reduction, run_ok, s, three_nights};
+use shard_common::{assert_same_reduction, axsift, campaign_reference, night, nightly, plan_reduction, run_ok, s, three_nights};
 use std::path::Path;
 use std::process::{Child, Output};
 
@@ -49,31 +45,12 @@ fn sharded_reduction_equals_nightly_reduction() {
     assert!(String::from_utf8_lossy(&again.stderr).contains("already holds a state"));
 }
 
-fn small_spec() -> CampaignSpec {
-    CampaignSpec { seed: 3, null_realisations: 1, eta_realisations: 1, eta_snr: 20.0, snr_grid: vec![4.0, 6.0], realisations_per_snr: 2, max_injections_per_realisation: 20 }
-}
-
 /// Acceptance: a small campaign (head + two efficiency shards) gives a calibration.json
 /// byte-identical to the single-machine campaign with the same spec.
 #[test]
 fn sharded_campaign_equals_single_machine_campaign() {
     let dir = tempfile::tempdir().unwrap();
-    let scenario_text = common::DEMO_SCENARIO.replace("n_steps = 600", "n_steps = 200");
-    assert!(scenario_text.contains("n_steps = 200"));
-    let scenario_file = dir.path().join("scenario.toml");
-    std::fs::write(&scenario_file, &scenario_text).unwrap();
-    let spec_file = dir.path().join("spec.toml");
-    std::fs::write(&spec_file, toml::to_string(&small_spec()).unwrap()).unwrap();
-
-    let plan_cfg = config::load(PIPELINE, "pipeline.toml").unwrap();
-    let reference_sc = sim::Scenario::from_toml(&scenario_text).unwrap();
-    let scratch = dir.path().join("scratch");
-    std::fs::create_dir_all(&scratch).unwrap();
-    let cal = calib::calibrate(&plan_cfg, &NoiseSource::Simulated { scenario: &reference_sc, scratch: &scratch }, &small_spec(), &|_, _| {}).unwrap();
-    assert!(cal.injections.iter().any(|r| r.snr > 0.0), "the campaign has efficiency injections");
-    let reference = dir.path().join("ref-cal");
-    cal.write(&reference).unwrap();
-
+    let (scenario_file, spec_file, reference) = campaign_reference(dir.path());
     let work = dir.path().join("work");
     run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(&work), "--shards", "3", "--campaign", "--scenario", s(&scenario_file), "--spec", s(&spec_file)]);
     let plan = work.join("plan.json");
@@ -166,4 +143,13 @@ fn shard_index_from_the_slurm_environment() {
     assert_eq!(bad.status.code(), Some(2));
     let past = axsift(&["shard-run", "--plan", s(&plan), "--index", "3"]).output().unwrap();
     assert!(String::from_utf8_lossy(&past.stderr).contains("shard 3 does not exist"));
+    // A plan edited by hand so that a shard reaches past the nights is refused, not run.
+    let mut edited: serde_json::Value = serde_json::from_slice(&std::fs::read(&plan).unwrap()).unwrap();
+    edited["shards"][2]["count"] = serde_json::json!(5);
+    let broken = dir.path().join("broken/plan.json");
+    std::fs::create_dir_all(broken.parent().unwrap()).unwrap();
+    std::fs::write(&broken, serde_json::to_vec(&edited).unwrap()).unwrap();
+    let refused = axsift(&["shard-run", "--plan", s(&broken), "--index", "2"]).output().unwrap();
+    assert_eq!(refused.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&refused.stderr).contains("field `shards`, entry 2"), "{}", String::from_utf8_lossy(&refused.stderr));
 }

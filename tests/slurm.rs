@@ -1,13 +1,14 @@
 //! Against a real single-node Slurm (scripts/slurm_local.sh): the shard array and the merge
 //! submitted by `axsift shard-slurm --submit` finish and the merge equals the single-machine
 //! result bit for bit; a failed shard cancels the merge (no job left pending) and, rerun
-//! alone with the documented command, completes the reduction.
+//! alone with the documented command, completes the reduction; a campaign's head array, its
+//! dependent efficiency array and the merge give the single-machine calibration.
 //! Skips, with the reason printed, when not root or when Slurm cannot be installed here.
 
 mod common;
 mod shard_common;
 
-use shard_common::{assert_same_reduction, nightly, plan_reduction, run_ok, s, three_nights};
+use shard_common::{assert_same_reduction, campaign_reference, nightly, plan_reduction, run_ok, s, three_nights};
 use std::path::Path;
 use std::process::Command;
 use std::time::{Duration, Instant};
@@ -120,6 +121,22 @@ fn shard_array_and_merge_on_a_local_slurm() {
     println!("rerun shard and merge finished in {waited:?}");
     assert_same_reduction((&reference.0, &reference.1), (&state, &out));
     assert!(Path::new(&scripts.join(format!("merge-{merge}.log"))).exists(), "the merge wrote its log");
+
+    // A campaign in three shards: shard 0, then shards 1-2 after it, then the merge.
+    let (scenario, spec, reference) = campaign_reference(dir.path());
+    let work = dir.path().join("camp");
+    run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(&work), "--shards", "3", "--campaign", "--scenario", s(&scenario), "--spec", s(&spec)]);
+    let cal = dir.path().join("cal");
+    let submitted = run_ok(&["shard-slurm", "--plan", s(&work.join("plan.json")), "--out", s(&cal), "--submit"]);
+    let printed = String::from_utf8_lossy(&submitted.stdout).into_owned();
+    let ids: Vec<&str> = printed.lines().find_map(|l| l.strip_prefix("submitted jobs ")).expect("job ids printed").split(' ').collect();
+    assert_eq!(ids.len(), 3, "head array, efficiency array, merge: {printed}");
+    let waited = wait_gone(&ids);
+    assert_eq!(states(ids[0]), ["COMPLETED"]);
+    assert_eq!(states(ids[1]), ["COMPLETED", "COMPLETED"]);
+    assert_eq!(states(ids[2]), ["COMPLETED"]);
+    println!("campaign arrays and merge finished in {waited:?}");
+    assert_eq!(std::fs::read(reference.join("calibration.json")).unwrap(), std::fs::read(cal.join("calibration.json")).unwrap());
     drop(cluster);
     drop(lock);
 }

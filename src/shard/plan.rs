@@ -230,8 +230,38 @@ impl ShardPlan {
         if plan.version != PLAN_VERSION {
             return Err(ShardError::BadInput(format!("{}: field `version` is {} (this build reads {PLAN_VERSION})", path.display(), plan.version)));
         }
+        plan.check().map_err(|e| ShardError::BadInput(format!("{}: {e}", path.display())))?;
         let hash = Sha256::digest(&bytes).iter().map(|b| format!("{b:02x}")).collect();
         Ok((plan, hash))
+    }
+
+    /// Items the shards divide: nights, or for a campaign the head's realisations (shard 0)
+    /// and the efficiency jobs (the others).
+    fn check(&self) -> Result<(), String> {
+        let (head, items) = match &self.work {
+            Work::Reduction { nights } => (None, nights.len()),
+            Work::Campaign { spec, .. } => {
+                let (head, efficiency) = campaign_size(spec);
+                (Some(head), efficiency)
+            }
+        };
+        let mut next = 0;
+        for (i, s) in self.shards.iter().enumerate() {
+            let expected = match (head, i) {
+                (Some(h), 0) => s.first == 0 && s.count == h,
+                _ => s.first == next && s.first + s.count <= items && s.count > 0,
+            };
+            if s.index != i || !expected {
+                return Err(format!("field `shards`, entry {i} (index {}, items {}..{}) does not continue the division", s.index, s.first, s.first + s.count));
+            }
+            if head.is_none() || i > 0 {
+                next = s.first + s.count;
+            }
+        }
+        if next != items || self.shards.is_empty() {
+            return Err(format!("field `shards` covers items 0..{next} of 0..{items}"));
+        }
+        Ok(())
     }
 }
 

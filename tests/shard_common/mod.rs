@@ -1,8 +1,9 @@
 //! Helpers shared by the shard and Slurm tests: small simulated nights, the nightly
 //! single-machine reference, and the bit-for-bit comparison of two reductions.
 
-use crate::common::null_scenario;
-use axsift::sim;
+use crate::common::{DEMO_SCENARIO, PIPELINE, null_scenario};
+use axsift::calib::{self, CampaignSpec, NoiseSource};
+use axsift::{config, sim};
 use axsift::state::State;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
@@ -95,3 +96,24 @@ pub fn assert_same_reduction(reference: (&Path, &Path), merged: (&Path, &Path)) 
     }
 }
 
+
+/// A small campaign: the demo night at 200 steps, one null and one eta realisation, two SNRs
+/// with two realisations each. Writes its scenario and spec files into `dir`, runs it on this
+/// machine and writes the reference calibration to `dir/ref-cal`; returns the three paths.
+pub fn campaign_reference(dir: &Path) -> (PathBuf, PathBuf, PathBuf) {
+    let spec = CampaignSpec { seed: 3, null_realisations: 1, eta_realisations: 1, eta_snr: 20.0, snr_grid: vec![4.0, 6.0], realisations_per_snr: 2, max_injections_per_realisation: 20 };
+    let scenario_text = DEMO_SCENARIO.replace("n_steps = 600", "n_steps = 200");
+    assert!(scenario_text.contains("n_steps = 200"));
+    let (scenario_file, spec_file) = (dir.join("scenario.toml"), dir.join("spec.toml"));
+    std::fs::write(&scenario_file, &scenario_text).unwrap();
+    std::fs::write(&spec_file, toml::to_string(&spec).unwrap()).unwrap();
+    let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
+    let scenario = sim::Scenario::from_toml(&scenario_text).unwrap();
+    let scratch = dir.join("scratch");
+    std::fs::create_dir_all(&scratch).unwrap();
+    let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &scenario, scratch: &scratch }, &spec, &|_, _| {}).unwrap();
+    assert!(cal.injections.iter().any(|r| r.snr > 0.0), "the campaign has efficiency injections");
+    let reference = dir.join("ref-cal");
+    cal.write(&reference).unwrap();
+    (scenario_file, spec_file, reference)
+}
