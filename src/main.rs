@@ -535,7 +535,7 @@ fn shard_slurm(plan: &Path, out: &Path, state: Option<&Path>, partition: Option<
         println!("submitted jobs {}", ids.join(" "));
     } else {
         for args in slurm::submissions(&scripts) {
-            println!("sbatch {}", args.join(" "));
+            println!("sbatch {}", args.join(" ").replace("{prev}", "<id printed by the sbatch above>"));
         }
     }
     println!("{}", slurm::rerun_hint(&scripts));

@@ -128,8 +128,8 @@ fn killed_shard_rerun_gives_the_same_result() {
     assert_same_reduction((&reference.0, &reference.1), (&state, &out));
 }
 
-/// The shard index comes from SLURM_ARRAY_TASK_ID when --index is absent; a bad value or an
-/// index past the plan is refused.
+/// The shard index comes from SLURM_ARRAY_TASK_ID when --index is absent; a bad value, an
+/// index past the plan, a run file in two nights and a hand-broken plan are refused.
 #[test]
 fn shard_index_from_the_slurm_environment() {
     let dir = tempfile::tempdir().unwrap();
@@ -141,6 +141,9 @@ fn shard_index_from_the_slurm_environment() {
     assert!(!dir.path().join("work/shards/shard-0000.json").exists());
     let bad = axsift(&["shard-run", "--plan", s(&plan)]).env("SLURM_ARRAY_TASK_ID", "x").output().unwrap();
     assert_eq!(bad.status.code(), Some(2));
+    let twice = axsift(&["shard-plan", "--config", "pipeline.toml", "--work", s(&dir.path().join("twice")), "--shards", "2", "--night", s(&nights[0]), "--night", &format!("{},{}", s(&nights[1]), s(&nights[0]))]).output().unwrap();
+    assert_eq!(twice.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&twice.stderr).contains("given in night 0 and in night 1"), "{}", String::from_utf8_lossy(&twice.stderr));
     let past = axsift(&["shard-run", "--plan", s(&plan), "--index", "3"]).output().unwrap();
     assert!(String::from_utf8_lossy(&past.stderr).contains("shard 3 does not exist"));
     // A plan edited by hand so that a shard reaches past the nights is refused, not run.

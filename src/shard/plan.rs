@@ -166,6 +166,13 @@ impl ShardPlan {
             return Err(ShardError::BadInput("no nights given (--night FILE[,FILE...], once per night)".into()));
         }
         let nights: Vec<Vec<PathBuf>> = nights.into_iter().map(|n| n.into_iter().map(absolute).collect::<Result<_, _>>()).collect::<Result<_, _>>()?;
+        let mut seen = std::collections::HashMap::new();
+        for (i, path) in nights.iter().enumerate().flat_map(|(i, n)| n.iter().map(move |p| (i, p))) {
+            let key = std::fs::canonicalize(path).unwrap_or_else(|_| path.clone());
+            if let Some(j) = seen.insert(key, i).filter(|&j| j != i) {
+                return Err(ShardError::BadInput(format!("{}: given in night {j} and in night {i}; a run file belongs to one night", path.display())));
+            }
+        }
         let costs = nights.iter().map(|n| night_cost(n)).collect::<Result<Vec<_>, _>>()?;
         let specs = split(nights.len(), shards, 0, 0);
         let of = |s: &ShardSpec| &costs[s.first..s.first + s.count];
