@@ -4,7 +4,8 @@
 #                                       # slurmctld and slurmd, wait until the node is idle
 #   bash scripts/slurm_local.sh stop    # stop the daemons this script started, by PID
 # Needs root. Exit status 3: cannot run here (not root, or the packages cannot be installed);
-# the test then skips. It writes /etc/slurm/slurm.conf and the munge key if absent; state and
+# the test then skips. It writes /etc/slurm/slurm.conf (and refuses, exit 3, where a Slurm
+# configuration it did not write is already there) and the munge key if absent; state and
 # spool folders are emptied at every start. Only daemons it started are stopped, from the pid
 # files named in $STARTED, in the order slurmd, slurmctld, munged.
 set -euo pipefail
@@ -12,6 +13,7 @@ set -euo pipefail
 STARTED=/run/axsift-slurm-local.started
 CONF=/etc/slurm/slurm.conf
 WAIT_S=30
+MARKER="# Written by axsift scripts/slurm_local.sh"
 
 say() { echo "slurm_local: $*" >&2; }
 
@@ -50,6 +52,10 @@ install_packages() {
 
 start() {
     [ "$(id -u)" = 0 ] || { say "needs root"; exit 3; }
+    if [ -e "$CONF" ] && ! head -n 1 "$CONF" | grep -q "^$MARKER"; then
+        say "$CONF exists and was not written by this script: a real cluster's configuration is left alone"
+        exit 3
+    fi
     install_packages
     stop
     trap 'say "start failed; stopping what was started"; stop' ERR
@@ -74,7 +80,7 @@ start() {
     node=$(slurmd -C | head -n 1)
     install -d /etc/slurm /var/log/slurm
     cat >"$CONF" <<CONF
-# Written by axsift scripts/slurm_local.sh: a single-node test cluster on localhost.
+${MARKER}: a single-node test cluster on localhost.
 ClusterName=axsift-local
 SlurmctldHost=${host}(127.0.0.1)
 SlurmUser=root
