@@ -210,11 +210,9 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     for_each_chunk(&readers, &night, injection, &mut steps, |chunk| {
         let n = chunk.len();
         let kept = run_stages(&mut step_stages, chunk, &night, &mut cuts, paths);
+        combiner.add_all(&kept).map_err(ReduceError::Night)?;
         if_profile.add_all(&kept);
-        for step in kept {
-            combiner.add(step).map_err(ReduceError::Night)?;
-            used_steps.push((step.index, step.meta));
-        }
+        used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
         done += n;
         progress(done, total);
         Ok(())

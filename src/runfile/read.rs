@@ -31,7 +31,9 @@ impl RunReader {
             message,
         };
         probe::check_file(path)?;
-        let file = hdf5::File::open(path).map_err(|source| {
+        // No raw-data chunk cache: every read takes whole chunks (one step row each), which the
+        // library then reads straight into the caller's buffer instead of through the cache.
+        let file = hdf5::File::with_options().with_fapl(|fapl| fapl.chunk_cache(1, 0, 1.0)).open(path).map_err(|source| {
             let what = if source.to_string().contains("unable to lock file") {
                 "is locked by another program (still being written?)"
             } else {

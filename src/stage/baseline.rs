@@ -9,7 +9,7 @@
 //! fit only and stay NaN in the output. Steps whose residual spread departs from the
 //! radiometer prediction sqrt((1 - h0) / N) by more than `max_spread_deviation` are cut.
 
-use super::{NightInfo, Step, StepStage, Verdict};
+use super::{NightInfo, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::savgol::{SavitzkyGolay, SmoothingPlan, SmoothingScratch};
 use serde::Deserialize;
@@ -60,6 +60,7 @@ impl StageConfig for BaselineConfig {
             gain_sum: vec![0.0; night.n_bins],
             gain_count: vec![0u32; night.n_bins],
             gain: Vec::new(),
+            inverse_gain: Vec::new(),
         })))
     }
     fn baseline_kernel(&self) -> Option<Vec<f64>> {
@@ -74,6 +75,8 @@ struct Baseline {
     gain_sum: Vec<f64>,
     gain_count: Vec<u32>,
     gain: Vec<f64>,
+    /// 1 / gain, so that each step is flattened by multiplication.
+    inverse_gain: Vec<f64>,
 }
 
 /// Per-thread buffers of [`Baseline::apply`], reused from step to step.
@@ -96,7 +99,7 @@ impl StepStage for Baseline {
     }
     fn survey(&mut self, step: &Step) {
         for ((s, c), &p) in self.gain_sum.iter_mut().zip(&mut self.gain_count).zip(&step.values) {
-            let valid = p.is_finite();
+            let valid = finite(p);
             *s += if valid { p } else { 0.0 };
             *c += u32::from(valid);
         }
@@ -109,6 +112,7 @@ impl StepStage for Baseline {
         }
         let norm = finite.iter().sum::<f64>() / finite.len() as f64;
         self.gain = mean.iter().map(|v| v / norm).collect();
+        self.inverse_gain = self.gain.iter().map(|g| g.recip()).collect();
         Ok(())
     }
     fn apply(&self, step: &mut Step, _night: &NightInfo) -> Verdict {
@@ -118,15 +122,12 @@ impl StepStage for Baseline {
         }
         WORK.with_borrow_mut(|work| {
             let Work { flat, fit, scratch } = work;
-            flat.clear();
-            flat.extend(step.values.iter().zip(&self.gain).map(|(p, g)| p / g));
+            flat.resize(n, 0.0);
+            multiply(&step.values, &self.inverse_gain, flat);
             bridge_gaps(flat);
             fit.resize(n, 0.0);
             self.plan.smooth_with(flat, fit, scratch).expect("buffers have the planned length");
-            // Gaps stay NaN: `flat` was bridged, so take P / G afresh where P is missing.
-            for ((v, g), (&x, &f)) in step.values.iter_mut().zip(&self.gain).zip(flat.iter().zip(fit.iter())) {
-                *v = if v.is_finite() { x / f - 1.0 } else { *v / g };
-            }
+            residual(&mut step.values, flat, fit);
             let measured = rms_of_finite(&step.values);
             let expected = ((1.0 - self.plan.filter().center_weight()) / step.meta.n_averages as f64).sqrt();
             if (measured / expected - 1.0).abs() > self.max_dev {
@@ -137,6 +138,22 @@ impl StepStage for Baseline {
     }
 }
 
+/// `out[k] = a[k] * b[k]` over the common length. The per-bin loops of this stage take
+/// slices as arguments, so the compiler knows the buffers are distinct and vectorises them.
+fn multiply(a: &[f64], b: &[f64], out: &mut [f64]) {
+    for (o, (&a, &b)) in out.iter_mut().zip(a.iter().zip(b)) {
+        *o = a * b;
+    }
+}
+
+/// delta = x / fit - 1 in every bin that holds data; bins without (NaN after ingest) are left
+/// as they are, since `flat` was bridged over them.
+fn residual(values: &mut [f64], flat: &[f64], fit: &[f64]) {
+    for (v, (&x, &f)) in values.iter_mut().zip(flat.iter().zip(fit)) {
+        *v = if finite(*v) { x / f - 1.0 } else { *v };
+    }
+}
+
 /// Root mean square of the finite values (0 if there are none). Four interleaved partial
 /// sums keep the floating-point additions off one serial chain.
 fn rms_of_finite(x: &[f64]) -> f64 {
@@ -144,7 +161,7 @@ fn rms_of_finite(x: &[f64]) -> f64 {
     let mut chunks = x.chunks_exact(4);
     for c in &mut chunks {
         for (s, &v) in sums.iter_mut().zip(c) {
-            let valid = v.is_finite();
+            let valid = finite(v);
             *s += if valid { v * v } else { 0.0 };
             count += usize::from(valid);
         }
@@ -163,7 +180,7 @@ fn rms_of_finite(x: &[f64]) -> f64 {
 fn bridge_gaps(x: &mut [f64]) {
     let n = x.len();
     // Fast path: most steps have no gap (counted without branches, so it vectorises).
-    if x.iter().map(|v| usize::from(v.is_finite())).sum::<usize>() == n {
+    if x.iter().map(|&v| usize::from(finite(v))).sum::<usize>() == n {
         return;
     }
     let mut previous: Option<usize> = None;

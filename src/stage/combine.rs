@@ -4,8 +4,9 @@
 //! A step whose start is not a whole number of bins from the grid origin (within
 //! `max_misalignment_bins`) is an error naming it: steps are never silently shifted.
 
-use super::{Combiner, NightInfo, Spectrum, Step};
+use super::{Combiner, NightInfo, Spectrum, Step, finite};
 use crate::config::{BuildContext, Built, StageConfig};
+use rayon::prelude::*;
 use serde::Deserialize;
 
 /// Options of the `combine` stage.
@@ -57,8 +58,12 @@ struct MlCombiner {
     coverage: Vec<u32>,
 }
 
-impl Combiner for MlCombiner {
-    fn add(&mut self, step: &Step) -> Result<(), String> {
+/// RF bins one task of [`MlCombiner::add_all`] accumulates.
+const PIECE_BINS: usize = 8192;
+
+impl MlCombiner {
+    /// RF bin of the step's first bin, or the error naming a step off the grid.
+    fn first_bin(&self, step: &Step) -> Result<usize, String> {
         let offset = (step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz;
         let whole = offset.round();
         if (offset - whole).abs() > self.tolerance {
@@ -67,20 +72,56 @@ impl Combiner for MlCombiner {
                 step.index, step.file, step.index_in_file, step.meta.start_freq_hz, offset - whole, self.tolerance
             ));
         }
-        let first = whole as usize;
+        Ok(whole as usize)
+    }
+}
+
+/// Adds `values` with standard deviations `sigmas` into the sums of the same RF bins.
+/// Equal-length slices and no branches: the loop vectorises.
+fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], values: &[f64], sigmas: &[f64]) {
+    let n = sums.len().min(weights.len()).min(coverage.len()).min(values.len()).min(sigmas.len());
+    let (sums, weights, coverage, values, sigmas) = (&mut sums[..n], &mut weights[..n], &mut coverage[..n], &values[..n], &sigmas[..n]);
+    for k in 0..n {
+        let (r, s) = (values[k], sigmas[k]);
+        let valid = finite(r) & (s > 0.0) & (s <= f64::MAX);
+        let w = if valid { 1.0 / (s * s) } else { 0.0 };
+        // Adding +0.0 leaves a sum that started at +0.0 unchanged.
+        sums[k] += if valid { w * r } else { 0.0 };
+        weights[k] += w;
+        coverage[k] += u32::from(valid);
+    }
+}
+
+impl Combiner for MlCombiner {
+    fn add(&mut self, step: &Step) -> Result<(), String> {
+        let first = self.first_bin(step)?;
         let n = step.values.len().min(step.sigma.len());
-        let (sums, weights, coverage) = (&mut self.weighted_sum[first..first + n], &mut self.weight[first..first + n], &mut self.coverage[first..first + n]);
-        let (values, sigmas) = (&step.values[..n], &step.sigma[..n]);
-        // Equal-length slices and no branches: the loop vectorises.
-        for k in 0..n {
-            let (r, s) = (values[k], sigmas[k]);
-            let valid = r.is_finite() && s.is_finite() && s > 0.0;
-            let w = if valid { 1.0 / (s * s) } else { 0.0 };
-            // Adding +0.0 leaves a sum that started at +0.0 unchanged.
-            sums[k] += if valid { w * r } else { 0.0 };
-            weights[k] += w;
-            coverage[k] += u32::from(valid);
-        }
+        accumulate(&mut self.weighted_sum[first..first + n], &mut self.weight[first..first + n], &mut self.coverage[first..first + n], &step.values, &step.sigma);
+        Ok(())
+    }
+    /// Pieces of [`PIECE_BINS`] RF bins in parallel; within a piece the steps are added in
+    /// their order, so every bin sees the same additions in the same order as with
+    /// [`Combiner::add`], whatever the number of threads.
+    fn add_all(&mut self, steps: &[&Step]) -> Result<(), String> {
+        let placed: Vec<(usize, &Step)> = steps.iter().map(|&step| Ok((self.first_bin(step)?, step))).collect::<Result<_, String>>()?;
+        let Some(lo) = placed.iter().map(|&(first, _)| first).min() else { return Ok(()) };
+        let hi = placed.iter().map(|&(first, step)| first + step.values.len().min(step.sigma.len())).max().unwrap_or(lo);
+        let (sums, weights, coverage) = (&mut self.weighted_sum[lo..hi], &mut self.weight[lo..hi], &mut self.coverage[lo..hi]);
+        sums.par_chunks_mut(PIECE_BINS).zip(weights.par_chunks_mut(PIECE_BINS)).zip(coverage.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
+            |(piece, ((sums, weights), coverage))| {
+                // This piece holds RF bins a..b.
+                let a = lo + piece * PIECE_BINS;
+                let b = a + sums.len();
+                for &(first, step) in &placed {
+                    let n = step.values.len().min(step.sigma.len());
+                    let (from, to) = (first.max(a), (first + n).min(b));
+                    if from < to {
+                        let (here, there) = (from - a..to - a, from - first..to - first);
+                        accumulate(&mut sums[here.clone()], &mut weights[here.clone()], &mut coverage[here], &step.values[there.clone()], &step.sigma[there]);
+                    }
+                }
+            },
+        );
         Ok(())
     }
     fn finish(self: Box<Self>) -> Spectrum {

@@ -14,6 +14,13 @@ pub mod rescale;
 
 use crate::runfile::{RunHeader, StepMeta};
 
+/// `x.is_finite()` written as a floating-point comparison. The standard form is compiled to
+/// integer tests on the bits, which keeps the per-bin loops of the stages from vectorising.
+#[inline]
+pub(crate) fn finite(x: f64) -> bool {
+    x.abs() <= f64::MAX
+}
+
 /// What the numbers in the data currently mean.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Form {
@@ -146,6 +153,12 @@ pub struct Candidate {
 pub trait Combiner: Send {
     /// Adds one step (called in step order, so the sums are reproducible).
     fn add(&mut self, step: &Step) -> Result<(), String>;
+    /// Adds consecutive steps, given in step order: the same result, bit for bit, as
+    /// [`Combiner::add`] on each in turn, which is what this default does. A combiner may
+    /// override it to work on several RF bins at once, each bin still summed in step order.
+    fn add_all(&mut self, steps: &[&Step]) -> Result<(), String> {
+        steps.iter().try_for_each(|step| self.add(step))
+    }
     /// Returns the combined spectrum.
     fn finish(self: Box<Self>) -> Spectrum;
 }

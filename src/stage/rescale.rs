@@ -5,7 +5,7 @@
 //! bin's RF frequency f_k, cavity Lorentzian included. 1.0 means the whole power of the
 //! reference axion falls in the bin.
 
-use super::{NightInfo, Step, StepStage, Verdict};
+use super::{NightInfo, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_DFSZ, G_GAMMA_KSVZ};
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
@@ -91,14 +91,34 @@ impl StepStage for Rescale {
         let (detuning_0, detuning_step) = (m.start_freq_hz / m.cavity_freq_hz - 1.0, night.bin_width_hz / m.cavity_freq_hz);
         let four_q2 = 4.0 * m.loaded_q * m.loaded_q;
         let inv_root_n = 1.0 / (m.n_averages as f64).sqrt();
-        step.sigma.clear();
-        step.sigma.resize(step.values.len(), 0.0);
-        for (k, (v, s)) in step.values.iter_mut().zip(step.sigma.iter_mut()).enumerate() {
-            let detuning = detuning_0 + k as f64 * detuning_step;
-            let scale = on_resonance * (1.0 + four_q2 * detuning * detuning);
-            *v *= scale;
-            *s = if v.is_finite() { scale * inv_root_n } else { f64::INFINITY };
-        }
+        scale_bins(&mut step.values, &mut step.sigma, Lorentzian { on_resonance, detuning_0, detuning_step, four_q2 }, inv_root_n);
         Verdict::Keep
     }
+}
+
+/// Reference-axion power per bin as a Lorentzian in the detuning f_k / f_c - 1, in units of
+/// the noise power per bin.
+struct Lorentzian {
+    /// Noise power over the on-resonance signal power.
+    on_resonance: f64,
+    /// Detuning of bin 0.
+    detuning_0: f64,
+    /// Detuning added per bin, dnu_b / f_c.
+    detuning_step: f64,
+    /// 4 Q_L^2.
+    four_q2: f64,
+}
+
+/// Multiplies each bin of `values` by its scale and refills `sigma` with scale / sqrt(N)
+/// (infinite where the value is not finite). `sigma` is written by `extend` rather than
+/// zero-filled first, and the two buffers come in as separate arguments, so the compiler
+/// knows they are distinct and vectorises the loop.
+fn scale_bins(values: &mut [f64], sigma: &mut Vec<f64>, line: Lorentzian, inv_root_n: f64) {
+    sigma.clear();
+    sigma.extend(values.iter_mut().enumerate().map(|(k, v)| {
+        let detuning = line.detuning_0 + k as f64 * line.detuning_step;
+        let scale = line.on_resonance * (1.0 + line.four_q2 * detuning * detuning);
+        *v *= scale;
+        if finite(*v) { scale * inv_root_n } else { f64::INFINITY }
+    }));
 }
