@@ -193,12 +193,10 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
             continue;
         }
         let mut cut_here = Vec::new();
-        for_each_chunk(&readers, &night, injection, &mut steps, |chunk| {
+        for_each_chunk(&readers, &night, injection, &mut steps, |chunk, fresh| {
             let (before, rest) = step_stages.split_at_mut(s);
-            let kept = run_stages(before, chunk, &night, &mut cut_here, paths);
-            for step in kept {
-                rest[0].1.survey(step);
-            }
+            let kept = run_stages(before, chunk, fresh, &night, &mut cut_here, paths);
+            rest[0].1.survey_all(&kept);
             Ok(())
         })?;
         step_stages[s].1.finish_survey().map_err(|e| ReduceError::Night(format!("stage \"{}\": {e}", step_stages[s].0)))?;
@@ -207,9 +205,9 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     let mut used_steps = Vec::new();
     let mut if_profile = crate::state::IfProfile::new(&night);
     let mut done = 0;
-    for_each_chunk(&readers, &night, injection, &mut steps, |chunk| {
+    for_each_chunk(&readers, &night, injection, &mut steps, |chunk, fresh| {
         let n = chunk.len();
-        let kept = run_stages(&mut step_stages, chunk, &night, &mut cuts, paths);
+        let kept = run_stages(&mut step_stages, chunk, fresh, &night, &mut cuts, paths);
         combiner.add_all(&kept).map_err(ReduceError::Night)?;
         if_profile.add_all(&kept);
         used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
@@ -225,10 +223,13 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: if_profile.finish() })
 }
 
-/// Applies `stages` to a chunk in parallel; returns the kept steps in order and records cuts.
+/// Loads each step of a chunk from `fresh` and applies `stages` to it, in parallel (loading
+/// and stages in one task per step, so the step's bins are still in that core's cache);
+/// returns the kept steps in order and records cuts.
 fn run_stages<'a>(
     stages: &mut [(String, Box<dyn StepStage>)],
     chunk: &'a mut [Step],
+    fresh: &Fresh<'_>,
     night: &NightInfo,
     cuts: &mut Vec<CutStep>,
     paths: &[PathBuf],
@@ -236,7 +237,9 @@ fn run_stages<'a>(
     let stages: &[(String, Box<dyn StepStage>)] = stages;
     let verdicts: Vec<Option<(String, String)>> = chunk
         .par_iter_mut()
-        .map(|step| {
+        .enumerate()
+        .map(|(r, step)| {
+            fresh.load(r, step);
             stages.iter().find_map(|(kind, stage)| match stage.apply(step, night) {
                 Verdict::Keep => None,
                 Verdict::Cut(reason) => Some((kind.clone(), reason)),
@@ -299,16 +302,35 @@ struct RawChunk {
     rows: Rows,
 }
 
+/// The stored rows of a chunk, and how to turn row `r` into the values of a fresh step.
+struct Fresh<'a> {
+    raw: &'a RawChunk,
+    night: &'a NightInfo,
+    injection: Option<&'a Injection>,
+}
+
+impl Fresh<'_> {
+    /// Replaces the values of `step` (row `r` of the chunk, its metadata already set) with the
+    /// stored row widened to f64, empties its sigma, and adds the injection if any.
+    fn load(&self, r: usize, step: &mut Step) {
+        self.raw.rows.widen_into(r, &mut step.values);
+        step.sigma.clear();
+        if let Some(injection) = self.injection {
+            injection.apply(step, self.night);
+        }
+    }
+}
+
 /// Reads every file in chunks of rows on one thread (every HDF5 call of the pass happens
-/// there) while the calling thread widens each chunk into `steps` (buffers reused from chunk
-/// to chunk), adds the injection if any, and hands the chunk of fresh steps to `f`. Reading
-/// runs ahead of the computation by at most [`READ_AHEAD_CHUNKS`] chunks.
+/// there) while the calling thread sets the metadata of `steps` (buffers reused from chunk
+/// to chunk) and hands them to `f` with the rows they are to be loaded from ([`Fresh`]).
+/// Reading runs ahead of the computation by at most [`READ_AHEAD_CHUNKS`] chunks.
 fn for_each_chunk(
     readers: &[RunReader],
     night: &NightInfo,
     injection: Option<&Injection>,
     steps: &mut Vec<Step>,
-    mut f: impl FnMut(&mut [Step]) -> Result<(), ReduceError>,
+    mut f: impl FnMut(&mut [Step], &Fresh<'_>) -> Result<(), ReduceError>,
 ) -> Result<(), ReduceError> {
     std::thread::scope(|scope| {
         let (sender, receiver) = mpsc::sync_channel::<Result<RawChunk, RunFileError>>(READ_AHEAD_CHUNKS);
@@ -336,29 +358,25 @@ fn for_each_chunk(
         for raw in receiver {
             let raw = raw?;
             let n = raw.rows.len();
-            fill_steps(steps, &raw, &readers[raw.file], night, injection);
-            f(&mut steps[..n])?;
+            place_steps(steps, &raw, &readers[raw.file]);
+            f(&mut steps[..n], &Fresh { raw: &raw, night, injection })?;
         }
         Ok(())
     })
 }
 
-/// Refills the first rows of `steps` (grown if needed) from a chunk, in parallel.
-fn fill_steps(steps: &mut Vec<Step>, raw: &RawChunk, reader: &RunReader, night: &NightInfo, injection: Option<&Injection>) {
+/// Sets index and metadata of the first rows of `steps` (grown if needed) for a chunk; the
+/// values are loaded later, by [`Fresh::load`].
+fn place_steps(steps: &mut Vec<Step>, raw: &RawChunk, reader: &RunReader) {
     let n = raw.rows.len();
     let meta = &reader.steps()[raw.first_row..raw.first_row + n];
     if steps.len() < n {
         steps.resize_with(n, || Step { index: 0, file: 0, index_in_file: 0, meta: meta[0], values: Vec::new(), sigma: Vec::new() });
     }
-    steps[..n].par_iter_mut().zip(meta).enumerate().for_each(|(r, (step, meta))| {
+    for (r, (step, meta)) in steps[..n].iter_mut().zip(meta).enumerate() {
         step.index = raw.first_index + r;
         step.file = raw.file;
         step.index_in_file = raw.first_row + r;
         step.meta = *meta;
-        raw.rows.widen_into(r, &mut step.values);
-        step.sigma.clear();
-        if let Some(injection) = injection {
-            injection.apply(step, night);
-        }
-    });
+    }
 }

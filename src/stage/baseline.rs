@@ -12,6 +12,7 @@
 use super::{NightInfo, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::savgol::{SavitzkyGolay, SmoothingPlan, SmoothingScratch};
+use rayon::prelude::*;
 use serde::Deserialize;
 use std::cell::RefCell;
 
@@ -98,11 +99,18 @@ impl StepStage for Baseline {
         true
     }
     fn survey(&mut self, step: &Step) {
-        for ((s, c), &p) in self.gain_sum.iter_mut().zip(&mut self.gain_count).zip(&step.values) {
-            let valid = finite(p);
-            *s += if valid { p } else { 0.0 };
-            *c += u32::from(valid);
-        }
+        add_power(&mut self.gain_sum, &mut self.gain_count, &step.values);
+    }
+    /// IF pieces of [`SURVEY_PIECE_BINS`] in parallel, each summing the steps in their order.
+    fn survey_all(&mut self, steps: &[&Step]) {
+        self.gain_sum.par_chunks_mut(SURVEY_PIECE_BINS).zip(self.gain_count.par_chunks_mut(SURVEY_PIECE_BINS)).enumerate().for_each(|(piece, (sums, counts))| {
+            let a = piece * SURVEY_PIECE_BINS;
+            for step in steps {
+                if let Some(values) = step.values.get(a..) {
+                    add_power(sums, counts, values);
+                }
+            }
+        });
     }
     fn finish_survey(&mut self) -> Result<(), String> {
         let mean: Vec<f64> = self.gain_sum.iter().zip(&self.gain_count).map(|(&s, &c)| if c > 0 { s / f64::from(c) } else { f64::NAN }).collect();
@@ -135,6 +143,19 @@ impl StepStage for Baseline {
             }
             Verdict::Keep
         })
+    }
+}
+
+/// IF bins one task of [`Baseline::survey_all`] accumulates.
+const SURVEY_PIECE_BINS: usize = 4096;
+
+/// Adds the finite values to `sums` and counts them in `counts`, bin by bin over the common
+/// length.
+fn add_power(sums: &mut [f64], counts: &mut [u32], values: &[f64]) {
+    for ((s, c), &p) in sums.iter_mut().zip(counts.iter_mut()).zip(values) {
+        let valid = finite(p);
+        *s += if valid { p } else { 0.0 };
+        *c += u32::from(valid);
     }
 }
 

@@ -85,6 +85,14 @@ pub trait StepStage: Send + Sync {
     }
     /// Accumulates night-wide statistics from one step (called in step order).
     fn survey(&mut self, _step: &Step) {}
+    /// Accumulates consecutive steps, given in step order: the same result, bit for bit, as
+    /// [`StepStage::survey`] on each in turn, which is what this default does. A stage may
+    /// override it to work on several bins at once.
+    fn survey_all(&mut self, steps: &[&Step]) {
+        for step in steps {
+            self.survey(step);
+        }
+    }
     /// Closes the survey; errors if the night gave too little to work with.
     fn finish_survey(&mut self) -> Result<(), String> {
         Ok(())
