@@ -279,3 +279,62 @@ fn status_reports_text_and_json() {
     assert_eq!(missing.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&missing.stderr).contains("no state.json"));
 }
+
+/// A calibrated update records the limit range, and `status` reports it: the smallest and
+/// largest |g_gamma| / KSVZ over the excluded bins equal those of the same update's
+/// limits.csv (its values rounded to 5 decimals), with the same number of excluded bins.
+#[test]
+fn status_reports_the_limit_range_of_a_calibrated_update() {
+    use axsift::calib::{self, CampaignSpec, NoiseSource};
+    let dir = tempfile::tempdir().unwrap();
+    let exe = env!("CARGO_BIN_EXE_axsift");
+    let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
+    // A small campaign, enough for an eta: one null and three injection realisations.
+    let mut small = null_scenario(61);
+    small.scan.n_steps = 60;
+    let spec = CampaignSpec { seed: 9, null_realisations: 1, eta_realisations: 3, eta_snr: 20.0, snr_grid: vec![], realisations_per_snr: 0, max_injections_per_realisation: 40 };
+    let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &small, scratch: dir.path() }, &spec, &|_, _| {}).unwrap();
+    let cal_dir = dir.path().join("calib");
+    cal.write(&cal_dir).unwrap();
+
+    let state_dir = dir.path().join("state");
+    let out_dir = dir.path().join("out");
+    let run = Command::new(exe)
+        .args(["-q", "reduce", "--config", pipeline, "--calibration"])
+        .arg(cal_dir.join("calibration.json"))
+        .arg("--state")
+        .arg(&state_dir)
+        .arg("--out")
+        .arg(&out_dir)
+        .arg(night(62, 5.2e9, dir.path(), true))
+        .output()
+        .unwrap();
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+
+    let mut reader = csv::Reader::from_path(out_dir.join("limits.csv")).unwrap();
+    let excluded: Vec<f64> = reader
+        .records()
+        .map(|r| r.unwrap())
+        .filter(|r| &r[2] == "true")
+        .map(|r| r[5].parse::<f64>().unwrap())
+        .filter(|v| v.is_finite())
+        .collect();
+    assert!(!excluded.is_empty());
+    let csv_min = excluded.iter().cloned().fold(f64::INFINITY, f64::min);
+    let csv_max = excluded.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+
+    let json = Command::new(exe).args(["status", "--json", "--state"]).arg(&state_dir).output().unwrap();
+    assert!(json.status.success());
+    let v: serde_json::Value = serde_json::from_slice(&json.stdout).unwrap();
+    let limit = &v["limit"];
+    assert!(!limit.is_null(), "{v}");
+    let (min, max) = (limit["min_rel_ksvz"].as_f64().unwrap(), limit["max_rel_ksvz"].as_f64().unwrap());
+    assert!((min - csv_min).abs() <= 5e-6 && (max - csv_max).abs() <= 5e-6, "status {min}..{max}, limits.csv {csv_min}..{csv_max}");
+    assert_eq!(limit["excluded_bins"].as_u64().unwrap() as usize, excluded.len());
+    assert_eq!(limit["confidence"].as_f64().unwrap(), 0.95);
+
+    let text = Command::new(exe).args(["status", "--state"]).arg(&state_dir).output().unwrap();
+    let text = String::from_utf8(text.stdout).unwrap();
+    assert!(text.contains(&format!("|g_gamma| / KSVZ {min:.3} to {max:.3} over {} bins", excluded.len())), "{text}");
+}
