@@ -5,6 +5,8 @@
 # idle pause. Then runs the numpy/scipy baselines (scipy savgol_filter, and an FFT fit) on the
 # 3000-step night and prints the ratios. Not part of the tests: timings on shared machines
 # are noisy. Usage: bash scripts/bench.sh [work dir, default /tmp/axsift-bench]
+# With AXSIFT_BEFORE=/path/to/an/older/axsift, that build is measured in the same run (hot,
+# alternating with this one) and the ratio printed.
 set -euo pipefail
 root="$(cd "$(dirname "$0")/.." && pwd)"
 work="${1:-/tmp/axsift-bench}"
@@ -34,6 +36,16 @@ for steps in 300 3000 10000; do
   sleep 12
   read -r t_idle kb_idle < <(measure "$axsift" -q reduce --config "$root/pipeline.toml" --out "$work/out$steps" "$night")
   hot[$steps]=$t_hot
+  if [ -n "${AXSIFT_BEFORE:-}" ]; then
+    read -r t_before kb_before < <(measure "$AXSIFT_BEFORE" -q reduce --config "$root/pipeline.toml" --out "$work/before$steps" "$night")
+    read -r t_again kb_again < <(measure "$axsift" -q reduce --config "$root/pipeline.toml" --out "$work/out$steps" "$night")
+    python3 - "$steps" "$t_before" "$kb_before" "$t_again" <<'PY'
+import sys
+steps, tb, kb, ta = int(sys.argv[1]), *map(float, sys.argv[2:])
+n = steps * 32768
+print(f"before {steps:>5} steps: hot {tb:6.2f} s {n/tb/1e6:6.1f} M bins/s peak {kb/1024:5.0f} MB | this build right after: {ta:6.2f} s, {tb/ta:4.2f}x faster")
+PY
+  fi
   python3 - "$steps" "$t_hot" "$kb_hot" "$t_idle" "$kb_idle" <<'PY'
 import sys
 steps, th, kh, ti, ki = int(sys.argv[1]), *map(float, sys.argv[2:])
