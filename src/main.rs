@@ -332,12 +332,13 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
         .transpose()
         .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
     let bar = output::progress::Bar::new(quiet, "reducing", "steps");
-    let reduction = pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(|e| match e {
-        pipeline::ReduceError::RunFile(_) => Failure::BadInput(e.into()),
-        pipeline::ReduceError::Night(_) => Failure::Run(e.into()),
+    let (reduction, provenance) = with_provenance(config_text, runs, || {
+        pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(|e| match e {
+            pipeline::ReduceError::RunFile(_) => Failure::BadInput(e.into()),
+            pipeline::ReduceError::Night(_) => Failure::Run(e.into()),
+        })
     })?;
     bar.finish();
-    let provenance = output::Provenance::new(config_text, runs).context("hashing the inputs")?;
     let limits = calibration
         .as_ref()
         .map(|cal| axsift::limits::for_reduction(&plan, &reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))
@@ -351,6 +352,18 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
     Ok(())
 }
 
+/// Runs `work` (a reduction of `runs`) while the run files are hashed for the provenance on
+/// another thread: the hash reads every file once more, and overlapping it with the
+/// reduction keeps it off the wall time.
+fn with_provenance<T>(config_text: &str, runs: &[PathBuf], work: impl FnOnce() -> Result<T, Failure>) -> Result<(T, output::Provenance), Failure> {
+    std::thread::scope(|scope| {
+        let hashing = scope.spawn(|| output::Provenance::new(config_text, runs));
+        let result = work();
+        let provenance = hashing.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        Ok((result?, provenance.context("hashing the inputs")?))
+    })
+}
+
 fn reduce_into_state(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: Option<&Path>, state_dir: &Path, out: &Path, quiet: bool) -> Result<(), Failure> {
     let bad = |e: String| Failure::BadInput(anyhow::anyhow!(e));
     let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
@@ -359,14 +372,13 @@ fn reduce_into_state(config_text: &str, config_name: &str, runs: &[PathBuf], cal
         Some(st) => st,
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
     };
-    let update = axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0);
+    let (update, provenance) = with_provenance(config_text, runs, || Ok(axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0)))?;
     let limits = calibration
         .as_ref()
         .map(|cal| axsift::limits::for_reduction(&plan, &update.reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))
         .transpose()
         .map_err(bad)?;
     let calibrated = calibration.as_ref().zip(limits.as_ref());
-    let provenance = output::Provenance::new(config_text, runs).context("hashing the inputs")?;
     let written = update.reduction.write(out, config_text, &provenance, calibrated)?;
     if let Some(limits) = &limits {
         st.record_limit(limits, &update.reduction.spectrum, update.match_hz);

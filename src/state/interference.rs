@@ -113,13 +113,16 @@ impl IfProfile {
             |(piece, (((count, w_sum), wr_sum), wrr_sum))| {
                 let a = piece * PIECE_BINS;
                 for step in steps {
-                    for (i, k) in (a..a + count.len()).enumerate() {
-                        if let Some((r, w)) = sample(step, k) {
-                            count[i] += 1;
-                            w_sum[i] += w;
-                            wr_sum[i] += w * r;
-                            wrr_sum[i] += w * r * r;
-                        }
+                    // Equal-length slices: the loop has no bounds checks and no branches.
+                    let n = count.len().min(step.values.len().saturating_sub(a)).min(step.sigma.len().saturating_sub(a));
+                    let (values, sigma) = (&step.values[a..a + n], &step.sigma[a..a + n]);
+                    let (count, w_sum, wr_sum, wrr_sum) = (&mut count[..n], &mut w_sum[..n], &mut wr_sum[..n], &mut wrr_sum[..n]);
+                    for i in 0..n {
+                        let (r, w, valid) = sample(values[i], sigma[i]);
+                        count[i] += u32::from(valid);
+                        w_sum[i] += w;
+                        wr_sum[i] += w * r;
+                        wrr_sum[i] += w * r * r;
                     }
                 }
             },
@@ -132,12 +135,23 @@ impl IfProfile {
                 let a = (piece * PIECE_BINS) as i64;
                 let b = a + z_top.len() as i64;
                 for &(first, step) in &placed {
-                    for j in first.max(a)..(first + n_if as i64).min(b) {
-                        let (k, i) = ((j - first) as usize, (j - a) as usize);
+                    let len = step.values.len().min(step.sigma.len()).min(n_if) as i64;
+                    let (j0, j1) = (first.max(a), (first + len).min(b));
+                    if j0 >= j1 {
+                        continue;
+                    }
+                    let (k0, i0, n) = ((j0 - first) as usize, (j0 - a) as usize, (j1 - j0) as usize);
+                    let (values, sigma) = (&step.values[k0..k0 + n], &step.sigma[k0..k0 + n]);
+                    let (z_top, w_top, r_top, k_top) = (&mut z_top[i0..i0 + n], &mut w_top[i0..i0 + n], &mut r_top[i0..i0 + n], &mut k_top[i0..i0 + n]);
+                    for i in 0..n {
+                        let (r, w, valid) = sample(values[i], sigma[i]);
+                        let z = r * w.sqrt();
                         // Strictly greater: of equal samples the first in step order stays.
-                        if let Some((r, w)) = sample(step, k).filter(|&(r, w)| r * w.sqrt() > z_top[i]) {
-                            (z_top[i], w_top[i], r_top[i], k_top[i]) = (r * w.sqrt(), w, r, k as u32);
-                        }
+                        let take = valid && z > z_top[i];
+                        z_top[i] = if take { z } else { z_top[i] };
+                        w_top[i] = if take { w } else { w_top[i] };
+                        r_top[i] = if take { r } else { r_top[i] };
+                        k_top[i] = if take { (k0 + i) as u32 } else { k_top[i] };
                     }
                 }
             },
@@ -193,10 +207,12 @@ impl IfProfile {
     }
 }
 
-/// A step's value and weight 1/sigma^2 in IF bin k, if valid.
-fn sample(step: &Step, k: usize) -> Option<(f64, f64)> {
-    let (r, s) = (*step.values.get(k)?, *step.sigma.get(k)?);
-    (r.is_finite() && s.is_finite() && s > 0.0).then(|| (r, 1.0 / (s * s)))
+/// A bin's value r and weight 1/sigma^2, and whether it is valid (r and sigma finite,
+/// sigma > 0). An invalid bin gives value and weight 0, so sums can take it without a branch.
+#[inline]
+fn sample(r: f64, sigma: f64) -> (f64, f64, bool) {
+    let valid = r.abs() <= f64::MAX && sigma > 0.0 && sigma <= f64::MAX;
+    (if valid { r } else { 0.0 }, if valid { 1.0 / (sigma * sigma) } else { 0.0 }, valid)
 }
 
 /// Normal significance of a chi-square value with `nu` degrees of freedom (Wilson-Hilferty:
