@@ -114,6 +114,9 @@ enum Command {
         /// The calibration that reduction used: adds the full calibration section.
         #[arg(long)]
         calibration: Option<PathBuf>,
+        /// The analysis state folder that reduction updated: adds the section across nights.
+        #[arg(long)]
+        state: Option<PathBuf>,
     },
     /// Print the resolved pipeline with every default filled in.
     /// Example: axsift plan --config pipeline.toml
@@ -243,16 +246,16 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Simulate { scenario, out } => simulate(&scenario, &out),
         Command::Reduce { config, out, calibration, state, runs, report } => read_text(&config)
-            .and_then(|text| match state {
-                Some(state) => reduce_into_state(&text, &config.display().to_string(), &runs, calibration.as_deref(), &state, &out, cli.quiet),
+            .and_then(|text| match &state {
+                Some(state) => reduce_into_state(&text, &config.display().to_string(), &runs, calibration.as_deref(), state, &out, cli.quiet),
                 None => reduce(&text, &config.display().to_string(), &runs, calibration.as_deref(), &out, cli.quiet),
             })
-            .and_then(|()| if report { write_report(&out, calibration.as_deref(), cli.quiet) } else { Ok(()) }),
+            .and_then(|()| if report { write_report(&out, calibration.as_deref(), state.as_deref(), cli.quiet) } else { Ok(()) }),
         Command::Status { state, json } => status(&state, json),
         Command::Calibrate { config, out, scenario, seed, runs } => calibrate(&config, &out, scenario.as_deref(), seed, &runs, cli.quiet),
         Command::Forecast { config, run_plan, calibration, out } => forecast(&config, &run_plan, &calibration, &out, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
-        Command::Report { dir, calibration } => write_report(&dir, calibration.as_deref(), cli.quiet),
+        Command::Report { dir, calibration, state } => write_report(&dir, calibration.as_deref(), state.as_deref(), cli.quiet),
         Command::Plan { config } => read_text(&config).and_then(|text| {
             let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
             print!("{}", plan.describe());
@@ -455,12 +458,18 @@ fn demo(out: &Path, quiet: bool) -> Result<(), Failure> {
     tracing::info!("simulating the demo night \"{}\"", sc.run_label);
     write_simulation(&sc, &run)?;
     reduce(DEFAULT_PIPELINE, "pipeline.toml (built in)", &[run], None, out, quiet)?;
-    write_report(out, None, quiet)
+    write_report(out, None, None, quiet)
 }
 
 /// Writes report.html into an output folder of `reduce`, from the files there.
-fn write_report(dir: &Path, calibration: Option<&Path>, quiet: bool) -> Result<(), Failure> {
-    let data = axsift::report::ReportData::from_folder(dir, calibration).map_err(Failure::BadInput)?;
+fn write_report(dir: &Path, calibration: Option<&Path>, state_dir: Option<&Path>, quiet: bool) -> Result<(), Failure> {
+    let mut data = axsift::report::ReportData::from_folder(dir, calibration).map_err(Failure::BadInput)?;
+    if let Some(state_dir) = state_dir {
+        let st = axsift::state::State::load(state_dir)
+            .map_err(|e| Failure::BadInput(e.into()))?
+            .ok_or_else(|| Failure::BadInput(anyhow::anyhow!("{}: no state.json here", state_dir.display())))?;
+        data = data.with_state(&st);
+    }
     let path = axsift::report::write(dir, &data)?;
     if !quiet {
         println!("Report: {}", path.display());

@@ -125,7 +125,7 @@ fn demo_report_renders_in_chromium() {
     assert!(stdout.contains("report.html"), "{stdout}");
     let html = std::fs::read_to_string(&page).unwrap();
     let always = ["The night at a glance", "Quality cuts", "Steps through the night", "Grand spectrum", "Distribution of the grand spectrum", "Rescan candidates", "Provenance"];
-    assert_page(&html, &always, &["Exclusion limits", "Calibration"]);
+    assert_page(&html, &always, &["Across nights", "Exclusion limits", "Calibration"]);
     assert!(html.contains("5205.20"), "the demo axion's frequency is not in the candidate table");
     assert!(html.contains("never drives the magnet"), "the rescan advice lacks the hardware note");
     assert!(html.contains("600 / 600"), "steps used");
@@ -218,4 +218,34 @@ fn inspect_json_is_machine_readable() {
     let t = &v["steps"]["noise_temp_k"];
     assert!(t["min"].as_f64().unwrap() <= t["median"].as_f64().unwrap() && t["median"].as_f64().unwrap() <= t["max"].as_f64().unwrap());
     assert!(v["rf_stop_hz"].as_f64().unwrap() > v["rf_start_hz"].as_f64().unwrap());
+}
+
+/// A reduction into an analysis state writes the section across nights: the nights, every
+/// tracked candidate with its class and rescan integration as `status --json` gives them,
+/// and the limit range; `report DIR --state` rebuilds the same page.
+#[test]
+fn state_reduction_report_has_the_section_across_nights() {
+    let dir = tempfile::tempdir().unwrap();
+    let night = dir.path().join("night.h5");
+    run(axsift().args(["simulate", "--scenario", concat!(env!("CARGO_MANIFEST_DIR"), "/fixtures/demo_night.toml"), "--out"]).arg(&night));
+    let (state, out) = (dir.path().join("state"), dir.path().join("out"));
+    run(axsift().args(["reduce", "--report", "-q", "--config", concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml"), "--state"]).arg(&state).arg("--out").arg(&out).arg(&night));
+    let page = out.join("report.html");
+    let html = std::fs::read_to_string(&page).unwrap();
+    assert_page(&html, &["The night at a glance", "Rescan candidates", "Across nights", "Provenance"], &["Exclusion limits"]);
+    let status: serde_json::Value = serde_json::from_str(&run(axsift().args(["status", "--json", "--state"]).arg(&state))).unwrap();
+    let tracked = status["candidates"].as_array().unwrap();
+    assert!(!tracked.is_empty());
+    let section = &html[html.find("<h2>Across nights</h2>").unwrap()..html.find("<h2>Provenance</h2>").unwrap()];
+    for c in tracked {
+        let row = format!("<td class=\"n\">{:.6}</td><td>{}</td>", c["frequency_hz"].as_f64().unwrap() / 1e6, c["class"].as_str().unwrap());
+        assert!(section.contains(&row), "tracked candidate missing: {row}");
+        assert!(section.contains(&format!("{:.0}", c["rescan_integration_s"].as_f64().unwrap())));
+    }
+    assert!(section.contains(&format!("{} new, 0 persist, 0 cleared, 0 interference", tracked.len())), "class counts");
+    assert!(section.contains("no update of the state had a calibration"));
+    assert!(section.contains("laboratory's safety rules"));
+    assert_not_blank(&page);
+    run(axsift().args(["report", "-q"]).arg(&out).arg("--state").arg(&state));
+    assert_eq!(std::fs::read_to_string(&page).unwrap(), html);
 }

@@ -33,6 +33,9 @@ pub struct ReportData {
     pub calibration: Option<Calibration>,
     /// The pipeline file's text.
     pub config_text: String,
+    /// The analysis state after this reduction, when it was made with a state folder
+    /// (set with [`ReportData::with_state`]).
+    pub state: Option<crate::state::StatusSummary>,
 }
 
 /// The fields of `summary.json` the report uses (NaN values are written as null there).
@@ -184,6 +187,7 @@ impl ReportData {
             limits: limits.map(|l| LimitView { points: l.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev.abs())).collect(), eta: l.assumptions.eta }),
             calibration: calibration.cloned(),
             config_text: config_text.to_string(),
+            state: None,
         })
     }
 
@@ -191,6 +195,13 @@ impl ReportData {
     /// `results.h5`). The run files named in the provenance are read again for the per-step
     /// diagnostics if they are still where they were; `calibration`, if given, is checked
     /// against the pipeline stored in `results.h5` and adds the full calibration section.
+    /// Adds the nightly-state section: the state folder's nights, candidate classes with
+    /// their evidence and rescan plan, and the limit range.
+    pub fn with_state(mut self, state: &crate::state::State) -> Self {
+        self.state = Some(crate::state::StatusSummary::of(state));
+        self
+    }
+
     pub fn from_folder(dir: &Path, calibration: Option<&Path>) -> anyhow::Result<Self> {
         use anyhow::Context;
         let summary_path = dir.join("summary.json");
@@ -228,6 +239,6 @@ impl ReportData {
             None => plan.and_then(|plan| diagnostics::measure(&plan, &runs)),
         };
         let run_labels = runs.iter().filter_map(|p| crate::runfile::RunReader::open(p).ok()).map(|r| r.header().run_label.clone()).collect();
-        Ok(Self { run_labels, rf_start_hz: freq.first().copied().unwrap_or(summary.rf_start_hz), bin_width_hz, grand, implied, steps, limits, calibration, config_text, summary })
+        Ok(Self { run_labels, rf_start_hz: freq.first().copied().unwrap_or(summary.rf_start_hz), bin_width_hz, grand, implied, steps, limits, calibration, config_text, summary, state: None })
     }
 }

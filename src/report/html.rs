@@ -7,13 +7,14 @@ use std::collections::HashSet;
 use std::fmt::Write;
 
 /// Section headings, in page order (tests look for them).
-pub const HEADINGS: [&str; 9] = [
+pub const HEADINGS: [&str; 10] = [
     "The night at a glance",
     "Quality cuts",
     "Steps through the night",
     "Grand spectrum",
     "Distribution of the grand spectrum",
     "Rescan candidates",
+    "Across nights",
     "Exclusion limits",
     "Calibration",
     "Provenance",
@@ -109,6 +110,7 @@ pub fn render(d: &ReportData) -> anyhow::Result<String> {
         .copied()
         .filter(|h| match *h {
             "Steps through the night" => d.steps.as_ref().is_ok_and(|x| !x.steps.is_empty()) || d.steps.is_err(),
+            "Across nights" => d.state.is_some(),
             "Exclusion limits" => d.limits.is_some(),
             "Calibration" => d.calibration.is_some() || s.calibration.is_some(),
             _ => true,
@@ -148,6 +150,7 @@ pub fn render(d: &ReportData) -> anyhow::Result<String> {
             "Grand spectrum" => grand(&mut out, d)?,
             "Distribution of the grand spectrum" => distribution(&mut out, d)?,
             "Rescan candidates" => candidates(&mut out, d),
+            "Across nights" => across_nights(&mut out, d),
             "Exclusion limits" => exclusion(&mut out, d)?,
             "Calibration" => calibration(&mut out, d)?,
             _ => provenance(&mut out, d),
@@ -321,6 +324,52 @@ fn candidates(out: &mut String, d: &ReportData) {
         out.push_str("</tr>");
     }
     out.push_str("</table></div><p class=\"note\">Sorted by significance. The retune frequency is the line's mean frequency nu_a (1 + &lt;beta^2&gt;/2).</p>");
+}
+
+/// The analysis state: nights, tracked candidates by class with evidence and rescan plan,
+/// the limit range.
+fn across_nights(out: &mut String, d: &ReportData) {
+    let Some(st) = &d.state else { return };
+    let c = &st.candidates_by_class;
+    out.push_str("<div class=\"cards\">");
+    let files: usize = st.nights.iter().map(|n| n.files.len()).sum();
+    card(out, "Nights", &st.nights.len().to_string(), &format!("{files} run file(s), state generation {}", st.generation));
+    card(out, "Covered", &format!("{:.3} MHz", st.covered_hz / 1e6), &st.rf_span_hz.map_or("no bins".into(), |(lo, hi)| format!("{:.4} to {:.4} MHz", lo / 1e6, hi / 1e6)));
+    card(out, "Tracked candidates", &st.candidates.len().to_string(), &format!("{} new, {} persist, {} cleared, {} interference", c.new, c.persists, c.cleared, c.interference));
+    match &st.limit {
+        Some(l) => card(out, "Limit range", &format!("{:.3} to {:.3} x KSVZ", l.min_rel_ksvz, l.max_rel_ksvz), &format!("{:.0}% confidence, {} bins, night {}", 100.0 * l.confidence, l.excluded_bins, l.night)),
+        None => card(out, "Limit range", "none", "no update of the state had a calibration"),
+    }
+    out.push_str("</div><div class=\"scroll\"><table><tr><th class=\"n\">night</th><th>run files</th><th class=\"n\">steps used</th><th>IF lines</th></tr>");
+    for n in &st.nights {
+        let names: Vec<String> = n.files.iter().map(|f| std::path::Path::new(f).file_name().map_or(f.clone(), |x| x.to_string_lossy().into_owned())).collect();
+        let lines = match n.if_line_max_sigma {
+            Some(z) => format!("{} IF bin(s), up to {z:.1} sigma", n.if_line_bins.len()),
+            None => "none".into(),
+        };
+        let _ = write!(out, "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{} / {}</td><td>{}</td></tr>", n.index, escape(&names.join(", ")), n.n_steps_used, n.n_steps, escape(&lines));
+    }
+    out.push_str("</table></div>");
+    if st.candidates.is_empty() {
+        out.push_str("<p class=\"good\">No candidate is tracked.</p>");
+        return;
+    }
+    out.push_str("<div class=\"scroll\"><table><tr><th class=\"n\">RF frequency (MHz)</th><th>class</th><th class=\"n\">grand</th><th class=\"n\">first night</th><th class=\"n\">retune cavity to (MHz)</th><th class=\"n\">integrate (s)</th><th>evidence</th></tr>");
+    for t in &st.candidates {
+        let class = format!("{:?}", t.class).to_lowercase();
+        let integrate = if t.rescan_integration_s > 0.0 { format!("{:.0}", t.rescan_integration_s) } else { "&ndash;".into() };
+        let _ = write!(
+            out,
+            "<tr><td class=\"n\">{:.6}</td><td>{}</td><td class=\"n\">{:.2}</td><td class=\"n\">{}</td><td class=\"n\">{:.6}</td><td class=\"n\">{integrate}</td><td>{}</td></tr>",
+            t.frequency_hz / 1e6,
+            escape(&class),
+            t.significance,
+            t.first_night,
+            t.revisit_cavity_hz / 1e6,
+            escape(&t.evidence)
+        );
+    }
+    out.push_str("</table></div><p class=\"note\">New: flagged, not yet revisited. Persists: still above threshold once data covered it again. Cleared: fell below (its bins count for the limits). Interference: explained by a line at a fixed IF offset (no rescan needed). The integration brings a signal of the candidate's present amplitude to SNR 5 with the night's median T_sys and Q_L; it is advice, and retuning is done under the laboratory's safety rules.</p>");
 }
 
 fn exclusion(out: &mut String, d: &ReportData) -> anyhow::Result<()> {

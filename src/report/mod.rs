@@ -2,7 +2,8 @@
 //!
 //! The page holds the night at a glance, the quality cuts, per-step diagnostics through the
 //! night, the grand spectrum and its distribution, the rescan candidates, and, when they
-//! exist, the exclusion limits and the calibration, then the provenance. Figures are inline
+//! exist, the analysis state across nights, the exclusion limits and the calibration, then
+//! the provenance. Figures are inline
 //! SVG reduced to the minimum and maximum per pixel column, the style sheet is inline, and
 //! nothing refers outside the file: it opens offline, in any browser, with scripts disabled.
 //!
