@@ -224,6 +224,10 @@ struct MergeTarget {
     /// Reduction: new analysis state folder.
     #[arg(long)]
     state: Option<PathBuf>,
+    /// Reduction: calibration made with the same pipeline; adds the limits to the merged
+    /// results, as `reduce --calibration` does.
+    #[arg(long)]
+    calibration: Option<PathBuf>,
 }
 
 /// Exit status: 0 success, 1 failure while running, 2 bad input (config, scenario, run file).
@@ -266,8 +270,8 @@ fn main() -> ExitCode {
             shard_plan(&config, &work, shards, cpus, &nights, campaign.then_some((scenario.as_deref(), seed, spec.as_deref(), runs.as_slice())))
         }
         Command::ShardRun { plan, index } => shard_run(&plan, index, cli.quiet),
-        Command::ShardMerge { target } => shard_merge(&target.plan, &target.out, target.state.as_deref(), cli.quiet),
-        Command::ShardSlurm { target, partition, submit } => shard_slurm(&target.plan, &target.out, target.state.as_deref(), partition.as_deref(), submit),
+        Command::ShardMerge { target } => shard_merge(&target, cli.quiet),
+        Command::ShardSlurm { target, partition, submit } => shard_slurm(&target, partition.as_deref(), submit),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
@@ -532,12 +536,13 @@ fn shard_run(plan: &Path, index: Option<usize>, quiet: bool) -> Result<(), Failu
     Ok(())
 }
 
-fn shard_merge(plan: &Path, out: &Path, state: Option<&Path>, quiet: bool) -> Result<(), Failure> {
-    let merged = axsift::shard::merge(plan, out, state).map_err(shard_failure)?;
+fn shard_merge(t: &MergeTarget, quiet: bool) -> Result<(), Failure> {
+    let merged = axsift::shard::merge(&t.plan, &t.out, t.state.as_deref(), t.calibration.as_deref()).map_err(shard_failure)?;
     if !quiet {
         match merged {
-            axsift::shard::Merged::Reduction { state, update, provenance, written } => {
-                print!("{}", output::console::night_report(&update.reduction, &provenance, None, &written));
+            axsift::shard::Merged::Reduction { state, update, provenance, calibrated, written } => {
+                let calibrated = calibrated.as_ref().map(|(c, l)| (c.as_ref(), l.as_ref()));
+                print!("{}", output::console::night_report(&update.reduction, &provenance, calibrated, &written));
                 print!("{}", output::console::state_report(&state, &update.changes));
             }
             axsift::shard::Merged::Campaign { calibration, written } => print!("{}", output::console::calibration_report(&calibration, &written)),
@@ -546,10 +551,10 @@ fn shard_merge(plan: &Path, out: &Path, state: Option<&Path>, quiet: bool) -> Re
     Ok(())
 }
 
-fn shard_slurm(plan: &Path, out: &Path, state: Option<&Path>, partition: Option<&str>, submit: bool) -> Result<(), Failure> {
+fn shard_slurm(t: &MergeTarget, partition: Option<&str>, submit: bool) -> Result<(), Failure> {
     use axsift::shard::slurm;
     let exe = std::env::current_exe().context("locating the axsift binary")?;
-    let scripts = slurm::write_scripts(plan, &exe, out, state, partition).map_err(shard_failure)?;
+    let scripts = slurm::write_scripts(&t.plan, &exe, &t.out, t.state.as_deref(), t.calibration.as_deref(), partition).map_err(shard_failure)?;
     println!("wrote {} and {}", scripts.shard_script.display(), scripts.merge_script.display());
     if submit {
         let ids = slurm::submit(&scripts).map_err(shard_failure)?;

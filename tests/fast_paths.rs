@@ -227,7 +227,6 @@ fn fft_filter_matches_direct_sums() {
 /// values, infinite and zero sigma, batches that start mid-grid and a step off the grid.
 #[test]
 fn combine_add_all_equals_steps_added_one_by_one() {
-    use axsift::stage::Combiner;
     use axsift::stage::combine::CombineConfig;
     let n_bins = 20_000;
     let shift = 1_700;

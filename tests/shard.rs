@@ -156,3 +156,36 @@ fn shard_index_from_the_slurm_environment() {
     assert_eq!(refused.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&refused.stderr).contains("field `shards`, entry 2"), "{}", String::from_utf8_lossy(&refused.stderr));
 }
+
+/// A reprocessing merged with a calibration has the limits of nightly `reduce --state
+/// --calibration`: limits.csv and limit_blocks.csv byte-identical and the same limit range in
+/// the state; a campaign merge refuses a calibration.
+#[test]
+fn sharded_reduction_with_a_calibration_has_the_nightly_limits() {
+    let dir = tempfile::tempdir().unwrap();
+    let (scenario_file, spec_file, cal_dir) = campaign_reference(dir.path());
+    let cal = cal_dir.join("calibration.json");
+    let nights = three_nights(dir.path());
+    let (ref_state, ref_out) = (dir.path().join("ref-state"), dir.path().join("ref-out"));
+    for n in &nights {
+        run_ok(&["reduce", "--config", "pipeline.toml", "--calibration", s(&cal), "--state", s(&ref_state), "--out", s(&ref_out), s(n)]);
+    }
+    let plan = plan_reduction(&dir.path().join("work"), &nights, 2);
+    run_shards(&plan, &[0, 1]);
+    let (state, out) = (dir.path().join("state"), dir.path().join("out"));
+    let m = axsift(&["shard-merge", "--plan", s(&plan), "--out", s(&out), "--state", s(&state), "--calibration", s(&cal)]).output().unwrap();
+    assert!(m.status.success(), "{}", String::from_utf8_lossy(&m.stderr));
+    assert_same_reduction((&ref_state, &ref_out), (&state, &out));
+    for name in ["limits.csv", "limit_blocks.csv"] {
+        assert_eq!(std::fs::read(ref_out.join(name)).unwrap(), std::fs::read(out.join(name)).unwrap(), "{name} differs");
+    }
+    let limit = |d: &Path| axsift::state::State::load(d).unwrap().unwrap().limit;
+    assert!(limit(&ref_state).is_some());
+    assert_eq!(limit(&ref_state), limit(&state));
+
+    let work = dir.path().join("camp");
+    run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(&work), "--shards", "2", "--campaign", "--scenario", s(&scenario_file), "--spec", s(&spec_file)]);
+    let refused = axsift(&["shard-merge", "--plan", s(&work.join("plan.json")), "--out", s(&dir.path().join("c")), "--calibration", s(&cal)]).output().unwrap();
+    assert_eq!(refused.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&refused.stderr).contains("takes none"), "{}", String::from_utf8_lossy(&refused.stderr));
+}

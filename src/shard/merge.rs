@@ -4,6 +4,7 @@ use super::plan::{ShardPlan, Work};
 use super::run::with_noise;
 use super::{Payload, SHARDS_DIR, ShardError, read_shard};
 use crate::calib::{self, Calibration};
+use crate::limits::Limits;
 use crate::output::Provenance;
 use crate::state::{self, State, Update};
 use std::path::{Path, PathBuf};
@@ -20,6 +21,8 @@ pub enum Merged {
         update: Box<Update>,
         /// Its provenance (the last night's files).
         provenance: Provenance,
+        /// The calibration given to the merge and the limits it gave (written beside the results).
+        calibrated: Option<(Box<Calibration>, Box<Limits>)>,
         /// Files written to the output folder.
         written: Vec<PathBuf>,
     },
@@ -52,11 +55,16 @@ fn check_no_extra(work: &Path, n: usize) -> Result<(), ShardError> {
 /// Merges every shard of the plan at `plan_path`. A reduction is added night by night into a
 /// new state saved in `state_dir` (which must not hold a state yet), and the accumulated
 /// reduction is written to `out`, as the last nightly `reduce --state` would have; a campaign
-/// writes its calibration to `out`, as `calibrate` would have.
-pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>) -> Result<Merged, ShardError> {
+/// writes its calibration to `out`, as `calibrate` would have. A reduction merged with a
+/// `calibration` (made with the same pipeline) also gets its limits, as `reduce --calibration`.
+pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration: Option<&Path>) -> Result<Merged, ShardError> {
     let (plan, hash) = ShardPlan::load(plan_path)?;
     let work = plan_path.parent().unwrap_or(Path::new("."));
     let pipeline = crate::config::load(&plan.config_text, &plan.config_name).map_err(|e| ShardError::BadInput(format!("{}: field `config_text`: {e}", plan_path.display())))?;
+    let calibration = match (&plan.work, calibration) {
+        (Work::Campaign { .. }, Some(_)) => return Err(ShardError::BadInput("a campaign merge makes a calibration and takes none (--calibration is for a reduction)".into())),
+        (_, path) => path.map(|p| Calibration::load_for(p, &pipeline)).transpose().map_err(ShardError::BadInput)?,
+    };
     check_no_extra(work, plan.shards.len())?;
     // Every shard is checked before anything is merged; a reduction's are then read again
     // one at a time, so the merge holds one shard's nights, not all of them.
@@ -89,9 +97,18 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>) -> Result<M
             let update = last.ok_or_else(|| ShardError::BadInput(format!("{}: the plan has no nights", plan_path.display())))?;
             let last_night = nights.get(update.night).cloned().unwrap_or_default();
             let provenance = Provenance::new(&plan.config_text, &last_night).map_err(|e| failed(&format!("hashing the last night's run files: {e}")))?;
-            let written = update.reduction.write(out, &plan.config_text, &provenance, None).map_err(|e| failed(&format!("{e:#}")))?;
+            let limits = calibration
+                .as_ref()
+                .map(|cal| crate::limits::for_reduction(&pipeline, &update.reduction.spectrum, cal, crate::limits::DEFAULT_CONFIDENCE))
+                .transpose()
+                .map_err(ShardError::BadInput)?;
+            let written = update.reduction.write(out, &plan.config_text, &provenance, calibration.as_ref().zip(limits.as_ref())).map_err(|e| failed(&format!("{e:#}")))?;
+            if let Some(limits) = &limits {
+                st.record_limit(limits, &update.reduction.spectrum, update.match_hz);
+            }
             st.save(state_dir).map_err(|e| failed(&e))?;
-            Ok(Merged::Reduction { state: Box::new(st), update: Box::new(update), provenance, written })
+            let calibrated = calibration.zip(limits).map(|(c, l)| (Box::new(c), Box::new(l)));
+            Ok(Merged::Reduction { state: Box::new(st), update: Box::new(update), provenance, calibrated, written })
         }
         Work::Campaign { spec, noise } => {
             let mut files = files.into_iter();

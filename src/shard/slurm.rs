@@ -37,7 +37,7 @@ fn script_path(path: &Path) -> Result<String, ShardError> {
 /// up); the merge (one cpu, the plan's merge memory, the shard time limit) reads every shard
 /// and writes `out` (and, for a reduction, `state_dir`).
 /// `exe` is the axsift binary the jobs run; `partition` is passed on if given.
-pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option<&Path>, partition: Option<&str>) -> Result<Scripts, ShardError> {
+pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option<&Path>, calibration: Option<&Path>, partition: Option<&str>) -> Result<Scripts, ShardError> {
     let (plan, _) = ShardPlan::load(plan_path)?;
     let absolute = |p: &Path| std::path::absolute(p).map_err(|e| ShardError::Io { path: p.to_path_buf(), message: e.to_string() });
     let plan_path = absolute(plan_path)?;
@@ -60,7 +60,8 @@ pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option
         )
     };
     let shard_text = format!("{}exec {exe_s} --quiet shard-run --plan {plan_s}\n", header("shard", "shard-%A_%a.log", r.mem_mb, r.cpus, r.time_s.div_ceil(60)));
-    let merge_text = format!("{}exec {exe_s} --quiet shard-merge --plan {plan_s} --out {out_s}{state_arg}\n", header("merge", "merge-%j.log", r.merge_mem_mb, 1, r.time_s.div_ceil(60)));
+    let calibration_arg = calibration.map(|c| absolute(c).and_then(|c| script_path(&c))).transpose()?.map_or(String::new(), |c| format!(" --calibration {c}"));
+    let merge_text = format!("{}exec {exe_s} --quiet shard-merge --plan {plan_s} --out {out_s}{state_arg}{calibration_arg}\n", header("merge", "merge-%j.log", r.merge_mem_mb, 1, r.time_s.div_ceil(60)));
     let shard_script = dir.join("shard.sbatch");
     let merge_script = dir.join("merge.sbatch");
     super::write_atomic(&shard_script, shard_text.as_bytes())?;
