@@ -80,6 +80,10 @@ enum Command {
         /// Seed of the injected frequencies (and of the simulated noise).
         #[arg(long, default_value_t = 1)]
         seed: u64,
+        /// TOML with the campaign size and seed (fields of calibration.json's `spec`); default
+        /// the standard campaign with --seed.
+        #[arg(long)]
+        spec: Option<PathBuf>,
         /// Recorded run files to inject into (the same noise every realisation).
         runs: Vec<PathBuf>,
     },
@@ -256,7 +260,7 @@ fn main() -> ExitCode {
             })
             .and_then(|()| if report { write_report(&out, calibration.as_deref(), state.as_deref(), cli.quiet) } else { Ok(()) }),
         Command::Status { state, json } => status(&state, json),
-        Command::Calibrate { config, out, scenario, seed, runs } => calibrate(&config, &out, scenario.as_deref(), seed, &runs, cli.quiet),
+        Command::Calibrate { config, out, scenario, seed, spec, runs } => campaign_spec(spec.as_deref(), seed).and_then(|spec| calibrate(&config, &out, scenario.as_deref(), &spec, &runs, cli.quiet)),
         Command::Forecast { config, run_plan, calibration, out } => forecast(&config, &run_plan, &calibration, &out, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
         Command::Report { dir, calibration, state } => write_report(&dir, calibration.as_deref(), state.as_deref(), cli.quiet),
@@ -413,10 +417,17 @@ fn status(state_dir: &Path, json: bool) -> Result<(), Failure> {
     Ok(())
 }
 
-fn calibrate(config: &Path, out: &Path, scenario: Option<&Path>, seed: u64, runs: &[PathBuf], quiet: bool) -> Result<(), Failure> {
+/// The campaign size: from a spec file if given, else the standard campaign with `seed`.
+fn campaign_spec(spec: Option<&Path>, seed: u64) -> Result<calib::CampaignSpec, Failure> {
+    match spec {
+        Some(path) => toml::from_str(&read_text(path)?).map_err(|e| Failure::BadInput(anyhow::anyhow!("{}: {e}", path.display()))),
+        None => Ok(calib::CampaignSpec::standard(seed)),
+    }
+}
+
+fn calibrate(config: &Path, out: &Path, scenario: Option<&Path>, spec: &calib::CampaignSpec, runs: &[PathBuf], quiet: bool) -> Result<(), Failure> {
     let text = read_text(config)?;
     let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
-    let spec = calib::CampaignSpec::standard(seed);
     let bar = output::progress::Bar::new(quiet, "calibrating", "reductions");
     let tick = |done, total| bar.update(done, total);
     let cal = match (scenario, runs.is_empty()) {
@@ -425,11 +436,11 @@ fn calibrate(config: &Path, out: &Path, scenario: Option<&Path>, seed: u64, runs
             std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
             let scratch = out.join(".scratch");
             std::fs::create_dir_all(&scratch).with_context(|| format!("cannot create {}", scratch.display()))?;
-            let cal = calib::calibrate(&plan, &calib::NoiseSource::Simulated { scenario: &sc, scratch: &scratch }, &spec, &tick);
+            let cal = calib::calibrate(&plan, &calib::NoiseSource::Simulated { scenario: &sc, scratch: &scratch }, spec, &tick);
             let _ = std::fs::remove_dir_all(&scratch);
             cal
         }
-        (None, false) => calib::calibrate(&plan, &calib::NoiseSource::Recorded(runs), &spec, &tick),
+        (None, false) => calib::calibrate(&plan, &calib::NoiseSource::Recorded(runs), spec, &tick),
         _ => return Err(Failure::BadInput(anyhow::anyhow!("give either --scenario FILE or recorded run files to inject into"))),
     }
     .map_err(|e| Failure::Run(e.into()))?;
@@ -508,10 +519,7 @@ fn shard_plan(config: &Path, work: &Path, shards: usize, cpus: usize, nights: &[
     let plan = match campaign {
         None => ShardPlan::reduction(&text, &name, nights.iter().map(|n| n.split(',').map(PathBuf::from).collect()).collect(), shards, cpus.max(1)),
         Some((scenario, seed, spec, runs)) => {
-            let spec = match spec {
-                Some(path) => toml::from_str::<calib::CampaignSpec>(&read_text(path)?).map_err(|e| Failure::BadInput(anyhow::anyhow!("{}: {e}", path.display())))?,
-                None => calib::CampaignSpec::standard(seed),
-            };
+            let spec = campaign_spec(spec, seed)?;
             let noise = match (scenario, runs.is_empty()) {
                 (Some(path), true) => CampaignNoise::Simulated { scenario_text: read_text(path)? },
                 (None, false) => CampaignNoise::Recorded { runs: runs.to_vec() },

@@ -189,3 +189,14 @@ fn sharded_reduction_with_a_calibration_has_the_nightly_limits() {
     assert_eq!(refused.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&refused.stderr).contains("takes none"), "{}", String::from_utf8_lossy(&refused.stderr));
 }
+
+/// `calibrate --spec` runs the campaign the spec file describes: its calibration.json is
+/// byte-identical to the library campaign with the same spec.
+#[test]
+fn calibrate_command_with_a_spec_equals_the_library_campaign() {
+    let dir = tempfile::tempdir().unwrap();
+    let (scenario_file, spec_file, reference) = campaign_reference(dir.path());
+    let out = dir.path().join("cli-cal");
+    run_ok(&["calibrate", "--config", "pipeline.toml", "--scenario", s(&scenario_file), "--spec", s(&spec_file), "--out", s(&out)]);
+    assert_eq!(std::fs::read(reference.join("calibration.json")).unwrap(), std::fs::read(out.join("calibration.json")).unwrap());
+}
