@@ -383,7 +383,9 @@ fn reduce_into_state(config_text: &str, config_name: &str, runs: &[PathBuf], cal
         Some(st) => st,
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
     };
-    let (update, provenance) = with_provenance(config_text, runs, || Ok(axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0)))?;
+    let update = axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0);
+    // Adding the night hashed its files; the state holds those hashes.
+    let provenance = output::Provenance::of_hashed(config_text, st.nights[update.night].inputs());
     let limits = calibration
         .as_ref()
         .map(|cal| axsift::limits::for_reduction(&plan, &update.reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))

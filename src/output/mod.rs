@@ -51,7 +51,13 @@ impl Provenance {
                 Ok((p.display().to_string(), hex(&hasher.finalize())))
             })
             .collect::<std::io::Result<_>>()?;
-        Ok(Self { tool_version: env!("CARGO_PKG_VERSION").into(), config_sha256: hex(&Sha256::digest(config_text)), inputs })
+        Ok(Self::of_hashed(config_text, inputs))
+    }
+
+    /// The provenance of input files hashed already (path as given and SHA-256 in hex, as
+    /// [`Provenance::new`] makes them); hashes only the config text.
+    pub fn of_hashed(config_text: &str, inputs: Vec<(String, String)>) -> Self {
+        Self { tool_version: env!("CARGO_PKG_VERSION").into(), config_sha256: hex(&Sha256::digest(config_text)), inputs }
     }
 }
 

@@ -77,7 +77,7 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration
     }
     let failed = |e: &dyn std::fmt::Display| ShardError::Failed(e.to_string());
     match &plan.work {
-        Work::Reduction { nights } => {
+        Work::Reduction { .. } => {
             let state_dir = state_dir.ok_or_else(|| ShardError::BadInput("a reduction merge needs --state DIR for the new analysis state".into()))?;
             if state_dir.join("state.json").exists() {
                 return Err(ShardError::BadInput(format!("{}: already holds a state; the merge builds a new one, give an empty folder", state_dir.display())));
@@ -95,8 +95,8 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration
                 }
             }
             let update = last.ok_or_else(|| ShardError::BadInput(format!("{}: the plan has no nights", plan_path.display())))?;
-            let last_night = nights.get(update.night).cloned().unwrap_or_default();
-            let provenance = Provenance::new(&plan.config_text, &last_night).map_err(|e| failed(&format!("hashing the last night's run files: {e}")))?;
+            // The shard hashed the night's files; the state holds those hashes.
+            let provenance = Provenance::of_hashed(&plan.config_text, st.nights[update.night].inputs());
             let limits = calibration
                 .as_ref()
                 .map(|cal| crate::limits::for_reduction(&pipeline, &update.reduction.spectrum, cal, crate::limits::DEFAULT_CONFIDENCE))

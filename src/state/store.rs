@@ -37,6 +37,13 @@ pub struct NightRecord {
     pub if_steps: Vec<u32>,
 }
 
+impl NightRecord {
+    /// Its files as (path as given, SHA-256), the form of [`crate::output::Provenance`].
+    pub fn inputs(&self) -> Vec<(String, String)> {
+        self.files.iter().map(|f| (f.path.clone(), f.sha256.clone())).collect()
+    }
+}
+
 /// The persistent state (the content of `state.json` plus the sums).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct State {
