@@ -22,7 +22,7 @@
 //! step, arrays of the IF and RF lengths; the accumulation runs in step order, so the result
 //! does not depend on the thread count.
 
-use crate::stage::{NightInfo, Step};
+use crate::stage::{NightInfo, Step, finite};
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
@@ -211,7 +211,7 @@ impl IfProfile {
 /// sigma > 0). An invalid bin gives value and weight 0, so sums can take it without a branch.
 #[inline]
 fn sample(r: f64, sigma: f64) -> (f64, f64, bool) {
-    let valid = r.abs() <= f64::MAX && sigma > 0.0 && sigma <= f64::MAX;
+    let valid = finite(r) && sigma > 0.0 && finite(sigma);
     (if valid { r } else { 0.0 }, if valid { 1.0 / (sigma * sigma) } else { 0.0 }, valid)
 }
 
