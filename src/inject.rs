@@ -52,7 +52,16 @@ impl SignalModel {
     /// in bin k is scaled by the local raw level (mean of the finite raw power within 32 bins)
     /// over the step's noise power `noise_w` = k_B T_sys dnu_b, so the signal sees the same gain
     /// as the noise around it.
-    pub fn inject_into_raw(&self, axions: &[SyntheticAxion], scope: &Haloscope, cavity: &CavityState, start_freq_hz: f64, bin_width_hz: f64, noise_w: f64, raw: &mut [f64]) {
+    pub fn inject_into_raw(
+        &self,
+        axions: &[SyntheticAxion],
+        scope: &Haloscope,
+        cavity: &CavityState,
+        start_freq_hz: f64,
+        bin_width_hz: f64,
+        noise_w: f64,
+        raw: &mut [f64],
+    ) {
         let mut excess_w = vec![0.0; raw.len()];
         self.add_power_w(axions, scope, cavity, start_freq_hz, bin_width_hz, &mut excess_w);
         let levels: Vec<(usize, f64)> = excess_w

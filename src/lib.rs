@@ -19,5 +19,5 @@ pub mod report;
 pub mod runfile;
 pub mod shard;
 pub mod sim;
-pub mod state;
 pub mod stage;
+pub mod state;

@@ -260,7 +260,9 @@ fn main() -> ExitCode {
             })
             .and_then(|()| if report { write_report(&out, calibration.as_deref(), state.as_deref(), cli.quiet) } else { Ok(()) }),
         Command::Status { state, json } => status(&state, json),
-        Command::Calibrate { config, out, scenario, seed, spec, runs } => campaign_spec(spec.as_deref(), seed).and_then(|spec| calibrate(&config, &out, scenario.as_deref(), &spec, &runs, cli.quiet)),
+        Command::Calibrate { config, out, scenario, seed, spec, runs } => {
+            campaign_spec(spec.as_deref(), seed).and_then(|spec| calibrate(&config, &out, scenario.as_deref(), &spec, &runs, cli.quiet))
+        }
         Command::Forecast { config, run_plan, calibration, out } => forecast(&config, &run_plan, &calibration, &out, cli.quiet),
         Command::Demo { out } => demo(&out, cli.quiet),
         Command::Report { dir, calibration, state } => write_report(&dir, calibration.as_deref(), state.as_deref(), cli.quiet),
@@ -338,10 +340,7 @@ fn write_simulation(sc: &sim::Scenario, out: &Path) -> Result<(), Failure> {
 
 fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: Option<&Path>, out: &Path, quiet: bool) -> Result<(), Failure> {
     let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
-    let calibration = calibration
-        .map(|path| calib::Calibration::load_for(path, &plan))
-        .transpose()
-        .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
+    let calibration = calibration.map(|path| calib::Calibration::load_for(path, &plan)).transpose().map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
     let bar = output::progress::Bar::new(quiet, "reducing", "steps");
     let (reduction, provenance) = with_provenance(config_text, runs, || {
         pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(|e| match e {
@@ -375,7 +374,15 @@ fn with_provenance<T>(config_text: &str, runs: &[PathBuf], work: impl FnOnce() -
     })
 }
 
-fn reduce_into_state(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: Option<&Path>, state_dir: &Path, out: &Path, quiet: bool) -> Result<(), Failure> {
+fn reduce_into_state(
+    config_text: &str,
+    config_name: &str,
+    runs: &[PathBuf],
+    calibration: Option<&Path>,
+    state_dir: &Path,
+    out: &Path,
+    quiet: bool,
+) -> Result<(), Failure> {
     let bad = |e: String| Failure::BadInput(anyhow::anyhow!(e));
     let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
     let calibration = calibration.map(|path| calib::Calibration::load_for(path, &plan)).transpose().map_err(bad)?;

@@ -135,12 +135,8 @@ pub fn open_night(paths: &[PathBuf]) -> Result<(Vec<RunReader>, NightInfo), Redu
             crate::runfile::MAX_RF_BINS
         )));
     }
-    let night = NightInfo {
-        bin_width_hz: bw,
-        n_bins,
-        rf_span_hz: (lo, hi + (n_bins - 1) as f64 * bw),
-        headers: readers.iter().map(|r| r.header().clone()).collect(),
-    };
+    let night =
+        NightInfo { bin_width_hz: bw, n_bins, rf_span_hz: (lo, hi + (n_bins - 1) as f64 * bw), headers: readers.iter().map(|r| r.header().clone()).collect() };
     Ok((readers, night))
 }
 

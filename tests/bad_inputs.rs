@@ -272,10 +272,14 @@ fn attribute_of_the_wrong_type() {
 
 #[test]
 fn label_that_is_a_number() {
-    bad_file("lab.h5", |f| {
-        f.delete_attr("run_label")?;
-        f.new_attr::<f64>().create("run_label")?.write_scalar(&3.0)
-    }, &["field `run_label`", "expected a variable-length string"]);
+    bad_file(
+        "lab.h5",
+        |f| {
+            f.delete_attr("run_label")?;
+            f.new_attr::<f64>().create("run_label")?.write_scalar(&3.0)
+        },
+        &["field `run_label`", "expected a variable-length string"],
+    );
 }
 
 // ---------------------------------------------------------------------------------------
@@ -293,26 +297,38 @@ fn spectra_with_one_dimension() {
 
 #[test]
 fn spectra_of_integers() {
-    bad_file("si.h5", |f| {
-        f.unlink("spectra")?;
-        f.new_dataset::<i32>().shape((24, 1024)).create("spectra")?.write(&ndarray::Array2::<i32>::ones((24, 1024)))
-    }, &["field `spectra`", "32-bit signed integer", "expected 32- or 64-bit floats"]);
+    bad_file(
+        "si.h5",
+        |f| {
+            f.unlink("spectra")?;
+            f.new_dataset::<i32>().shape((24, 1024)).create("spectra")?.write(&ndarray::Array2::<i32>::ones((24, 1024)))
+        },
+        &["field `spectra`", "32-bit signed integer", "expected 32- or 64-bit floats"],
+    );
 }
 
 #[test]
 fn absurd_declared_shape_is_refused_before_reading() {
-    bad_file("huge.h5", |f| {
-        f.unlink("spectra")?;
-        f.new_dataset::<f32>().shape((24, 1usize << 30)).chunk((1, 1024)).create("spectra").map(|_| ())
-    }, &["field `spectra`", "shape [24, 1073741824] is outside"]);
+    bad_file(
+        "huge.h5",
+        |f| {
+            f.unlink("spectra")?;
+            f.new_dataset::<f32>().shape((24, 1usize << 30)).chunk((1, 1024)).create("spectra").map(|_| ())
+        },
+        &["field `spectra`", "shape [24, 1073741824] is outside"],
+    );
 }
 
 #[test]
 fn declared_but_unwritten_spectra_are_refused() {
-    bad_file("hollow.h5", |f| {
-        f.unlink("spectra")?;
-        f.new_dataset::<f32>().shape((24, 1usize << 20)).chunk((1, 1024)).create("spectra").map(|_| ())
-    }, &["field `spectra`", "bytes are stored"]);
+    bad_file(
+        "hollow.h5",
+        |f| {
+            f.unlink("spectra")?;
+            f.new_dataset::<f32>().shape((24, 1usize << 20)).chunk((1, 1024)).create("spectra").map(|_| ())
+        },
+        &["field `spectra`", "bytes are stored"],
+    );
 }
 
 #[test]
@@ -322,9 +338,11 @@ fn mask_of_the_wrong_shape() {
 
 #[test]
 fn mask_of_floats() {
-    bad_file("mf.h5", |f| {
-        f.new_dataset::<f64>().shape((24, 1024)).create("mask")?.write(&ndarray::Array2::<f64>::zeros((24, 1024)))
-    }, &["field `mask`", "64-bit float", "expected u8 flags"]);
+    bad_file(
+        "mf.h5",
+        |f| f.new_dataset::<f64>().shape((24, 1024)).create("mask")?.write(&ndarray::Array2::<f64>::zeros((24, 1024))),
+        &["field `mask`", "64-bit float", "expected u8 flags"],
+    );
 }
 
 // ---------------------------------------------------------------------------------------
@@ -347,12 +365,16 @@ fn step_column_of_the_wrong_length() {
 
 #[test]
 fn step_column_of_strings() {
-    bad_file("str.h5", |f| {
-        let g = f.group("steps")?;
-        g.unlink("cavity_freq_hz")?;
-        let s: Vec<hdf5::types::VarLenUnicode> = (0..24).map(|_| "5.2 GHz".parse().unwrap()).collect();
-        g.new_dataset_builder().with_data(&s).create("cavity_freq_hz").map(|_| ())
-    }, &["field `steps/cavity_freq_hz`", "is a string, expected numbers"]);
+    bad_file(
+        "str.h5",
+        |f| {
+            let g = f.group("steps")?;
+            g.unlink("cavity_freq_hz")?;
+            let s: Vec<hdf5::types::VarLenUnicode> = (0..24).map(|_| "5.2 GHz".parse().unwrap()).collect();
+            g.new_dataset_builder().with_data(&s).create("cavity_freq_hz").map(|_| ())
+        },
+        &["field `steps/cavity_freq_hz`", "is a string, expected numbers"],
+    );
 }
 
 #[test]
@@ -392,7 +414,11 @@ fn duplicate_step() {
 
 #[test]
 fn unsorted_steps() {
-    bad_file("order.h5", |f| edit_column(f, "timestamp_s", |v| v.swap(9, 10)), &["field `steps/timestamp_s`, step 10", "earlier than step 9's", "acquisition order"]);
+    bad_file(
+        "order.h5",
+        |f| edit_column(f, "timestamp_s", |v| v.swap(9, 10)),
+        &["field `steps/timestamp_s`, step 10", "earlier than step 9's", "acquisition order"],
+    );
 }
 
 #[test]
@@ -622,7 +648,12 @@ fn kind_that_is_not_a_string() {
 #[test]
 fn unknown_key_with_suggestion() {
     let text = pipeline_with("window_bins = 401", "window_bins = 401\nwindw_bins = 401");
-    one_problem(&text, line_of(&text, "windw_bins"), 1, &["stage 2 \"baseline\"", "unknown key `windw_bins`", "did you mean `window_bins`?", "valid keys: window_bins, order"]);
+    one_problem(
+        &text,
+        line_of(&text, "windw_bins"),
+        1,
+        &["stage 2 \"baseline\"", "unknown key `windw_bins`", "did you mean `window_bins`?", "valid keys: window_bins, order"],
+    );
 }
 
 #[test]
@@ -700,7 +731,17 @@ fn stages_in_an_impossible_order() {
     blocks.swap(2, 3); // combine before rescale
     let text = preamble + &blocks.concat();
     let line = line_of(&text, "kind = \"combine\"") - 1;
-    one_problem(&text, line, 1, &["stage 3 \"combine\": is in the wrong place", "needs Rescaled data but receives Normalised", "stages that fit here: rescale", "order ingest, baseline"]);
+    one_problem(
+        &text,
+        line,
+        1,
+        &[
+            "stage 3 \"combine\": is in the wrong place",
+            "needs Rescaled data but receives Normalised",
+            "stages that fit here: rescale",
+            "order ingest, baseline",
+        ],
+    );
 }
 
 #[test]

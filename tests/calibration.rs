@@ -3,7 +3,6 @@
 
 mod common;
 
-use common::{PIPELINE, null_scenario};
 use axsift::calib::{self, CampaignSpec, NoiseSource, kolmogorov_q, ks_unit_normal};
 use axsift::config;
 use axsift::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_KSVZ};
@@ -11,10 +10,10 @@ use axsift::physics::lineshape::HaloModel;
 use axsift::physics::signal::{CavityState, Haloscope, signal_power_w};
 use axsift::pipeline;
 use axsift::sim;
+use common::{PIPELINE, null_scenario};
 use rand::SeedableRng;
 use rand::rngs::StdRng;
 use rand_distr::{Distribution, Normal as NormalDist, StandardNormal};
-
 
 fn small_spec(seed: u64) -> CampaignSpec {
     CampaignSpec {

@@ -95,13 +95,16 @@ fn baseline_stage_matches_its_formula_with_gaps() {
     let mut stage = step_stage(config.build(&night, &BuildContext { baseline_kernel: None }).unwrap());
     let mut rng = StdRng::seed_from_u64(3);
     let raw = |rng: &mut StdRng| -> Vec<f64> {
-        let mut v: Vec<f64> = (0..n).map(|k| (1.0 + 0.05 * (k as f64 / 300.0).sin()) * (1.0 + 0.007 * <StandardNormal as Distribution<f64>>::sample(&StandardNormal, rng))).collect();
+        let mut v: Vec<f64> = (0..n)
+            .map(|k| (1.0 + 0.05 * (k as f64 / 300.0).sin()) * (1.0 + 0.007 * <StandardNormal as Distribution<f64>>::sample(&StandardNormal, rng)))
+            .collect();
         for k in (0..5).chain(1000..1040).chain(2500..2501).chain(n - 3..n) {
             v[k] = f64::NAN;
         }
         v
     };
-    let steps: Vec<Step> = (0..4).map(|i| Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values: raw(&mut rng), sigma: Vec::new() }).collect();
+    let steps: Vec<Step> =
+        (0..4).map(|i| Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values: raw(&mut rng), sigma: Vec::new() }).collect();
     for s in &steps {
         stage.survey(s);
     }
@@ -155,7 +158,8 @@ fn rescale_stage_matches_signal_power_per_bin() {
     let stage = step_stage(config.build(&night, &BuildContext { baseline_kernel: None }).unwrap());
     let m = meta(5.2e9, n);
     let mut rng = StdRng::seed_from_u64(4);
-    let delta: Vec<f64> = (0..n).map(|k| if k == 77 { f64::NAN } else { 0.007 * <StandardNormal as Distribution<f64>>::sample(&StandardNormal, &mut rng) }).collect();
+    let delta: Vec<f64> =
+        (0..n).map(|k| if k == 77 { f64::NAN } else { 0.007 * <StandardNormal as Distribution<f64>>::sample(&StandardNormal, &mut rng) }).collect();
     let mut step = Step { index: 0, file: 0, index_in_file: 0, meta: m, values: delta.clone(), sigma: Vec::new() };
     assert_eq!(stage.apply(&mut step, &night), Verdict::Keep);
     let h = &night.headers[0];
@@ -184,7 +188,9 @@ fn fft_filter_matches_direct_sums() {
     let night = night(4096, (lo, lo + (n - 1) as f64 * bw));
     let config = FilterConfig { halo: Halo::Maxwellian, v_rms_km_s: 270.0, v0_km_s: 220.0, v_earth_km_s: 232.0, tail_fraction: 1e-3, segment_fraction: 1e-4 };
     let kernel_h = SavitzkyGolay::new(401, 4).unwrap().coefficients().to_vec();
-    let Built::Spectrum(stage) = config.build(&night, &BuildContext { baseline_kernel: Some(kernel_h.clone()) }).unwrap() else { panic!("not a spectrum stage") };
+    let Built::Spectrum(stage) = config.build(&night, &BuildContext { baseline_kernel: Some(kernel_h.clone()) }).unwrap() else {
+        panic!("not a spectrum stage")
+    };
     let mut rng = StdRng::seed_from_u64(5);
     let mut sp = Spectrum { rf_start_hz: lo, bin_width_hz: bw, ..Spectrum::default() };
     for j in 0..n {

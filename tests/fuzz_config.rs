@@ -186,9 +186,26 @@ fn mutated_default_pipeline_never_panics() {
 
 const KINDS: [&str; 9] = ["ingest", "baseline", "rescale", "combine", "filter", "flag", "baselin", "Flag", ""];
 const KEYS: [&str; 20] = [
-    "noise_temp_k_range", "loaded_q_range", "coupling_beta_range", "window_bins", "order", "max_spread_deviation",
-    "reference", "dm_density_gev_per_cm3", "max_misalignment_bins", "halo", "v_rms_km_s", "v0_km_s", "v_earth_km_s",
-    "tail_fraction", "segment_fraction", "threshold", "target_snr", "confidence", "kind", "windw",
+    "noise_temp_k_range",
+    "loaded_q_range",
+    "coupling_beta_range",
+    "window_bins",
+    "order",
+    "max_spread_deviation",
+    "reference",
+    "dm_density_gev_per_cm3",
+    "max_misalignment_bins",
+    "halo",
+    "v_rms_km_s",
+    "v0_km_s",
+    "v_earth_km_s",
+    "tail_fraction",
+    "segment_fraction",
+    "threshold",
+    "target_snr",
+    "confidence",
+    "kind",
+    "windw",
 ];
 
 fn value() -> impl Strategy<Value = String> {
@@ -206,16 +223,17 @@ fn value() -> impl Strategy<Value = String> {
 }
 
 fn stage() -> impl Strategy<Value = String> {
-    (proptest::option::weighted(0.9, proptest::sample::select(&KINDS[..])), proptest::collection::vec((proptest::sample::select(&KEYS[..]), value()), 0..6)).prop_map(|(kind, keys)| {
-        let mut s = "[[stage]]\n".to_string();
-        if let Some(k) = kind {
-            s.push_str(&format!("kind = \"{k}\"\n"));
-        }
-        for (k, v) in keys {
-            s.push_str(&format!("{k} = {v}\n"));
-        }
-        s
-    })
+    (proptest::option::weighted(0.9, proptest::sample::select(&KINDS[..])), proptest::collection::vec((proptest::sample::select(&KEYS[..]), value()), 0..6))
+        .prop_map(|(kind, keys)| {
+            let mut s = "[[stage]]\n".to_string();
+            if let Some(k) = kind {
+                s.push_str(&format!("kind = \"{k}\"\n"));
+            }
+            for (k, v) in keys {
+                s.push_str(&format!("{k} = {v}\n"));
+            }
+            s
+        })
 }
 
 #[test]

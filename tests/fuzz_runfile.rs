@@ -170,7 +170,15 @@ fn file_spec() -> impl Strategy<Value = FileSpec> {
             text("fuzz"),
         )
             .prop_map(|(a, b, c, d, e, f, g)| {
-                vec![("format", a), ("format_version", b), ("bin_width_hz", c), ("magnet_field_t", d), ("cavity_volume_m3", e), ("form_factor", f), ("run_label", g)]
+                vec![
+                    ("format", a),
+                    ("format_version", b),
+                    ("bin_width_hz", c),
+                    ("magnet_field_t", d),
+                    ("cavity_volume_m3", e),
+                    ("form_factor", f),
+                    ("run_label", g),
+                ]
             });
         let columns = proptest::collection::vec(data(rows, None, 1), 7).prop_map(|d| COLUMNS.iter().copied().zip(d).collect::<Vec<_>>());
         (attrs, data(rows, Some(cols), 0), proptest::option::weighted(0.2, data(rows, Some(cols), 2)), proptest::bool::weighted(0.98), columns)

@@ -3,7 +3,6 @@
 
 mod common;
 
-use common::{PIPELINE, null_scenario};
 use axsift::calib::{self, CampaignSpec, NoiseSource};
 use axsift::config;
 use axsift::dsp::savgol::SavitzkyGolay;
@@ -14,10 +13,10 @@ use axsift::physics::constants::{FINE_STRUCTURE, G_GAMMA_KSVZ, LAMBDA_QCD_EV};
 use axsift::physics::lineshape::HaloModel;
 use axsift::pipeline::{self, Injection, Reduction};
 use axsift::sim::{self, Scenario};
+use common::{PIPELINE, null_scenario};
 use rand::rngs::StdRng;
 use rand::{RngExt, SeedableRng};
 use statrs::distribution::{ContinuousCDF, Normal};
-
 
 fn reduce_scenario(sc: &Scenario, dir: &std::path::Path) -> Reduction {
     let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
@@ -69,7 +68,15 @@ fn null_night_limit_matches_the_formula() {
     assert!(checked > 100);
     // A candidate that is not cleared leaves its bins not excluded.
     let mut sp = r.spectrum.clone();
-    sp.candidates.push(axsift::stage::Candidate { frequency_hz: 0.0, significance: 4.0, peak_bin: 5000, first_bin: 4990, last_bin: 5010, revisit_cavity_hz: 0.0, covering_steps: vec![] });
+    sp.candidates.push(axsift::stage::Candidate {
+        frequency_hz: 0.0,
+        significance: 4.0,
+        peak_bin: 5000,
+        first_bin: 4990,
+        last_bin: 5010,
+        revisit_cavity_hz: 0.0,
+        covering_steps: vec![],
+    });
     let blocked = limits::limits(&sp, assumptions(eta), &[sp.candidates.len() - 1]);
     assert!(!blocked.bins[5000].excluded && blocked.bins[5000].g_gamma.is_nan() && blocked.bins[5020].excluded);
 }
@@ -83,7 +90,15 @@ fn a_signal_at_the_limit_is_flagged_95_percent_of_the_time() {
     let dir = tempfile::tempdir().unwrap();
     let mut small = null_scenario(300);
     small.scan.n_steps = 60;
-    let spec = CampaignSpec { seed: 4, null_realisations: 1, eta_realisations: 3, eta_snr: 20.0, snr_grid: vec![], realisations_per_snr: 0, max_injections_per_realisation: 40 };
+    let spec = CampaignSpec {
+        seed: 4,
+        null_realisations: 1,
+        eta_realisations: 3,
+        eta_snr: 20.0,
+        snr_grid: vec![],
+        realisations_per_snr: 0,
+        max_injections_per_realisation: 40,
+    };
     let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &small, scratch: dir.path() }, &spec, &|_, _| {}).unwrap();
     let eta = cal.attenuation.eta;
     let halo = HaloModel::default();
@@ -100,10 +115,8 @@ fn a_signal_at_the_limit_is_flagged_95_percent_of_the_time() {
         let j = sp.grand.len() / 2 + rng.random_range(0..2000usize) - 1000;
         let l = limits::limits(sp, assumptions(eta), &[]);
         let nu = sp.freq_hz(j) - sp.bin_width_hz / 2.0 + rng.random::<f64>() * sp.bin_width_hz;
-        let injection = Injection {
-            axions: vec![SyntheticAxion { freq_hz: nu, g_gamma: l.bins[j].g_gamma }],
-            model: SignalModel { halo, dm_density_gev_per_cm3: 0.45 },
-        };
+        let injection =
+            Injection { axions: vec![SyntheticAxion { freq_hz: nu, g_gamma: l.bins[j].g_gamma }], model: SignalModel { halo, dm_density_gev_per_cm3: 0.45 } };
         let r = pipeline::reduce_injected(&plan, std::slice::from_ref(&path), Some(&injection), &|_, _| {}).unwrap();
         if r.spectrum.grand[j] > 3.355 {
             flagged += 1;

@@ -7,19 +7,18 @@
 
 mod common;
 
-use common::{PIPELINE, null_scenario};
 use axsift::config;
 use axsift::dsp::savgol::SavitzkyGolay;
 use axsift::physics::lineshape::HaloModel;
 use axsift::pipeline::{self, Reduction};
 use axsift::sim::{self, Axion, Frame, Interference, Scenario};
 use axsift::stage::filter::predicted_spread;
+use common::{PIPELINE, null_scenario};
 use rand::SeedableRng;
 use rand::rngs::StdRng;
 use rand_distr::{Distribution, StandardNormal};
 use statrs::distribution::{ContinuousCDF, Normal};
 use std::path::{Path, PathBuf};
-
 
 fn simulate_into(sc: &Scenario, dir: &Path) -> PathBuf {
     let path = dir.join("night.h5");
@@ -82,10 +81,7 @@ fn predicted_spread_matches_direct_monte_carlo() {
         }
         let (_, measured) = mean_std(&filtered);
         eprintln!("W={window} d={order}: Monte Carlo {measured:.4}, predicted {predicted:.4}");
-        assert!(
-            (measured / predicted - 1.0).abs() < 0.02,
-            "W={window} d={order}: Monte Carlo {measured:.4} vs predicted {predicted:.4}"
-        );
+        assert!((measured / predicted - 1.0).abs() < 0.02, "W={window} d={order}: Monte Carlo {measured:.4} vs predicted {predicted:.4}");
         assert!(predicted < 1.0 && predicted > 0.5, "W={window}: predicted {predicted}");
     }
 }

@@ -124,7 +124,15 @@ fn demo_report_renders_in_chromium() {
     let page = dir.path().join("report.html");
     assert!(stdout.contains("report.html"), "{stdout}");
     let html = std::fs::read_to_string(&page).unwrap();
-    let always = ["The night at a glance", "Quality cuts", "Steps through the night", "Grand spectrum", "Distribution of the grand spectrum", "Rescan candidates", "Provenance"];
+    let always = [
+        "The night at a glance",
+        "Quality cuts",
+        "Steps through the night",
+        "Grand spectrum",
+        "Distribution of the grand spectrum",
+        "Rescan candidates",
+        "Provenance",
+    ];
     assert_page(&html, &always, &["Across nights", "Exclusion limits", "Calibration"]);
     assert!(html.contains("5205.20"), "the demo axion's frequency is not in the candidate table");
     assert!(html.contains("never drives the magnet"), "the rescan advice lacks the hardware note");
@@ -177,7 +185,14 @@ fn calibrated_report_has_limits_and_calibration() {
     let normal = |x: f64| 0.5 * (1.0 + statrs::function::erf::erf(x / 2f64.sqrt()));
     let efficiency = [2.0, 3.5, 5.0, 6.0]
         .iter()
-        .map(|&snr| EfficiencyPoint { snr, n: 100, detected: (100.0 * normal(snr - 3.355)) as usize, efficiency: normal(snr - 3.355), standard_error: 0.02, ideal: normal(snr - 3.355) })
+        .map(|&snr| EfficiencyPoint {
+            snr,
+            n: 100,
+            detected: (100.0 * normal(snr - 3.355)) as usize,
+            efficiency: normal(snr - 3.355),
+            standard_error: 0.02,
+            ideal: normal(snr - 3.355),
+        })
         .collect();
     // Figures of the size a campaign gives; the page only displays them.
     let cal = Calibration {
@@ -196,7 +211,12 @@ fn calibrated_report_has_limits_and_calibration() {
     let cal_path = dir.path().join("calibration.json");
     std::fs::write(&cal_path, serde_json::to_string(&cal).unwrap()).unwrap();
     let out = dir.path().join("out");
-    run(axsift().args(["reduce", "--report", "-q", "--config", concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml"), "--calibration"]).arg(&cal_path).arg("--out").arg(&out).arg(&night));
+    run(axsift()
+        .args(["reduce", "--report", "-q", "--config", concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml"), "--calibration"])
+        .arg(&cal_path)
+        .arg("--out")
+        .arg(&out)
+        .arg(&night));
     let html = std::fs::read_to_string(out.join("report.html")).unwrap();
     assert_page(&html, &["Exclusion limits", "Calibration", "Rescan candidates"], &[]);
     assert!(html.contains("0.6286"), "eta missing");
@@ -229,7 +249,12 @@ fn state_reduction_report_has_the_section_across_nights() {
     let night = dir.path().join("night.h5");
     run(axsift().args(["simulate", "--scenario", concat!(env!("CARGO_MANIFEST_DIR"), "/fixtures/demo_night.toml"), "--out"]).arg(&night));
     let (state, out) = (dir.path().join("state"), dir.path().join("out"));
-    run(axsift().args(["reduce", "--report", "-q", "--config", concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml"), "--state"]).arg(&state).arg("--out").arg(&out).arg(&night));
+    run(axsift()
+        .args(["reduce", "--report", "-q", "--config", concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml"), "--state"])
+        .arg(&state)
+        .arg("--out")
+        .arg(&out)
+        .arg(&night));
     let page = out.join("report.html");
     let html = std::fs::read_to_string(&page).unwrap();
     assert_page(&html, &["The night at a glance", "Rescan candidates", "Across nights", "Provenance"], &["Exclusion limits"]);

@@ -8,12 +8,7 @@ use axsift::dsp::savgol::{SavgolError, SavitzkyGolay, SmoothingPlan};
 const TABLE_I: &[(usize, usize, &[f64], f64)] = &[
     (5, 2, &[-3.0, 12.0, 17.0, 12.0, -3.0], 35.0),
     (7, 2, &[-2.0, 3.0, 6.0, 7.0, 6.0, 3.0, -2.0], 21.0),
-    (
-        9,
-        3,
-        &[-21.0, 14.0, 39.0, 54.0, 59.0, 54.0, 39.0, 14.0, -21.0],
-        231.0,
-    ),
+    (9, 3, &[-21.0, 14.0, 39.0, 54.0, 59.0, 54.0, 39.0, 14.0, -21.0], 231.0),
 ];
 
 /// Minimal 64-bit linear congruential generator (Knuth's MMIX constants),
@@ -22,10 +17,7 @@ struct Lcg(u64);
 
 impl Lcg {
     fn next(&mut self) -> f64 {
-        self.0 = self
-            .0
-            .wrapping_mul(6364136223846793005)
-            .wrapping_add(1442695040888963407);
+        self.0 = self.0.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
         (self.0 >> 11) as f64 / (1u64 << 53) as f64 * 2.0 - 1.0
     }
 }
@@ -37,9 +29,7 @@ fn max_abs(values: &[f64]) -> f64 {
 fn load(name: &str) -> Vec<f64> {
     let path = format!("{}/fixtures/{name}", env!("CARGO_MANIFEST_DIR"));
     let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{path}: {e}"));
-    text.split_whitespace()
-        .map(|s| s.parse().unwrap_or_else(|e| panic!("{path}: {s:?}: {e}")))
-        .collect()
+    text.split_whitespace().map(|s| s.parse().unwrap_or_else(|e| panic!("{path}: {s:?}: {e}"))).collect()
 }
 
 #[test]
@@ -50,10 +40,7 @@ fn coefficients_match_savitzky_golay_1964_table_i() {
         assert_eq!(h.len(), window);
         for (j, (&got, &num)) in h.iter().zip(integers).enumerate() {
             let want = num / norm;
-            assert!(
-                (got - want).abs() <= 1e-12,
-                "W={window} d={order} j={j}: {got} vs {want}"
-            );
+            assert!((got - want).abs() <= 1e-12, "W={window} d={order} j={j}: {got} vs {want}");
         }
         let centre = integers[window / 2] / norm;
         assert!((sg.center_weight() - centre).abs() <= 1e-12);
@@ -67,10 +54,7 @@ fn center_weight_is_sum_of_squared_weights() {
     for (window, order) in [(5, 2), (31, 4), (301, 4), (101, 10)] {
         let sg = SavitzkyGolay::new(window, order).unwrap();
         let sum_sq: f64 = sg.coefficients().iter().map(|h| h * h).sum();
-        assert!(
-            (sum_sq - sg.center_weight()).abs() <= 1e-13,
-            "W={window} d={order}"
-        );
+        assert!((sum_sq - sg.center_weight()).abs() <= 1e-13, "W={window} d={order}");
         let sum: f64 = sg.coefficients().iter().sum();
         assert!((sum - 1.0).abs() <= 1e-13);
     }
@@ -89,11 +73,7 @@ fn fft_smoothing_equals_direct_convolution() {
     let scale = max_abs(&input);
     for p in half..n - half {
         let direct: f64 = (0..window).map(|j| h[j] * input[p - half + j]).sum();
-        assert!(
-            (out[p] - direct).abs() <= 1e-12 * scale,
-            "bin {p}: fft {} vs direct {direct}",
-            out[p]
-        );
+        assert!((out[p] - direct).abs() <= 1e-12 * scale, "bin {p}: fft {} vs direct {direct}", out[p]);
     }
 }
 
@@ -115,10 +95,7 @@ fn polynomials_up_to_the_order_are_reproduced_including_edges() {
             let mut out = vec![0.0; n];
             plan.smooth(&input, &mut out).unwrap();
             for (i, (a, b)) in out.iter().zip(&input).enumerate() {
-                assert!(
-                    (a - b).abs() <= 1e-9,
-                    "W={window} d={order} degree {degree} bin {i}: {a} vs {b}"
-                );
+                assert!((a - b).abs() <= 1e-9, "W={window} d={order} degree {degree} bin {i}: {a} vs {b}");
             }
         }
     }
@@ -147,18 +124,11 @@ fn check_scipy_fixture(window: usize, file: &str, edge_rel: f64, interior_rel: f
     let input = load("savgol_input.txt");
     let reference = load(file);
     assert_eq!(input.len(), reference.len());
-    let out = SavitzkyGolay::new(window, 4)
-        .unwrap()
-        .smooth(&input)
-        .unwrap();
+    let out = SavitzkyGolay::new(window, 4).unwrap().smooth(&input).unwrap();
     let scale = max_abs(&reference);
     let (half, n) = (window / 2, input.len());
     for (i, (a, b)) in out.iter().zip(&reference).enumerate() {
-        let rel = if i < half || i >= n - half {
-            edge_rel
-        } else {
-            interior_rel
-        };
+        let rel = if i < half || i >= n - half { edge_rel } else { interior_rel };
         assert!((a - b).abs() <= rel * scale, "bin {i}: {a} vs scipy {b}");
     }
 }
@@ -184,41 +154,19 @@ fn matches_scipy_savgol_filter_w101_d4() {
 
 #[test]
 fn invalid_parameters_are_rejected_with_named_values() {
-    assert_eq!(
-        SavitzkyGolay::new(1, 0).unwrap_err(),
-        SavgolError::WindowTooShort { window: 1 }
-    );
+    assert_eq!(SavitzkyGolay::new(1, 0).unwrap_err(), SavgolError::WindowTooShort { window: 1 });
     let even = SavitzkyGolay::new(30, 4).unwrap_err();
     assert_eq!(even, SavgolError::EvenWindow { window: 30 });
     assert!(even.to_string().contains("30"));
     let high = SavitzkyGolay::new(7, 7).unwrap_err();
-    assert_eq!(
-        high,
-        SavgolError::OrderTooHigh {
-            order: 7,
-            window: 7
-        }
-    );
+    assert_eq!(high, SavgolError::OrderTooHigh { order: 7, window: 7 });
     assert!(high.to_string().contains("less than window_bins = 7"));
 
     let sg = SavitzkyGolay::new(31, 4).unwrap();
-    assert_eq!(
-        sg.smooth(&[0.0; 30]).unwrap_err(),
-        SavgolError::InputTooShort {
-            len: 30,
-            window: 31
-        }
-    );
+    assert_eq!(sg.smooth(&[0.0; 30]).unwrap_err(), SavgolError::InputTooShort { len: 30, window: 31 });
     let plan = sg.plan(100).unwrap();
     let mut out = vec![0.0; 100];
-    assert!(matches!(
-        plan.smooth(&[0.0; 99], &mut out),
-        Err(SavgolError::LengthMismatch {
-            buffer: "input",
-            len: 99,
-            expected: 100
-        })
-    ));
+    assert!(matches!(plan.smooth(&[0.0; 99], &mut out), Err(SavgolError::LengthMismatch { buffer: "input", len: 99, expected: 100 })));
     // The shortest valid input is exactly one window.
     let one_window = sg.smooth(&[2.5; 31]).unwrap();
     assert!(one_window.iter().all(|v| (v - 2.5).abs() <= 1e-12));

@@ -11,7 +11,8 @@ use std::process::{Child, Output};
 
 /// Runs the given shards as concurrent child processes and waits for all of them.
 fn run_shards(plan: &Path, indices: &[usize]) {
-    let children: Vec<(usize, Child)> = indices.iter().map(|&i| (i, axsift(&["shard-run", "--plan", s(plan), "--index", &i.to_string()]).spawn().expect("spawn shard"))).collect();
+    let children: Vec<(usize, Child)> =
+        indices.iter().map(|&i| (i, axsift(&["shard-run", "--plan", s(plan), "--index", &i.to_string()]).spawn().expect("spawn shard"))).collect();
     for (i, c) in children {
         let out = c.wait_with_output().expect("shard finishes");
         assert!(out.status.success(), "shard {i} failed");
@@ -52,7 +53,20 @@ fn sharded_campaign_equals_single_machine_campaign() {
     let dir = tempfile::tempdir().unwrap();
     let (scenario_file, spec_file, reference) = campaign_reference(dir.path());
     let work = dir.path().join("work");
-    run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(&work), "--shards", "3", "--campaign", "--scenario", s(&scenario_file), "--spec", s(&spec_file)]);
+    run_ok(&[
+        "shard-plan",
+        "--config",
+        "pipeline.toml",
+        "--work",
+        s(&work),
+        "--shards",
+        "3",
+        "--campaign",
+        "--scenario",
+        s(&scenario_file),
+        "--spec",
+        s(&spec_file),
+    ]);
     let plan = work.join("plan.json");
     // Efficiency shards need the head's file.
     let early = axsift(&["shard-run", "--plan", s(&plan), "--index", "1"]).output().unwrap();
@@ -141,7 +155,21 @@ fn shard_index_from_the_slurm_environment() {
     assert!(!dir.path().join("work/shards/shard-0000.json").exists());
     let bad = axsift(&["shard-run", "--plan", s(&plan)]).env("SLURM_ARRAY_TASK_ID", "x").output().unwrap();
     assert_eq!(bad.status.code(), Some(2));
-    let twice = axsift(&["shard-plan", "--config", "pipeline.toml", "--work", s(&dir.path().join("twice")), "--shards", "2", "--night", s(&nights[0]), "--night", &format!("{},{}", s(&nights[1]), s(&nights[0]))]).output().unwrap();
+    let twice = axsift(&[
+        "shard-plan",
+        "--config",
+        "pipeline.toml",
+        "--work",
+        s(&dir.path().join("twice")),
+        "--shards",
+        "2",
+        "--night",
+        s(&nights[0]),
+        "--night",
+        &format!("{},{}", s(&nights[1]), s(&nights[0])),
+    ])
+    .output()
+    .unwrap();
     assert_eq!(twice.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&twice.stderr).contains("given in night 0 and in night 1"), "{}", String::from_utf8_lossy(&twice.stderr));
     let past = axsift(&["shard-run", "--plan", s(&plan), "--index", "3"]).output().unwrap();
@@ -184,7 +212,20 @@ fn sharded_reduction_with_a_calibration_has_the_nightly_limits() {
     assert_eq!(limit(&ref_state), limit(&state));
 
     let work = dir.path().join("camp");
-    run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(&work), "--shards", "2", "--campaign", "--scenario", s(&scenario_file), "--spec", s(&spec_file)]);
+    run_ok(&[
+        "shard-plan",
+        "--config",
+        "pipeline.toml",
+        "--work",
+        s(&work),
+        "--shards",
+        "2",
+        "--campaign",
+        "--scenario",
+        s(&scenario_file),
+        "--spec",
+        s(&spec_file),
+    ]);
     let refused = axsift(&["shard-merge", "--plan", s(&work.join("plan.json")), "--out", s(&dir.path().join("c")), "--calibration", s(&cal)]).output().unwrap();
     assert_eq!(refused.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&refused.stderr).contains("takes none"), "{}", String::from_utf8_lossy(&refused.stderr));

@@ -112,7 +112,9 @@ fn a_killed_update_leaves_a_usable_state() {
     let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
     let first = night(31, 5.2e9, dir.path(), false);
     let second = night(32, 5.2015e9, dir.path(), false);
-    let run = |state: &Path, file: &Path| Command::new(exe).args(["-q", "reduce", "--config", pipeline, "--state"]).arg(state).arg("--out").arg(state.join("out")).arg(file).output().unwrap();
+    let run = |state: &Path, file: &Path| {
+        Command::new(exe).args(["-q", "reduce", "--config", pipeline, "--state"]).arg(state).arg("--out").arg(state.join("out")).arg(file).output().unwrap()
+    };
     let reference = dir.path().join("reference");
     assert!(run(&reference, &first).status.success());
     assert!(run(&reference, &second).status.success());
@@ -121,7 +123,14 @@ fn a_killed_update_leaves_a_usable_state() {
     for (i, delay_ms) in [0u64, 30, 80, 150, 250, 400].into_iter().enumerate() {
         let state_dir = dir.path().join(format!("killed-{i}"));
         assert!(run(&state_dir, &first).status.success());
-        let mut child = Command::new(exe).args(["-q", "reduce", "--config", pipeline, "--state"]).arg(&state_dir).arg("--out").arg(state_dir.join("out")).arg(&second).spawn().unwrap();
+        let mut child = Command::new(exe)
+            .args(["-q", "reduce", "--config", pipeline, "--state"])
+            .arg(&state_dir)
+            .arg("--out")
+            .arg(state_dir.join("out"))
+            .arg(&second)
+            .spawn()
+            .unwrap();
         std::thread::sleep(std::time::Duration::from_millis(delay_ms));
         let _ = child.kill();
         let _ = child.wait();
@@ -197,7 +206,8 @@ fn an_if_fixed_line_is_interference_and_the_axion_persists() {
     }
     let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion flagged");
     assert_eq!(axion.class, Class::New, "{}", axion.evidence);
-    let noise_first: Vec<f64> = st.candidates.iter().filter(|c| c.class == Class::New && (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
+    let noise_first: Vec<f64> =
+        st.candidates.iter().filter(|c| c.class == Class::New && (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
 
     let state_dir = dir.path().join("state");
     st.save(&state_dir).unwrap();
@@ -242,7 +252,14 @@ fn status_reports_text_and_json() {
     let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
     let state_dir = dir.path().join("state");
     for file in [night_with_burst(51, dir.path()), night(52, 5.2e9, dir.path(), true)] {
-        let out = Command::new(exe).args(["-q", "reduce", "--config", pipeline, "--state"]).arg(&state_dir).arg("--out").arg(dir.path().join("out")).arg(&file).output().unwrap();
+        let out = Command::new(exe)
+            .args(["-q", "reduce", "--config", pipeline, "--state"])
+            .arg(&state_dir)
+            .arg("--out")
+            .arg(dir.path().join("out"))
+            .arg(&file)
+            .output()
+            .unwrap();
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     }
     let st = State::load(&state_dir).unwrap().unwrap();
@@ -293,7 +310,15 @@ fn status_reports_the_limit_range_of_a_calibrated_update() {
     // A small campaign, enough for an eta: one null and three injection realisations.
     let mut small = null_scenario(61);
     small.scan.n_steps = 60;
-    let spec = CampaignSpec { seed: 9, null_realisations: 1, eta_realisations: 3, eta_snr: 20.0, snr_grid: vec![], realisations_per_snr: 0, max_injections_per_realisation: 40 };
+    let spec = CampaignSpec {
+        seed: 9,
+        null_realisations: 1,
+        eta_realisations: 3,
+        eta_snr: 20.0,
+        snr_grid: vec![],
+        realisations_per_snr: 0,
+        max_injections_per_realisation: 40,
+    };
     let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &small, scratch: dir.path() }, &spec, &|_, _| {}).unwrap();
     let cal_dir = dir.path().join("calib");
     cal.write(&cal_dir).unwrap();
@@ -313,13 +338,8 @@ fn status_reports_the_limit_range_of_a_calibrated_update() {
     assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
 
     let mut reader = csv::Reader::from_path(out_dir.join("limits.csv")).unwrap();
-    let excluded: Vec<f64> = reader
-        .records()
-        .map(|r| r.unwrap())
-        .filter(|r| &r[2] == "true")
-        .map(|r| r[5].parse::<f64>().unwrap())
-        .filter(|v| v.is_finite())
-        .collect();
+    let excluded: Vec<f64> =
+        reader.records().map(|r| r.unwrap()).filter(|r| &r[2] == "true").map(|r| r[5].parse::<f64>().unwrap()).filter(|v| v.is_finite()).collect();
     assert!(!excluded.is_empty());
     let csv_min = excluded.iter().cloned().fold(f64::INFINITY, f64::min);
     let csv_max = excluded.iter().cloned().fold(f64::NEG_INFINITY, f64::max);

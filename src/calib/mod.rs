@@ -25,7 +25,7 @@ pub use plan_info::{PlanInfo, stage_hash};
 
 use crate::config::Plan;
 use crate::inject::SyntheticAxion;
-use crate::pipeline::{Injection, Reduction, ReduceError, reduce_injected};
+use crate::pipeline::{Injection, ReduceError, Reduction, reduce_injected};
 use crate::sim::{Scenario, simulate};
 use rand::rngs::StdRng;
 use rand::{RngExt, SeedableRng};
@@ -301,7 +301,12 @@ pub fn calibrate(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, progress
 }
 
 /// Reduces the null and eta realisations of a campaign. `progress` as for [`calibrate`].
-pub fn campaign_head(plan: &Plan, noise: &NoiseSource, spec: &CampaignSpec, progress: &(dyn Fn(usize, usize) + Sync)) -> Result<CampaignHead, CalibrationError> {
+pub fn campaign_head(
+    plan: &Plan,
+    noise: &NoiseSource,
+    spec: &CampaignSpec,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<CampaignHead, CalibrationError> {
     let total = campaign_size(spec).0;
     let done = std::sync::atomic::AtomicUsize::new(0);
     head_with(plan, noise, spec, &|| progress(done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1, total))
@@ -357,9 +362,8 @@ fn efficiency_with(
     let info = PlanInfo::from_plan(plan).map_err(CalibrationError::Unusable)?;
     let first_efficiency = campaign_size(spec).0;
     let per_snr = spec.realisations_per_snr.max(1);
-    let jobs: Vec<Job> = jobs
-        .filter_map(|k| spec.snr_grid.get(k / per_snr).map(|&snr| Job { realisation: first_efficiency + k, kind: JobKind::Efficiency(snr) }))
-        .collect();
+    let jobs: Vec<Job> =
+        jobs.filter_map(|k| spec.snr_grid.get(k / per_snr).map(|&snr| Job { realisation: first_efficiency + k, kind: JobKind::Efficiency(snr) })).collect();
     run_jobs(plan, noise, spec, &info, &head.reference, &jobs, head.attenuation.eta, tick)
 }
 
@@ -416,7 +420,13 @@ fn run_jobs(
             Ok(placed
                 .iter()
                 .zip(&amplitudes)
-                .map(|(&(j, f), &a)| InjectionRecord { freq_hz: f, amplitude: a, snr: record_snr, recovered: r.spectrum.amplitude[j], grand: r.spectrum.grand[j] })
+                .map(|(&(j, f), &a)| InjectionRecord {
+                    freq_hz: f,
+                    amplitude: a,
+                    snr: record_snr,
+                    recovered: r.spectrum.amplitude[j],
+                    grand: r.spectrum.grand[j],
+                })
                 .collect())
         })
         .collect::<Result<_, CalibrationError>>()?;
@@ -487,7 +497,14 @@ impl Calibration {
         let mut w = csv::Writer::from_path(tmp(names[1]))?;
         w.write_record(["snr", "n", "detected", "efficiency", "standard_error", "ideal"])?;
         for p in &self.efficiency {
-            w.write_record([p.snr.to_string(), p.n.to_string(), p.detected.to_string(), format!("{:.4}", p.efficiency), format!("{:.4}", p.standard_error), format!("{:.4}", p.ideal)])?;
+            w.write_record([
+                p.snr.to_string(),
+                p.n.to_string(),
+                p.detected.to_string(),
+                format!("{:.4}", p.efficiency),
+                format!("{:.4}", p.standard_error),
+                format!("{:.4}", p.ideal),
+            ])?;
         }
         w.flush()?;
         drop(w);

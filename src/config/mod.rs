@@ -154,11 +154,7 @@ pub fn load(text: &str, source_name: &str) -> Result<Plan, ConfigError> {
     if all_kinds_known && !kinds.is_empty() {
         problems.extend(chain::check(&kinds, text.len()));
     }
-    if problems.is_empty() {
-        Ok(Plan { stages, text: text.to_string() })
-    } else {
-        Err(fail(problems))
-    }
+    if problems.is_empty() { Ok(Plan { stages, text: text.to_string() }) } else { Err(fail(problems)) }
 }
 
 /// TOML syntax errors, at most one per line (later ones on a line are mostly echoes).
@@ -193,10 +189,6 @@ impl Plan {
     /// Builds every stage for a night, in order.
     pub fn build(&self, night: &NightInfo) -> Result<Vec<Built>, String> {
         let ctx = BuildContext { baseline_kernel: self.stages.iter().find_map(|s| s.config.baseline_kernel()) };
-        self.stages
-            .iter()
-            .enumerate()
-            .map(|(i, s)| s.config.build(night, &ctx).map_err(|e| format!("stage {} \"{}\": {e}", i + 1, s.entry.kind)))
-            .collect()
+        self.stages.iter().enumerate().map(|(i, s)| s.config.build(night, &ctx).map_err(|e| format!("stage {} \"{}\": {e}", i + 1, s.entry.kind))).collect()
     }
 }

@@ -35,12 +35,48 @@ fn parse<C: StageConfig + DeserializeOwned + 'static>(value: Spanned<DeValue<'_>
 
 /// Every stage kind, in pipeline order.
 pub static REGISTRY: &[Entry] = &[
-    Entry { kind: "ingest", summary: "validate steps and apply metadata quality cuts", input: Form::Raw, output: Form::Accepted, parse: parse::<stage::ingest::IngestConfig> },
-    Entry { kind: "baseline", summary: "divide by the common gain shape and a Savitzky-Golay fit per step", input: Form::Accepted, output: Form::Normalised, parse: parse::<stage::baseline::BaselineConfig> },
-    Entry { kind: "rescale", summary: "express each bin in units of the reference axion's power", input: Form::Normalised, output: Form::Rescaled, parse: parse::<stage::rescale::RescaleConfig> },
-    Entry { kind: "combine", summary: "maximum-likelihood weighted mean of all steps on one RF grid", input: Form::Rescaled, output: Form::Combined, parse: parse::<stage::combine::CombineConfig> },
-    Entry { kind: "filter", summary: "optimal filter with the halo lineshape -> grand spectrum", input: Form::Combined, output: Form::Grand, parse: parse::<stage::filter::FilterConfig> },
-    Entry { kind: "flag", summary: "flag grand-spectrum bins above threshold as rescan candidates", input: Form::Grand, output: Form::Grand, parse: parse::<stage::flag::FlagConfig> },
+    Entry {
+        kind: "ingest",
+        summary: "validate steps and apply metadata quality cuts",
+        input: Form::Raw,
+        output: Form::Accepted,
+        parse: parse::<stage::ingest::IngestConfig>,
+    },
+    Entry {
+        kind: "baseline",
+        summary: "divide by the common gain shape and a Savitzky-Golay fit per step",
+        input: Form::Accepted,
+        output: Form::Normalised,
+        parse: parse::<stage::baseline::BaselineConfig>,
+    },
+    Entry {
+        kind: "rescale",
+        summary: "express each bin in units of the reference axion's power",
+        input: Form::Normalised,
+        output: Form::Rescaled,
+        parse: parse::<stage::rescale::RescaleConfig>,
+    },
+    Entry {
+        kind: "combine",
+        summary: "maximum-likelihood weighted mean of all steps on one RF grid",
+        input: Form::Rescaled,
+        output: Form::Combined,
+        parse: parse::<stage::combine::CombineConfig>,
+    },
+    Entry {
+        kind: "filter",
+        summary: "optimal filter with the halo lineshape -> grand spectrum",
+        input: Form::Combined,
+        output: Form::Grand,
+        parse: parse::<stage::filter::FilterConfig>,
+    },
+    Entry {
+        kind: "flag",
+        summary: "flag grand-spectrum bins above threshold as rescan candidates",
+        input: Form::Grand,
+        output: Form::Grand,
+        parse: parse::<stage::flag::FlagConfig>,
+    },
 ];
 
 /// The valid kinds, comma separated.

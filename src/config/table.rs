@@ -2,10 +2,10 @@
 //! type of every value, and the ranges the stage's own validation asks for. Every key is
 //! checked on its own, so one table can report several problems at once.
 
+use super::StageConfig;
 use super::position::nearest;
 use super::problem::Problem;
 use super::registry::{self, Entry, REGISTRY};
-use super::StageConfig;
 use std::ops::Range;
 use toml::Spanned;
 use toml::de::{DeTable, DeValue};
@@ -100,11 +100,7 @@ pub fn check(pos: usize, header: Range<usize>, table: &DeTable<'_>) -> TableChec
         let default = if keys.iter().any(|(k, _)| k.get_ref().as_ref() == key) { "" } else { " (default)" };
         problems.push(Problem::at(at, format!("{label}: key `{key}`{default}: {msg}")));
     }
-    if problems.is_empty() {
-        TableCheck { entry: Some(entry), stage: Some(CheckedStage { entry, config }), problems }
-    } else {
-        done(Some(entry), problems)
-    }
+    if problems.is_empty() { TableCheck { entry: Some(entry), stage: Some(CheckedStage { entry, config }), problems } } else { done(Some(entry), problems) }
 }
 
 /// The words between backticks in a serde message, in order.

@@ -88,28 +88,19 @@ impl SavitzkyGolay {
     /// `Q Qᵀ`, symmetrised so that `h_j = h_{W−1−j}` holds exactly.
     pub fn new(window_bins: usize, order: usize) -> Result<Self, SavgolError> {
         if window_bins < 3 {
-            return Err(SavgolError::WindowTooShort {
-                window: window_bins,
-            });
+            return Err(SavgolError::WindowTooShort { window: window_bins });
         }
         if window_bins.is_multiple_of(2) {
-            return Err(SavgolError::EvenWindow {
-                window: window_bins,
-            });
+            return Err(SavgolError::EvenWindow { window: window_bins });
         }
         if order >= window_bins {
-            return Err(SavgolError::OrderTooHigh {
-                order,
-                window: window_bins,
-            });
+            return Err(SavgolError::OrderTooHigh { order, window: window_bins });
         }
 
         let w = window_bins;
         let cols = order + 1;
         let half = (w - 1) / 2;
-        let x: Vec<f64> = (0..w)
-            .map(|i| (i as f64 - half as f64) / half as f64)
-            .collect();
+        let x: Vec<f64> = (0..w).map(|i| (i as f64 - half as f64) / half as f64).collect();
 
         // Column-major while building; copied to row-major at the end.
         let mut q: Vec<Vec<f64>> = Vec::with_capacity(cols);
@@ -144,12 +135,7 @@ impl SavitzkyGolay {
             .collect();
         let coefficients: Vec<f64> = (0..w).map(|j| 0.5 * (row[j] + row[w - 1 - j])).collect();
 
-        Ok(Self {
-            window: w,
-            order,
-            basis: basis.into(),
-            coefficients: coefficients.into(),
-        })
+        Ok(Self { window: w, order, basis: basis.into(), coefficients: coefficients.into() })
     }
 
     /// Window length, bins (odd).
@@ -188,16 +174,9 @@ impl SavitzkyGolay {
     /// complex FFT.
     pub fn plan(&self, n_bins: usize) -> Result<SmoothingPlan, SavgolError> {
         if n_bins < self.window {
-            return Err(SavgolError::InputTooShort {
-                len: n_bins,
-                window: self.window,
-            });
+            return Err(SavgolError::InputTooShort { len: n_bins, window: self.window });
         }
-        Ok(SmoothingPlan {
-            filter: self.clone(),
-            n_bins,
-            interior: Correlator::new(&self.coefficients),
-        })
+        Ok(SmoothingPlan { filter: self.clone(), n_bins, interior: Correlator::new(&self.coefficients) })
     }
 
     /// Smooths `input` (at least [`Self::window_bins`] bins) and returns a
@@ -292,18 +271,10 @@ impl SmoothingPlan {
     /// output bins of its block and of the block paired with it.
     pub fn smooth_with(&self, input: &[f64], out: &mut [f64], scratch: &mut SmoothingScratch) -> Result<(), SavgolError> {
         if input.len() != self.n_bins {
-            return Err(SavgolError::LengthMismatch {
-                buffer: "input",
-                len: input.len(),
-                expected: self.n_bins,
-            });
+            return Err(SavgolError::LengthMismatch { buffer: "input", len: input.len(), expected: self.n_bins });
         }
         if out.len() != self.n_bins {
-            return Err(SavgolError::LengthMismatch {
-                buffer: "output",
-                len: out.len(),
-                expected: self.n_bins,
-            });
+            return Err(SavgolError::LengthMismatch { buffer: "output", len: out.len(), expected: self.n_bins });
         }
         let n = self.n_bins;
         let w = self.filter.window;

@@ -205,7 +205,8 @@ pub fn forecast(plan: &RunPlan, chain: &ChainModel) -> Result<Forecast, String> 
         let hi = hi.min(n_steps);
         let inv_var: f64 = (lo..hi)
             .map(|i| {
-                let cavity = CavityState { cavity_freq_hz: plan.start_hz + i as f64 * plan.step_hz, loaded_q: plan.loaded_q, coupling_beta: plan.coupling_beta };
+                let cavity =
+                    CavityState { cavity_freq_hz: plan.start_hz + i as f64 * plan.step_hz, loaded_q: plan.loaded_q, coupling_beta: plan.coupling_beta };
                 let ratio = signal_power_w(reference, chain.dm_density_gev_per_cm3, &scope, &cavity, nu) / (BOLTZMANN_J_PER_K * plan.noise_temp_k);
                 ratio * ratio * plan.integration_per_step_s * sum_l2 / plan.bin_width_hz
             })
@@ -213,7 +214,14 @@ pub fn forecast(plan: &RunPlan, chain: &ChainModel) -> Result<Forecast, String> 
         if inv_var > 0.0 && hi > lo + 1 {
             let g = g_gamma_limit(reference, chain.threshold, z_c, spread / inv_var.sqrt(), chain.eta);
             let mass = mass_uev_from_freq_hz(nu);
-            reach.push(ReachPoint { freq_hz: nu, mass_uev: mass, g_gamma: g, g_agg_per_gev: g_agg_from_g_gamma_per_gev(g, mass).abs(), rel_ksvz: g / G_GAMMA_KSVZ.abs(), n_steps: hi - lo });
+            reach.push(ReachPoint {
+                freq_hz: nu,
+                mass_uev: mass,
+                g_gamma: g,
+                g_agg_per_gev: g_agg_from_g_gamma_per_gev(g, mass).abs(),
+                rel_ksvz: g / G_GAMMA_KSVZ.abs(),
+                n_steps: hi - lo,
+            });
         }
     }
     if reach.is_empty() {
@@ -244,7 +252,14 @@ impl Forecast {
         let mut w = csv::Writer::from_path(tmp(names[0]))?;
         w.write_record(["freq_hz", "mass_uev", "g_gamma_limit", "g_agg_limit_per_gev", "limit_rel_ksvz", "n_steps"])?;
         for r in &self.reach {
-            w.write_record([format!("{:.1}", r.freq_hz), format!("{:.9}", r.mass_uev), format!("{:.5e}", r.g_gamma), format!("{:.5e}", r.g_agg_per_gev), format!("{:.5}", r.rel_ksvz), r.n_steps.to_string()])?;
+            w.write_record([
+                format!("{:.1}", r.freq_hz),
+                format!("{:.9}", r.mass_uev),
+                format!("{:.5e}", r.g_gamma),
+                format!("{:.5e}", r.g_agg_per_gev),
+                format!("{:.5}", r.rel_ksvz),
+                r.n_steps.to_string(),
+            ])?;
         }
         w.flush()?;
         drop(w);

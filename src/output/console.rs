@@ -24,14 +24,7 @@ pub fn night_report(r: &Reduction, provenance: &Provenance, calibrated: Option<(
     for c in s.cuts.iter().take(MAX_LISTED) {
         let _ = writeln!(out, "  cut step {} ({} row {}) by {}: {}", c.step, c.file.display(), c.row, c.stage, c.reason);
     }
-    let _ = writeln!(
-        out,
-        "RF coverage: {:.6} - {:.6} MHz, {} bins of {} Hz",
-        s.rf_start_hz / 1e6,
-        s.rf_stop_hz / 1e6,
-        s.n_rf_bins,
-        r.spectrum.bin_width_hz
-    );
+    let _ = writeln!(out, "RF coverage: {:.6} - {:.6} MHz, {} bins of {} Hz", s.rf_start_hz / 1e6, s.rf_stop_hz / 1e6, s.n_rf_bins, r.spectrum.bin_width_hz);
     let _ = writeln!(
         out,
         "Grand spectrum: mean {:+.4}, std {:.4} over {} bins (raw spread of A/sigma_A: predicted {:.4}, measured {:.4})",
@@ -124,7 +117,11 @@ pub fn run_file_report(r: &RunReader) -> String {
 pub fn calibration_report(cal: &Calibration, written: &[PathBuf]) -> String {
     let mut out = String::new();
     let a = &cal.attenuation;
-    let _ = writeln!(out, "Signal attenuation eta = {:.4} +- {:.4} (spread {:.4}, {} injections at SNR {})", a.eta, a.standard_error, a.spread, a.n, cal.spec.eta_snr);
+    let _ = writeln!(
+        out,
+        "Signal attenuation eta = {:.4} +- {:.4} (spread {:.4}, {} injections at SNR {})",
+        a.eta, a.standard_error, a.spread, a.n, cal.spec.eta_snr
+    );
     let n = &cal.null;
     let _ = writeln!(
         out,
@@ -194,7 +191,14 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
     for n in st.nights.iter().filter(|n| !n.if_lines.is_empty()) {
         let peak = n.if_lines.iter().map(|l| l.if_profile_sigma).fold(f64::NEG_INFINITY, f64::max);
         let (lo, hi) = (n.if_lines[0].if_offset_hz, n.if_lines[n.if_lines.len() - 1].if_offset_hz);
-        let _ = writeln!(out, "  night {}: {} IF bin(s) with a line, +{:.1} to +{:.1} kHz into the step, up to {peak:.1} sigma", n.index, n.if_lines.len(), lo / 1e3, hi / 1e3);
+        let _ = writeln!(
+            out,
+            "  night {}: {} IF bin(s) with a line, +{:.1} to +{:.1} kHz into the step, up to {peak:.1} sigma",
+            n.index,
+            n.if_lines.len(),
+            lo / 1e3,
+            hi / 1e3
+        );
     }
     if let Some(l) = &st.limit {
         let _ = writeln!(

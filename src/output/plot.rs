@@ -43,13 +43,7 @@ where
         .y_label_area_size(60)
         .build_cartesian_2d(mhz(0)..mhz(n - 1), ymin..ymax)
         .map_err(|e| err(&e))?;
-    chart
-        .configure_mesh()
-        .x_desc("RF frequency (MHz)")
-        .y_desc("normalised excess (sigma)")
-        .label_style(("sans-serif", 14))
-        .draw()
-        .map_err(|e| err(&e))?;
+    chart.configure_mesh().x_desc("RF frequency (MHz)").y_desc("normalised excess (sigma)").label_style(("sans-serif", 14)).draw().map_err(|e| err(&e))?;
     // One vertical stroke per pixel column from its minimum to its maximum: every extreme
     // bin stays visible however many bins share the column.
     chart
@@ -72,7 +66,11 @@ where
     chart
         .configure_series_labels()
         .position(SeriesLabelPosition::LowerRight)
-        .background_style(WHITE).border_style(BLACK).label_font(("sans-serif", 14)).draw().map_err(|e| err(&e))?;
+        .background_style(WHITE)
+        .border_style(BLACK)
+        .label_font(("sans-serif", 14))
+        .draw()
+        .map_err(|e| err(&e))?;
     area.present().map_err(|e| err(&e))?;
     Ok(())
 }

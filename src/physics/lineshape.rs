@@ -46,9 +46,7 @@ pub enum HaloModel {
 impl Default for HaloModel {
     /// The Maxwellian model with rms speed [`DEFAULT_V_RMS_M_S`].
     fn default() -> Self {
-        HaloModel::Maxwellian {
-            v_rms_m_s: DEFAULT_V_RMS_M_S,
-        }
+        HaloModel::Maxwellian { v_rms_m_s: DEFAULT_V_RMS_M_S }
     }
 }
 
@@ -56,10 +54,7 @@ impl HaloModel {
     /// The boosted model with the conventional [`DEFAULT_V0_M_S`] and
     /// [`DEFAULT_V_EARTH_M_S`].
     pub fn default_lab_frame() -> Self {
-        HaloModel::LabFrame {
-            v0_m_s: DEFAULT_V0_M_S,
-            v_earth_m_s: DEFAULT_V_EARTH_M_S,
-        }
+        HaloModel::LabFrame { v0_m_s: DEFAULT_V0_M_S, v_earth_m_s: DEFAULT_V_EARTH_M_S }
     }
 
     /// Mean squared speed in units of `c²` (dimensionless `<v²>/c²`).
@@ -70,10 +65,7 @@ impl HaloModel {
         let c2 = SPEED_OF_LIGHT_M_S * SPEED_OF_LIGHT_M_S;
         match *self {
             HaloModel::Maxwellian { v_rms_m_s } => v_rms_m_s * v_rms_m_s / c2,
-            HaloModel::LabFrame {
-                v0_m_s,
-                v_earth_m_s,
-            } => {
+            HaloModel::LabFrame { v0_m_s, v_earth_m_s } => {
                 let sigma_m_s = dispersion_m_s(v0_m_s);
                 (3.0 * sigma_m_s * sigma_m_s + v_earth_m_s * v_earth_m_s) / c2
             }
@@ -95,20 +87,13 @@ impl HaloModel {
         match *self {
             HaloModel::Maxwellian { .. } => {
                 let rate_per_hz = 3.0 / (axion_freq_hz * self.mean_beta_sq());
-                2.0 / PI.sqrt()
-                    * offset_hz.sqrt()
-                    * rate_per_hz.powf(1.5)
-                    * (-rate_per_hz * offset_hz).exp()
+                2.0 / PI.sqrt() * offset_hz.sqrt() * rate_per_hz.powf(1.5) * (-rate_per_hz * offset_hz).exp()
             }
-            HaloModel::LabFrame {
-                v0_m_s,
-                v_earth_m_s,
-            } => {
+            HaloModel::LabFrame { v0_m_s, v_earth_m_s } => {
                 let sigma_m_s = dispersion_m_s(v0_m_s);
                 let v_m_s = speed_from_offset_m_s(axion_freq_hz, offset_hz);
                 // The factor v of f(v) cancels against dv/dΔ = c²/(ν_a v).
-                SPEED_OF_LIGHT_M_S * SPEED_OF_LIGHT_M_S
-                    / (axion_freq_hz * (2.0 * PI).sqrt() * sigma_m_s * v_earth_m_s)
+                SPEED_OF_LIGHT_M_S * SPEED_OF_LIGHT_M_S / (axion_freq_hz * (2.0 * PI).sqrt() * sigma_m_s * v_earth_m_s)
                     * gaussian_difference(v_m_s, v_earth_m_s, sigma_m_s)
             }
         }
@@ -128,21 +113,14 @@ impl HaloModel {
         match *self {
             HaloModel::Maxwellian { .. } => {
                 let rate_per_hz = 3.0 / (axion_freq_hz * self.mean_beta_sq());
-                Gamma::new(1.5, rate_per_hz)
-                    .expect("Gamma parameters must be positive and finite")
-                    .cdf(offset_hz)
+                Gamma::new(1.5, rate_per_hz).expect("Gamma parameters must be positive and finite").cdf(offset_hz)
             }
-            HaloModel::LabFrame {
-                v0_m_s,
-                v_earth_m_s,
-            } => {
+            HaloModel::LabFrame { v0_m_s, v_earth_m_s } => {
                 let sigma_m_s = dispersion_m_s(v0_m_s);
                 let v_m_s = speed_from_offset_m_s(axion_freq_hz, offset_hz);
                 let scale_m_s = 2.0_f64.sqrt() * sigma_m_s;
-                0.5 * (erf((v_m_s - v_earth_m_s) / scale_m_s)
-                    + erf((v_m_s + v_earth_m_s) / scale_m_s))
-                    - sigma_m_s / (v_earth_m_s * (2.0 * PI).sqrt())
-                        * gaussian_difference(v_m_s, v_earth_m_s, sigma_m_s)
+                0.5 * (erf((v_m_s - v_earth_m_s) / scale_m_s) + erf((v_m_s + v_earth_m_s) / scale_m_s))
+                    - sigma_m_s / (v_earth_m_s * (2.0 * PI).sqrt()) * gaussian_difference(v_m_s, v_earth_m_s, sigma_m_s)
             }
         }
     }
@@ -158,20 +136,9 @@ impl HaloModel {
     ///
     /// If `bin_width_hz` is not positive and finite or `tail_fraction` is not
     /// strictly between 0 and 1.
-    pub fn bin_fractions(
-        &self,
-        axion_freq_hz: f64,
-        bin_width_hz: f64,
-        tail_fraction: f64,
-    ) -> Vec<f64> {
-        assert!(
-            bin_width_hz.is_finite() && bin_width_hz > 0.0,
-            "bin width must be positive and finite, got {bin_width_hz}"
-        );
-        assert!(
-            tail_fraction > 0.0 && tail_fraction < 1.0,
-            "tail fraction must lie strictly between 0 and 1, got {tail_fraction}"
-        );
+    pub fn bin_fractions(&self, axion_freq_hz: f64, bin_width_hz: f64, tail_fraction: f64) -> Vec<f64> {
+        assert!(bin_width_hz.is_finite() && bin_width_hz > 0.0, "bin width must be positive and finite, got {bin_width_hz}");
+        assert!(tail_fraction > 0.0 && tail_fraction < 1.0, "tail fraction must lie strictly between 0 and 1, got {tail_fraction}");
         let target = 1.0 - tail_fraction;
         let mut fractions = Vec::new();
         let mut lower = 0.0;

@@ -7,10 +7,7 @@
 
 use std::f64::consts::PI;
 
-use super::constants::{
-    BOLTZMANN_J_PER_K, FINE_STRUCTURE, HBAR_J_S, JOULE_PER_EV, LAMBDA_QCD_EV, SPEED_OF_LIGHT_M_S,
-    VACUUM_PERMEABILITY_H_PER_M,
-};
+use super::constants::{BOLTZMANN_J_PER_K, FINE_STRUCTURE, HBAR_J_S, JOULE_PER_EV, LAMBDA_QCD_EV, SPEED_OF_LIGHT_M_S, VACUUM_PERMEABILITY_H_PER_M};
 
 /// Fixed properties of a haloscope: magnet and cavity geometry.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -61,30 +58,16 @@ pub fn lorentzian(freq_hz: f64, cavity_freq_hz: f64, loaded_q: f64) -> f64 {
 /// * `axion_freq_hz` – axion rest-mass frequency in Hz.
 ///
 /// `Λ` is [`LAMBDA_QCD_EV`], converted to joules.
-pub fn signal_power_w(
-    g_gamma: f64,
-    dm_density_gev_per_cm3: f64,
-    haloscope: &Haloscope,
-    cavity: &CavityState,
-    axion_freq_hz: f64,
-) -> f64 {
+pub fn signal_power_w(g_gamma: f64, dm_density_gev_per_cm3: f64, haloscope: &Haloscope, cavity: &CavityState, axion_freq_hz: f64) -> f64 {
     let density_j_per_m3 = dm_density_gev_per_cm3 * 1e9 * JOULE_PER_EV * 1e6;
     let lambda_j = LAMBDA_QCD_EV * JOULE_PER_EV;
-    let coupling = g_gamma
-        * g_gamma
-        * FINE_STRUCTURE
-        * FINE_STRUCTURE
-        * HBAR_J_S.powi(3)
-        * SPEED_OF_LIGHT_M_S.powi(3)
-        * density_j_per_m3
-        / (PI * PI * lambda_j.powi(4));
+    let coupling =
+        g_gamma * g_gamma * FINE_STRUCTURE * FINE_STRUCTURE * HBAR_J_S.powi(3) * SPEED_OF_LIGHT_M_S.powi(3) * density_j_per_m3 / (PI * PI * lambda_j.powi(4));
     let field_t = haloscope.magnet_field_t;
-    let magnet = field_t * field_t * haloscope.cavity_volume_m3 * haloscope.form_factor
-        / VACUUM_PERMEABILITY_H_PER_M;
+    let magnet = field_t * field_t * haloscope.cavity_volume_m3 * haloscope.form_factor / VACUUM_PERMEABILITY_H_PER_M;
     let omega_c_rad_s = 2.0 * PI * cavity.cavity_freq_hz;
     let beta = cavity.coupling_beta;
-    let cavity_factor = omega_c_rad_s * cavity.loaded_q * beta / (1.0 + beta)
-        * lorentzian(axion_freq_hz, cavity.cavity_freq_hz, cavity.loaded_q);
+    let cavity_factor = omega_c_rad_s * cavity.loaded_q * beta / (1.0 + beta) * lorentzian(axion_freq_hz, cavity.cavity_freq_hz, cavity.loaded_q);
     coupling * magnet * cavity_factor
 }
 
@@ -96,11 +79,6 @@ pub fn signal_power_w(
 /// kelvin, `integration_s` the integration time in seconds and
 /// `signal_width_hz` the bandwidth in Hz over which the signal is spread.
 /// Assumes the noise is white across that bandwidth and `t Δν ≫ 1`.
-pub fn radiometer_snr(
-    signal_power_w: f64,
-    noise_temp_k: f64,
-    integration_s: f64,
-    signal_width_hz: f64,
-) -> f64 {
+pub fn radiometer_snr(signal_power_w: f64, noise_temp_k: f64, integration_s: f64, signal_width_hz: f64) -> f64 {
     signal_power_w / (BOLTZMANN_J_PER_K * noise_temp_k) * (integration_s / signal_width_hz).sqrt()
 }

@@ -209,7 +209,9 @@ impl ReportData {
         let summary: SummaryView = serde_json::from_str(&text).with_context(|| format!("{}: not a summary written by reduce", summary_path.display()))?;
         let results = dir.join("results.h5");
         let file = hdf5::File::open(&results).with_context(|| format!("cannot open {}", results.display()))?;
-        let read = |name: &str| -> anyhow::Result<Vec<f64>> { Ok(file.dataset(name).with_context(|| format!("{}: dataset `{name}`", results.display()))?.read_raw::<f64>()?) };
+        let read = |name: &str| -> anyhow::Result<Vec<f64>> {
+            Ok(file.dataset(name).with_context(|| format!("{}: dataset `{name}`", results.display()))?.read_raw::<f64>()?)
+        };
         let grand = read("grand")?;
         let freq = read("rf_freq_hz")?;
         let bin_width_hz = if freq.len() > 1 { (freq[freq.len() - 1] - freq[0]) / (freq.len() - 1) as f64 } else { 1.0 };
@@ -239,6 +241,18 @@ impl ReportData {
             None => plan.and_then(|plan| diagnostics::measure(&plan, &runs)),
         };
         let run_labels = runs.iter().filter_map(|p| crate::runfile::RunReader::open(p).ok()).map(|r| r.header().run_label.clone()).collect();
-        Ok(Self { run_labels, rf_start_hz: freq.first().copied().unwrap_or(summary.rf_start_hz), bin_width_hz, grand, implied, steps, limits, calibration, config_text, summary, state: None })
+        Ok(Self {
+            run_labels,
+            rf_start_hz: freq.first().copied().unwrap_or(summary.rf_start_hz),
+            bin_width_hz,
+            grand,
+            implied,
+            steps,
+            limits,
+            calibration,
+            config_text,
+            summary,
+            state: None,
+        })
     }
 }

@@ -110,7 +110,14 @@ fn for_each_chunk(readers: &[crate::runfile::RunReader], f: &mut dyn FnMut(&mut 
             let mut chunk: Vec<Step> = rows
                 .outer_iter()
                 .enumerate()
-                .map(|(r, row)| Step { index: index + r, file, index_in_file: start + r, meta: reader.steps()[start + r], values: row.to_vec(), sigma: Vec::new() })
+                .map(|(r, row)| Step {
+                    index: index + r,
+                    file,
+                    index_in_file: start + r,
+                    meta: reader.steps()[start + r],
+                    values: row.to_vec(),
+                    sigma: Vec::new(),
+                })
                 .collect();
             index += end - start;
             f(&mut chunk);

@@ -89,7 +89,13 @@ fn median(mut v: Vec<f64>) -> Option<f64> {
 }
 
 fn card(out: &mut String, key: &str, value: &str, sub: &str) {
-    let _ = write!(out, "<div class=\"card\"><div class=\"k\">{}</div><div class=\"v\">{}</div><div class=\"s\">{}</div></div>", escape(key), escape(value), escape(sub));
+    let _ = write!(
+        out,
+        "<div class=\"card\"><div class=\"k\">{}</div><div class=\"v\">{}</div><div class=\"s\">{}</div></div>",
+        escape(key),
+        escape(value),
+        escape(sub)
+    );
 }
 
 fn swatch(colour: &str, label: &str) -> String {
@@ -157,18 +163,33 @@ pub fn render(d: &ReportData) -> anyhow::Result<String> {
         }
         out.push_str("</section>");
     }
-    let _ = write!(out, "<footer>Written by axsift {}. This page needs no network and no script.</footer></main></body></html>\n", escape(&s.provenance.tool_version));
+    let _ = write!(
+        out,
+        "<footer>Written by axsift {}. This page needs no network and no script.</footer></main></body></html>\n",
+        escape(&s.provenance.tool_version)
+    );
     Ok(out)
 }
 
 fn glance(out: &mut String, d: &ReportData) {
     let s = &d.summary;
     out.push_str("<div class=\"cards\">");
-    let files = s.provenance.inputs.iter().map(|(p, _)| std::path::Path::new(p).file_name().map_or(p.clone(), |f| f.to_string_lossy().into_owned())).collect::<Vec<_>>().join(", ");
+    let files = s
+        .provenance
+        .inputs
+        .iter()
+        .map(|(p, _)| std::path::Path::new(p).file_name().map_or(p.clone(), |f| f.to_string_lossy().into_owned()))
+        .collect::<Vec<_>>()
+        .join(", ");
     card(out, "Run files", &s.provenance.inputs.len().to_string(), &files);
     card(out, "Steps used", &format!("{} / {}", s.n_steps_used, s.n_steps_in), &format!("{} cut", s.n_steps_in - s.n_steps_used));
     let span_mhz = (s.rf_stop_hz - s.rf_start_hz) / 1e6;
-    card(out, "RF coverage", &format!("{span_mhz:.3} MHz"), &format!("{:.4} to {:.4} MHz, {} bins of {} Hz", s.rf_start_hz / 1e6, s.rf_stop_hz / 1e6, s.n_rf_bins, d.bin_width_hz));
+    card(
+        out,
+        "RF coverage",
+        &format!("{span_mhz:.3} MHz"),
+        &format!("{:.4} to {:.4} MHz, {} bins of {} Hz", s.rf_start_hz / 1e6, s.rf_stop_hz / 1e6, s.n_rf_bins, d.bin_width_hz),
+    );
     if let Ok(diag) = &d.steps {
         let cut: HashSet<usize> = s.cuts.iter().map(|c| c.step).collect();
         let used: Vec<_> = diag.steps.iter().filter(|x| !cut.contains(&x.index)).collect();
@@ -212,7 +233,15 @@ fn cuts(out: &mut String, d: &ReportData) {
     out.push_str("</table><div class=\"scroll\"><table><tr><th class=\"n\">step</th><th>file</th><th class=\"n\">row</th><th>stage</th><th>reason</th></tr>");
     for cut in c {
         let file = cut.file.file_name().map_or_else(|| cut.file.display().to_string(), |f| f.to_string_lossy().into_owned());
-        let _ = write!(out, "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{}</td><td>{}</td><td>{}</td></tr>", cut.step, escape(&file), cut.row, escape(&cut.stage), escape(&cut.reason));
+        let _ = write!(
+            out,
+            "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{}</td><td>{}</td><td>{}</td></tr>",
+            cut.step,
+            escape(&file),
+            cut.row,
+            escape(&cut.stage),
+            escape(&cut.reason)
+        );
     }
     out.push_str("</table></div>");
 }
@@ -232,8 +261,15 @@ fn steps(out: &mut String, d: &ReportData, cut: &HashSet<usize>) -> anyhow::Resu
         out.push_str("</div>");
     }
     out.push_str("</div>");
-    let _ = write!(out, "<p class=\"legend\">{}{}{}</p>", swatch("#1f5aa0", "used steps"), swatch("#c82d28", "cut steps (crosses)"), swatch("#288c46", "radiometer prediction"));
-    let measured: Vec<(f64, f64)> = diag.steps.iter().filter(|s| !cut.contains(&s.index)).filter_map(|s| Some((s.residual_spread?, diag.predicted_spread(&s.meta)?))).collect();
+    let _ = write!(
+        out,
+        "<p class=\"legend\">{}{}{}</p>",
+        swatch("#1f5aa0", "used steps"),
+        swatch("#c82d28", "cut steps (crosses)"),
+        swatch("#288c46", "radiometer prediction")
+    );
+    let measured: Vec<(f64, f64)> =
+        diag.steps.iter().filter(|s| !cut.contains(&s.index)).filter_map(|s| Some((s.residual_spread?, diag.predicted_spread(&s.meta)?))).collect();
     match (diag.one_minus_h0, measured.is_empty()) {
         (Some(k), false) => {
             let ratio = median(measured.iter().map(|(m, p)| m / p).collect());
@@ -334,10 +370,25 @@ fn across_nights(out: &mut String, d: &ReportData) {
     out.push_str("<div class=\"cards\">");
     let files: usize = st.nights.iter().map(|n| n.files.len()).sum();
     card(out, "Nights", &st.nights.len().to_string(), &format!("{files} run file(s), state generation {}", st.generation));
-    card(out, "Covered", &format!("{:.3} MHz", st.covered_hz / 1e6), &st.rf_span_hz.map_or("no bins".into(), |(lo, hi)| format!("{:.4} to {:.4} MHz", lo / 1e6, hi / 1e6)));
-    card(out, "Tracked candidates", &st.candidates.len().to_string(), &format!("{} new, {} persist, {} cleared, {} interference", c.new, c.persists, c.cleared, c.interference));
+    card(
+        out,
+        "Covered",
+        &format!("{:.3} MHz", st.covered_hz / 1e6),
+        &st.rf_span_hz.map_or("no bins".into(), |(lo, hi)| format!("{:.4} to {:.4} MHz", lo / 1e6, hi / 1e6)),
+    );
+    card(
+        out,
+        "Tracked candidates",
+        &st.candidates.len().to_string(),
+        &format!("{} new, {} persist, {} cleared, {} interference", c.new, c.persists, c.cleared, c.interference),
+    );
     match &st.limit {
-        Some(l) => card(out, "Limit range", &format!("{:.3} to {:.3} x KSVZ", l.min_rel_ksvz, l.max_rel_ksvz), &format!("{:.0}% confidence, {} bins, night {}", 100.0 * l.confidence, l.excluded_bins, l.night)),
+        Some(l) => card(
+            out,
+            "Limit range",
+            &format!("{:.3} to {:.3} x KSVZ", l.min_rel_ksvz, l.max_rel_ksvz),
+            &format!("{:.0}% confidence, {} bins, night {}", 100.0 * l.confidence, l.excluded_bins, l.night),
+        ),
         None => card(out, "Limit range", "none", "no update of the state had a calibration"),
     }
     out.push_str("</div><div class=\"scroll\"><table><tr><th class=\"n\">night</th><th>run files</th><th class=\"n\">steps used</th><th>IF lines</th></tr>");
@@ -347,7 +398,15 @@ fn across_nights(out: &mut String, d: &ReportData) {
             Some(z) => format!("{} IF bin(s), up to {z:.1} sigma", n.if_line_bins.len()),
             None => "none".into(),
         };
-        let _ = write!(out, "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{} / {}</td><td>{}</td></tr>", n.index, escape(&names.join(", ")), n.n_steps_used, n.n_steps, escape(&lines));
+        let _ = write!(
+            out,
+            "<tr><td class=\"n\">{}</td><td>{}</td><td class=\"n\">{} / {}</td><td>{}</td></tr>",
+            n.index,
+            escape(&names.join(", ")),
+            n.n_steps_used,
+            n.n_steps,
+            escape(&lines)
+        );
     }
     out.push_str("</table></div>");
     if st.candidates.is_empty() {
@@ -375,7 +434,13 @@ fn across_nights(out: &mut String, d: &ReportData) {
 fn exclusion(out: &mut String, d: &ReportData) -> anyhow::Result<()> {
     let Some(l) = &d.limits else { return Ok(()) };
     out.push_str(&plots::exclusion(&l.points)?);
-    let _ = write!(out, "<p class=\"legend\">{}{}{}</p>", swatch("#1f5aa0", "excluded above this line (gaps: not excluded)"), swatch("#c82d28", "KSVZ"), swatch("#288c46", "DFSZ"));
+    let _ = write!(
+        out,
+        "<p class=\"legend\">{}{}{}</p>",
+        swatch("#1f5aa0", "excluded above this line (gaps: not excluded)"),
+        swatch("#c82d28", "KSVZ"),
+        swatch("#288c46", "DFSZ")
+    );
     if let Some(r) = &d.summary.limits {
         let _ = write!(
             out,
@@ -397,10 +462,22 @@ fn calibration(out: &mut String, d: &ReportData) -> anyhow::Result<()> {
         (Some(cal), _) => {
             out.push_str("<table><tr><th>quantity</th><th class=\"n\">value</th><th>what it is</th></tr>");
             let rows = [
-                ("eta", format!("{:.4} &plusmn; {:.4}", cal.attenuation.eta, cal.attenuation.standard_error), format!("recovered / injected filtered amplitude, {} injections", cal.attenuation.n)),
-                ("null spread", format!("{:.4}", cal.null.std), format!("std of the null grand spectrum over {} bins (mean {:.4})", cal.null.n_bins, cal.null.mean)),
+                (
+                    "eta",
+                    format!("{:.4} &plusmn; {:.4}", cal.attenuation.eta, cal.attenuation.standard_error),
+                    format!("recovered / injected filtered amplitude, {} injections", cal.attenuation.n),
+                ),
+                (
+                    "null spread",
+                    format!("{:.4}", cal.null.std),
+                    format!("std of the null grand spectrum over {} bins (mean {:.4})", cal.null.n_bins, cal.null.mean),
+                ),
                 ("KS test", format!("D = {:.4}, p = {:.3}", cal.null.ks.statistic, cal.null.ks.p_value), "thinned null bins against N(0, 1)".to_string()),
-                ("radiometer", format!("{:.3}", cal.radiometer.ratio), format!("chain 1/sigma_A {:.3} over Dicke SNR {:.3}", cal.radiometer.filter_snr, cal.radiometer.dicke_snr)),
+                (
+                    "radiometer",
+                    format!("{:.3}", cal.radiometer.ratio),
+                    format!("chain 1/sigma_A {:.3} over Dicke SNR {:.3}", cal.radiometer.filter_snr, cal.radiometer.dicke_snr),
+                ),
                 ("noise", escape(&cal.noise), format!("threshold {:.3}, made by axsift {}", cal.threshold, cal.tool_version)),
             ];
             for (k, v, what) in rows {
@@ -408,7 +485,12 @@ fn calibration(out: &mut String, d: &ReportData) -> anyhow::Result<()> {
             }
             out.push_str("</table><div style=\"max-width:720px\">");
             out.push_str(&plots::efficiency(cal)?);
-            let _ = write!(out, "</div><p class=\"legend\">{}{}</p>", swatch("#1f5aa0", "measured (binomial 1 sigma)"), swatch("#288c46", "ideal Phi(SNR - threshold)"));
+            let _ = write!(
+                out,
+                "</div><p class=\"legend\">{}{}</p>",
+                swatch("#1f5aa0", "measured (binomial 1 sigma)"),
+                swatch("#288c46", "ideal Phi(SNR - threshold)")
+            );
         }
         (None, Some(u)) => {
             let _ = write!(

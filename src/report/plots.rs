@@ -127,7 +127,8 @@ pub fn histogram(grand: &[f64], threshold: Option<f64>) -> anyhow::Result<String
     }
     let normal = Normal::standard();
     let n = values.len() as f64;
-    let expected: Vec<(f64, f64)> = (0..=(n_hist * 8)).map(|i| start + i as f64 * BIN / 8.0).map(|x| (x, n * BIN * normal.pdf(x))).filter(|p| p.1 >= 0.05).collect();
+    let expected: Vec<(f64, f64)> =
+        (0..=(n_hist * 8)).map(|i| start + i as f64 * BIN / 8.0).map(|x| (x, n * BIN * normal.pdf(x))).filter(|p| p.1 >= 0.05).collect();
     let y_hi = counts.iter().copied().max().unwrap_or(1).max(1) as f64 * 3.0;
     let x_hi = start + n_hist as f64 * BIN;
     svg(1100, 380, |area| {
@@ -189,7 +190,11 @@ pub fn step_panel(d: &StepDiagnostics, cut: &std::collections::HashSet<usize>, q
     let mut predicted: Vec<(f64, f64)> = Vec::new();
     for s in &d.steps {
         let p = ((s.meta.timestamp_s - t0) / 3600.0, value(s));
-        if cut.contains(&s.index) { removed.push(p) } else { kept.push(p) }
+        if cut.contains(&s.index) {
+            removed.push(p)
+        } else {
+            kept.push(p)
+        }
         if let (StepQuantity::ResidualSpread, Some(e)) = (q, d.predicted_spread(&s.meta)) {
             predicted.push((p.0, e));
         }
@@ -248,10 +253,8 @@ pub fn exclusion(points: &[(f64, f64)]) -> anyhow::Result<String> {
     const W: u32 = 1100;
     let columns = W as usize - 100;
     let per = points.len().div_ceil(columns).max(1);
-    let reduced: Vec<(f64, Option<f64>)> = points
-        .chunks(per)
-        .map(|c| (c[c.len() / 2].0, c.iter().all(|p| p.1.is_finite()).then(|| c.iter().map(|p| p.1).fold(0.0, f64::max))))
-        .collect();
+    let reduced: Vec<(f64, Option<f64>)> =
+        points.chunks(per).map(|c| (c[c.len() / 2].0, c.iter().all(|p| p.1.is_finite()).then(|| c.iter().map(|p| p.1).fold(0.0, f64::max)))).collect();
     let mut segments = vec![Vec::new()];
     for &(m, g) in &reduced {
         match g {
@@ -299,12 +302,7 @@ pub fn efficiency(cal: &Calibration) -> anyhow::Result<String> {
     let normal = Normal::standard();
     let ideal: Vec<(f64, f64)> = (0..=200).map(|i| x_max * f64::from(i) / 200.0).map(|x| (x, normal.cdf(x - cal.threshold))).collect();
     svg(700, 360, |area| {
-        let mut chart = ChartBuilder::on(area)
-            .margin(12)
-            .x_label_area_size(44)
-            .y_label_area_size(56)
-            .build_cartesian_2d(0.0..x_max, 0.0..1.05)
-            .map_err(err)?;
+        let mut chart = ChartBuilder::on(area).margin(12).x_label_area_size(44).y_label_area_size(56).build_cartesian_2d(0.0..x_max, 0.0..1.05).map_err(err)?;
         chart
             .configure_mesh()
             .max_light_lines(0)

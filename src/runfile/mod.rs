@@ -83,10 +83,5 @@ pub enum RunFileError {
     },
     /// A field is missing, of the wrong shape, or out of its valid range.
     #[error("{path}: field `{field}`{}: {message}", step.map(|s| format!(", step {s}")).unwrap_or_default())]
-    Invalid {
-        path: PathBuf,
-        field: String,
-        step: Option<usize>,
-        message: String,
-    },
+    Invalid { path: PathBuf, field: String, step: Option<usize>, message: String },
 }

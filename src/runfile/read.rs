@@ -24,12 +24,7 @@ impl RunReader {
     /// the field and, for per-step values, the step (row) index.
     pub fn open(path: &Path) -> Result<Self, RunFileError> {
         let p = path.to_path_buf();
-        let invalid = |field: &str, step: Option<usize>, message: String| RunFileError::Invalid {
-            path: p.clone(),
-            field: field.to_string(),
-            step,
-            message,
-        };
+        let invalid = |field: &str, step: Option<usize>, message: String| RunFileError::Invalid { path: p.clone(), field: field.to_string(), step, message };
         probe::check_file(path)?;
         // No raw-data chunk cache: every read takes whole chunks (one step row each), which the
         // library then reads straight into the caller's buffer instead of through the cache.
@@ -51,11 +46,7 @@ impl RunReader {
         }
         let positive = |name: &str| -> Result<f64, RunFileError> {
             let v = attrs::read_f64(&file, name).map_err(|m| invalid(name, None, m))?;
-            if v.is_finite() && v > 0.0 {
-                Ok(v)
-            } else {
-                Err(invalid(name, None, format!("is {v}, must be finite and > 0")))
-            }
+            if v.is_finite() && v > 0.0 { Ok(v) } else { Err(invalid(name, None, format!("is {v}, must be finite and > 0"))) }
         };
         let header = RunHeader {
             bin_width_hz: positive("bin_width_hz")?,
@@ -126,28 +117,15 @@ impl RunReader {
     pub fn read_rows(&self, rows: Range<usize>) -> Result<Array2<f64>, RunFileError> {
         let what = format!("reading spectra of steps {}..{} (corrupted file?)", rows.start, rows.end);
         let mut power: Array2<f64> =
-            self.spectra
-                .read_slice_2d((rows.clone(), ..))
-                .map_err(|source| RunFileError::Hdf5 {
-                    path: self.path.clone(),
-                    what: what.clone(),
-                    source,
-                })?;
+            self.spectra.read_slice_2d((rows.clone(), ..)).map_err(|source| RunFileError::Hdf5 { path: self.path.clone(), what: what.clone(), source })?;
         if let Some(mask) = &self.mask {
             let flags: Array2<u8> =
-                mask.read_slice_2d((rows, ..))
-                    .map_err(|source| RunFileError::Hdf5 {
-                        path: self.path.clone(),
-                        what: format!("{what} of mask"),
-                        source,
-                    })?;
-            ndarray::Zip::from(&mut power)
-                .and(&flags)
-                .for_each(|p, &m| {
-                    if m != 0 {
-                        *p = f64::NAN;
-                    }
-                });
+                mask.read_slice_2d((rows, ..)).map_err(|source| RunFileError::Hdf5 { path: self.path.clone(), what: format!("{what} of mask"), source })?;
+            ndarray::Zip::from(&mut power).and(&flags).for_each(|p, &m| {
+                if m != 0 {
+                    *p = f64::NAN;
+                }
+            });
         }
         Ok(power)
     }

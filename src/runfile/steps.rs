@@ -82,7 +82,10 @@ fn check_step(i: usize, m: &StepMeta, n_avg_raw: f64, previous: Option<&StepMeta
             return Err(fail("timestamp_s", format!("value {t} equals step {}'s: duplicate step (steps must have distinct, increasing timestamps)", i - 1)));
         }
         if t < p.timestamp_s {
-            return Err(fail("timestamp_s", format!("value {t} is earlier than step {}'s {}: steps must be stored in acquisition order", i - 1, p.timestamp_s)));
+            return Err(fail(
+                "timestamp_s",
+                format!("value {t} is earlier than step {}'s {}: steps must be stored in acquisition order", i - 1, p.timestamp_s),
+            ));
         }
     }
     Ok(())

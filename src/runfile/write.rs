@@ -15,10 +15,7 @@ const MAX_TEXT_BYTES: usize = super::attrs::MAX_FIXED_STRING_BYTES;
 /// without checks when the file is corrupted.
 fn write_text(file: &hdf5::File, name: &str, value: &str) -> hdf5::Result<()> {
     let buffer = FixedUnicode::<MAX_TEXT_BYTES>::from_str(value).map_err(|e| hdf5::Error::from(e.to_string()))?;
-    file.new_attr_builder()
-        .empty_as(TypeDescriptor::FixedUnicode(value.len().max(1)))
-        .create(name)?
-        .write_scalar(&buffer)
+    file.new_attr_builder().empty_as(TypeDescriptor::FixedUnicode(value.len().max(1))).create(name)?.write_scalar(&buffer)
 }
 
 /// Writes a run file row by row to a temporary path, renamed into place by [`RunWriter::finish`].
@@ -33,20 +30,11 @@ pub struct RunWriter {
 
 impl RunWriter {
     /// Creates a file for `n_steps` x `n_bins` f32 spectra with the given header.
-    pub fn create(
-        path: &Path,
-        header: &RunHeader,
-        n_steps: usize,
-        n_bins: usize,
-    ) -> Result<Self, RunFileError> {
+    pub fn create(path: &Path, header: &RunHeader, n_steps: usize, n_bins: usize) -> Result<Self, RunFileError> {
         let tmp_path = path.with_extension("h5.tmp");
         let err = |what: &str| {
             let (p, w) = (path.to_path_buf(), what.to_string());
-            move |source| RunFileError::Hdf5 {
-                path: p,
-                what: w,
-                source,
-            }
+            move |source| RunFileError::Hdf5 { path: p, what: w, source }
         };
         for (field, value) in [("format", FORMAT_NAME), ("run_label", header.run_label.as_str())] {
             let problem = if value.len() > MAX_TEXT_BYTES {
@@ -60,57 +48,30 @@ impl RunWriter {
         }
         // The 1.10 file format: superblock, object headers (with the attributes) and the chunk
         // index of `spectra` carry checksums, so a damaged file is refused instead of parsed.
-        let file = hdf5::File::with_options()
-            .with_fapl(|p| p.libver_v110())
-            .create(&tmp_path)
-            .map_err(err("create"))?;
+        let file = hdf5::File::with_options().with_fapl(|p| p.libver_v110()).create(&tmp_path).map_err(err("create"))?;
         write_text(&file, "format", FORMAT_NAME).map_err(err("format"))?;
-        file.new_attr::<u32>()
-            .create("format_version")
-            .and_then(|a| a.write_scalar(&FORMAT_VERSION))
-            .map_err(err("format_version"))?;
+        file.new_attr::<u32>().create("format_version").and_then(|a| a.write_scalar(&FORMAT_VERSION)).map_err(err("format_version"))?;
         for (name, value) in [
             ("bin_width_hz", header.bin_width_hz),
             ("magnet_field_t", header.magnet_field_t),
             ("cavity_volume_m3", header.cavity_volume_m3),
             ("form_factor", header.form_factor),
         ] {
-            file.new_attr::<f64>()
-                .create(name)
-                .and_then(|a| a.write_scalar(&value))
-                .map_err(err(name))?;
+            file.new_attr::<f64>().create(name).and_then(|a| a.write_scalar(&value)).map_err(err(name))?;
         }
         write_text(&file, "run_label", &header.run_label).map_err(err("run_label"))?;
-        let spectra = file
-            .new_dataset::<f32>()
-            .shape((n_steps, n_bins))
-            .chunk((1, n_bins))
-            .create("spectra")
-            .map_err(err("spectra"))?;
-        Ok(Self {
-            final_path: path.to_path_buf(),
-            tmp_path,
-            file,
-            spectra,
-            steps: Vec::with_capacity(n_steps),
-            n_steps,
-        })
+        let spectra = file.new_dataset::<f32>().shape((n_steps, n_bins)).chunk((1, n_bins)).create("spectra").map_err(err("spectra"))?;
+        Ok(Self { final_path: path.to_path_buf(), tmp_path, file, spectra, steps: Vec::with_capacity(n_steps), n_steps })
     }
 
     /// Appends the next step: its metadata and raw power (W per bin, any gain).
-    pub fn push_step(
-        &mut self,
-        meta: StepMeta,
-        power: ArrayView1<f32>,
-    ) -> Result<(), RunFileError> {
+    pub fn push_step(&mut self, meta: StepMeta, power: ArrayView1<f32>) -> Result<(), RunFileError> {
         let row = self.steps.len();
-        self.spectra
-            .write_slice(&power, (row, ..))
-            .map_err(|source| RunFileError::Hdf5 {
-                path: self.final_path.clone(),
-                what: format!("writing step {row}"),
-                source,
-            })?;
+        self.spectra.write_slice(&power, (row, ..)).map_err(|source| RunFileError::Hdf5 {
+            path: self.final_path.clone(),
+            what: format!("writing step {row}"),
+            source,
+        })?;
         self.steps.push(meta);
         Ok(())
     }
@@ -119,11 +80,7 @@ impl RunWriter {
     pub fn finish(self) -> Result<(), RunFileError> {
         let err = |what: &str| {
             let (p, w) = (self.final_path.clone(), what.to_string());
-            move |source| RunFileError::Hdf5 {
-                path: p,
-                what: w,
-                source,
-            }
+            move |source| RunFileError::Hdf5 { path: p, what: w, source }
         };
         if self.steps.len() != self.n_steps {
             return Err(RunFileError::Invalid {
@@ -144,18 +101,10 @@ impl RunWriter {
         ];
         for (name, get) in columns {
             let values: Vec<f64> = self.steps.iter().map(get).collect();
-            group
-                .new_dataset_builder()
-                .with_data(&values)
-                .create(name)
-                .map_err(err(name))?;
+            group.new_dataset_builder().with_data(&values).create(name).map_err(err(name))?;
         }
         let n_avg: Vec<u64> = self.steps.iter().map(|s| s.n_averages).collect();
-        group
-            .new_dataset_builder()
-            .with_data(&n_avg)
-            .create("n_averages")
-            .map_err(err("n_averages"))?;
+        group.new_dataset_builder().with_data(&n_avg).create("n_averages").map_err(err("n_averages"))?;
         self.file.close().map_err(err("close"))?;
         std::fs::rename(&self.tmp_path, &self.final_path).map_err(|e| RunFileError::Invalid {
             path: self.final_path.clone(),

@@ -60,9 +60,12 @@ fn check_no_extra(work: &Path, n: usize) -> Result<(), ShardError> {
 pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration: Option<&Path>) -> Result<Merged, ShardError> {
     let (plan, hash) = ShardPlan::load(plan_path)?;
     let work = plan_path.parent().unwrap_or(Path::new("."));
-    let pipeline = crate::config::load(&plan.config_text, &plan.config_name).map_err(|e| ShardError::BadInput(format!("{}: field `config_text`: {e}", plan_path.display())))?;
+    let pipeline = crate::config::load(&plan.config_text, &plan.config_name)
+        .map_err(|e| ShardError::BadInput(format!("{}: field `config_text`: {e}", plan_path.display())))?;
     let calibration = match (&plan.work, calibration) {
-        (Work::Campaign { .. }, Some(_)) => return Err(ShardError::BadInput("a campaign merge makes a calibration and takes none (--calibration is for a reduction)".into())),
+        (Work::Campaign { .. }, Some(_)) => {
+            return Err(ShardError::BadInput("a campaign merge makes a calibration and takes none (--calibration is for a reduction)".into()));
+        }
         (_, path) => path.map(|p| Calibration::load_for(p, &pipeline)).transpose().map_err(ShardError::BadInput)?,
     };
     check_no_extra(work, plan.shards.len())?;
@@ -86,7 +89,10 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration
             let mut last = None;
             for shard in &plan.shards {
                 let Payload::Nights(parts) = read_shard(work, &plan, &hash, shard.index)?.payload else {
-                    return Err(ShardError::BadInput(format!("{}: holds campaign results, the plan is a reduction", super::shard_path(work, shard.index).display())));
+                    return Err(ShardError::BadInput(format!(
+                        "{}: holds campaign results, the plan is a reduction",
+                        super::shard_path(work, shard.index).display()
+                    )));
                 };
                 for (k, part) in parts.into_iter().enumerate() {
                     let what = format!("{} night {}", super::shard_path(work, shard.index).display(), shard.first + k);
@@ -102,7 +108,10 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration
                 .map(|cal| crate::limits::for_reduction(&pipeline, &update.reduction.spectrum, cal, crate::limits::DEFAULT_CONFIDENCE))
                 .transpose()
                 .map_err(ShardError::BadInput)?;
-            let written = update.reduction.write(out, &plan.config_text, &provenance, calibration.as_ref().zip(limits.as_ref())).map_err(|e| failed(&format!("{e:#}")))?;
+            let written = update
+                .reduction
+                .write(out, &plan.config_text, &provenance, calibration.as_ref().zip(limits.as_ref()))
+                .map_err(|e| failed(&format!("{e:#}")))?;
             if let Some(limits) = &limits {
                 st.record_limit(limits, &update.reduction.spectrum, update.match_hz);
             }

@@ -110,10 +110,13 @@ fn read_shard(work: &Path, plan: &ShardPlan, plan_sha256: &str, index: usize) ->
     let rerun = format!("axsift shard-run --plan {} --index {index}", work.join(plan::PLAN_FILE).display());
     let bytes = match std::fs::read(&path) {
         Ok(b) => b,
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Err(ShardError::BadInput(format!("{}: missing (shard {index} has not finished); run it with `{rerun}`", path.display()))),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            return Err(ShardError::BadInput(format!("{}: missing (shard {index} has not finished); run it with `{rerun}`", path.display())));
+        }
         Err(e) => return Err(ShardError::io(&path, e)),
     };
-    let file: ShardFile = serde_json::from_slice(&bytes).map_err(|e| ShardError::BadInput(format!("{}: not a shard file: {e}; rerun it with `{rerun}`", path.display())))?;
+    let file: ShardFile =
+        serde_json::from_slice(&bytes).map_err(|e| ShardError::BadInput(format!("{}: not a shard file: {e}; rerun it with `{rerun}`", path.display())))?;
     if file.version != SHARD_VERSION {
         return Err(ShardError::BadInput(format!("{}: field `version` is {} (this build reads {SHARD_VERSION})", path.display(), file.version)));
     }
@@ -134,7 +137,12 @@ fn read_shard(work: &Path, plan: &ShardPlan, plan_sha256: &str, index: usize) ->
         )));
     }
     if plan.shards.get(index) != Some(&file.spec) {
-        return Err(ShardError::BadInput(format!("{}: field `spec` (items {}..{}) differs from the plan's shard {index}", path.display(), file.spec.first, file.spec.first + file.spec.count)));
+        return Err(ShardError::BadInput(format!(
+            "{}: field `spec` (items {}..{}) differs from the plan's shard {index}",
+            path.display(),
+            file.spec.first,
+            file.spec.first + file.spec.count
+        )));
     }
     Ok(file)
 }

@@ -142,7 +142,13 @@ fn night_cost(paths: &[PathBuf]) -> Result<NightCost, ShardError> {
     let (readers, night) = open_night(paths).map_err(|e| ShardError::BadInput(e.to_string()))?;
     let steps: usize = readers.iter().map(|r| r.steps().len()).sum();
     let rf_bins = (night.rf_span_hz.1 - night.rf_span_hz.0) / night.bin_width_hz + 1.0;
-    Ok(NightCost { bins: (steps * night.n_bins) as f64, mem_mb: night_mem_mb(night.n_bins, rf_bins), rf_bins, span_hz: night.rf_span_hz, bin_width_hz: night.bin_width_hz })
+    Ok(NightCost {
+        bins: (steps * night.n_bins) as f64,
+        mem_mb: night_mem_mb(night.n_bins, rf_bins),
+        rf_bins,
+        span_hz: night.rf_span_hz,
+        bin_width_hz: night.bin_width_hz,
+    })
 }
 
 /// Resources from the largest shard: memory twice the model (at least [`MIN_MEM_MB`]), time
@@ -177,7 +183,8 @@ impl ShardPlan {
         let specs = split(nights.len(), shards, 0, 0);
         let of = |s: &ShardSpec| &costs[s.first..s.first + s.count];
         let largest_bins = specs.iter().map(|s| of(s).iter().map(|c| c.bins).sum::<f64>()).fold(0.0, f64::max);
-        let shard_mem = |s: &ShardSpec| of(s).iter().map(|c| c.mem_mb).fold(0.0, f64::max) + of(s).iter().map(|c| c.rf_bins).sum::<f64>() * KEPT_BYTES_PER_RF_BIN / 1e6;
+        let shard_mem =
+            |s: &ShardSpec| of(s).iter().map(|c| c.mem_mb).fold(0.0, f64::max) + of(s).iter().map(|c| c.rf_bins).sum::<f64>() * KEPT_BYTES_PER_RF_BIN / 1e6;
         let largest_mem = specs.iter().map(shard_mem).fold(0.0, f64::max);
         // The merge holds the grid of all nights (each bin as in the state and its spectrum
         // stages) and decodes one night at a time.
@@ -212,7 +219,15 @@ impl ShardPlan {
     }
 
     fn new(config_text: &str, config_name: &str, work: Work, shards: Vec<ShardSpec>, resources: Resources) -> Self {
-        Self { version: PLAN_VERSION, tool_version: env!("CARGO_PKG_VERSION").into(), config_text: config_text.into(), config_name: config_name.into(), work, shards, resources }
+        Self {
+            version: PLAN_VERSION,
+            tool_version: env!("CARGO_PKG_VERSION").into(),
+            config_text: config_text.into(),
+            config_name: config_name.into(),
+            work,
+            shards,
+            resources,
+        }
     }
 
     /// Writes `plan.json` into `work` (created if needed) under a temporary name, then renames

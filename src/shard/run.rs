@@ -15,7 +15,8 @@ pub fn shard_index(given: Option<usize>) -> Result<usize, ShardError> {
     if let Some(i) = given {
         return Ok(i);
     }
-    let value = std::env::var(ARRAY_TASK_VAR).map_err(|_| ShardError::BadInput(format!("no shard index: give --index N or run as a Slurm array task ({ARRAY_TASK_VAR} is unset)")))?;
+    let value = std::env::var(ARRAY_TASK_VAR)
+        .map_err(|_| ShardError::BadInput(format!("no shard index: give --index N or run as a Slurm array task ({ARRAY_TASK_VAR} is unset)")))?;
     value.trim().parse().map_err(|_| ShardError::BadInput(format!("{ARRAY_TASK_VAR} = {value:?} is not a shard index")))
 }
 
@@ -36,8 +37,16 @@ pub(super) fn with_noise<T>(noise: &CampaignNoise, scratch: &Path, f: impl FnOnc
 pub fn run_shard(plan_path: &Path, index: usize, progress: &(dyn Fn(usize, usize) + Sync)) -> Result<PathBuf, ShardError> {
     let (plan, hash) = ShardPlan::load(plan_path)?;
     let work = plan_path.parent().unwrap_or(Path::new("."));
-    let spec = plan.shards.get(index).cloned().ok_or_else(|| ShardError::BadInput(format!("{}: shard {index} does not exist (the plan has {} shards, 0..{})", plan_path.display(), plan.shards.len(), plan.shards.len())))?;
-    let pipeline = crate::config::load(&plan.config_text, &plan.config_name).map_err(|e| ShardError::BadInput(format!("{}: field `config_text`: {e}", plan_path.display())))?;
+    let spec = plan.shards.get(index).cloned().ok_or_else(|| {
+        ShardError::BadInput(format!(
+            "{}: shard {index} does not exist (the plan has {} shards, 0..{})",
+            plan_path.display(),
+            plan.shards.len(),
+            plan.shards.len()
+        ))
+    })?;
+    let pipeline = crate::config::load(&plan.config_text, &plan.config_name)
+        .map_err(|e| ShardError::BadInput(format!("{}: field `config_text`: {e}", plan_path.display())))?;
     let items = spec.first..spec.first + spec.count;
     let payload = match &plan.work {
         Work::Reduction { nights } => {

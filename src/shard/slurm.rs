@@ -4,8 +4,8 @@
 //! Assumes a shared filesystem: the axsift binary, the plan's work folder, the run files
 //! and the output folders must be visible at the same paths on every node.
 
-use super::plan::{PLAN_FILE, ShardPlan, Work};
 use super::ShardError;
+use super::plan::{PLAN_FILE, ShardPlan, Work};
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -37,14 +37,22 @@ fn script_path(path: &Path) -> Result<String, ShardError> {
 /// up); the merge (one cpu, the plan's merge memory, the shard time limit) reads every shard
 /// and writes `out` (and, for a reduction, `state_dir`).
 /// `exe` is the axsift binary the jobs run; `partition` is passed on if given.
-pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option<&Path>, calibration: Option<&Path>, partition: Option<&str>) -> Result<Scripts, ShardError> {
+pub fn write_scripts(
+    plan_path: &Path,
+    exe: &Path,
+    out: &Path,
+    state_dir: Option<&Path>,
+    calibration: Option<&Path>,
+    partition: Option<&str>,
+) -> Result<Scripts, ShardError> {
     let (plan, _) = ShardPlan::load(plan_path)?;
     let absolute = |p: &Path| std::path::absolute(p).map_err(|e| ShardError::Io { path: p.to_path_buf(), message: e.to_string() });
     let plan_path = absolute(plan_path)?;
     let work = plan_path.parent().unwrap_or(Path::new("/")).to_path_buf();
     let dir = work.join(SLURM_DIR);
     std::fs::create_dir_all(&dir).map_err(|e| ShardError::Io { path: dir.clone(), message: e.to_string() })?;
-    let (exe_s, plan_s, dir_s, work_s, out_s) = (script_path(exe)?, script_path(&plan_path)?, script_path(&dir)?, script_path(&work)?, script_path(&absolute(out)?)?);
+    let (exe_s, plan_s, dir_s, work_s, out_s) =
+        (script_path(exe)?, script_path(&plan_path)?, script_path(&dir)?, script_path(&work)?, script_path(&absolute(out)?)?);
     let state_arg = match (&plan.work, state_dir) {
         (Work::Reduction { .. }, Some(s)) => format!(" --state {}", script_path(&absolute(s)?)?),
         (Work::Reduction { .. }, None) => return Err(ShardError::BadInput("a reduction plan needs --state DIR for the merged analysis state".into())),
@@ -61,7 +69,10 @@ pub fn write_scripts(plan_path: &Path, exe: &Path, out: &Path, state_dir: Option
     };
     let shard_text = format!("{}exec {exe_s} --quiet shard-run --plan {plan_s}\n", header("shard", "shard-%A_%a.log", r.mem_mb, r.cpus, r.time_s.div_ceil(60)));
     let calibration_arg = calibration.map(|c| absolute(c).and_then(|c| script_path(&c))).transpose()?.map_or(String::new(), |c| format!(" --calibration {c}"));
-    let merge_text = format!("{}exec {exe_s} --quiet shard-merge --plan {plan_s} --out {out_s}{state_arg}{calibration_arg}\n", header("merge", "merge-%j.log", r.merge_mem_mb, 1, r.time_s.div_ceil(60)));
+    let merge_text = format!(
+        "{}exec {exe_s} --quiet shard-merge --plan {plan_s} --out {out_s}{state_arg}{calibration_arg}\n",
+        header("merge", "merge-%j.log", r.merge_mem_mb, 1, r.time_s.div_ceil(60))
+    );
     let shard_script = dir.join("shard.sbatch");
     let merge_script = dir.join("merge.sbatch");
     super::write_atomic(&shard_script, shard_text.as_bytes())?;
@@ -99,7 +110,12 @@ pub fn submit(scripts: &Scripts) -> Result<Vec<String>, ShardError> {
         let args: Vec<String> = args.into_iter().map(|a| a.replace("{prev}", ids.last().map(String::as_str).unwrap_or(""))).collect();
         let run = Command::new("sbatch").args(&args).output().map_err(|e| ShardError::Failed(format!("cannot run sbatch: {e} (is Slurm installed here?)")))?;
         if !run.status.success() {
-            return Err(ShardError::Failed(format!("sbatch {} failed ({}): {}; jobs submitted so far: {ids:?}", args.join(" "), run.status, String::from_utf8_lossy(&run.stderr).trim())));
+            return Err(ShardError::Failed(format!(
+                "sbatch {} failed ({}): {}; jobs submitted so far: {ids:?}",
+                args.join(" "),
+                run.status,
+                String::from_utf8_lossy(&run.stderr).trim()
+            )));
         }
         let stdout = String::from_utf8_lossy(&run.stdout);
         // --parsable prints "id" or "id;cluster".

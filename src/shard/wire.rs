@@ -89,7 +89,15 @@ impl NightWire {
             used_steps: r
                 .used_steps
                 .iter()
-                .map(|(i, m)| (*i, MetaWire { floats: vec![m.start_freq_hz, m.cavity_freq_hz, m.loaded_q, m.coupling_beta, m.noise_temp_k, m.timestamp_s], n_averages: m.n_averages }))
+                .map(|(i, m)| {
+                    (
+                        *i,
+                        MetaWire {
+                            floats: vec![m.start_freq_hz, m.cavity_freq_hz, m.loaded_q, m.coupling_beta, m.noise_temp_k, m.timestamp_s],
+                            n_averages: m.n_averages,
+                        },
+                    )
+                })
                 .collect(),
             cuts: r.cuts.iter().map(|c| CutWire { step: c.step, file: c.file.clone(), row: c.row, stage: c.stage.clone(), reason: c.reason.clone() }).collect(),
             n_bins: r.night.n_bins,
@@ -135,7 +143,9 @@ impl NightWire {
             .headers
             .into_iter()
             .map(|h| match h.floats[..] {
-                [bin_width_hz, magnet_field_t, cavity_volume_m3, form_factor] => Ok(RunHeader { bin_width_hz, magnet_field_t, cavity_volume_m3, form_factor, run_label: h.run_label }),
+                [bin_width_hz, magnet_field_t, cavity_volume_m3, form_factor] => {
+                    Ok(RunHeader { bin_width_hz, magnet_field_t, cavity_volume_m3, form_factor, run_label: h.run_label })
+                }
                 _ => Err(bad("headers")),
             })
             .collect::<Result<Vec<_>, _>>()?;

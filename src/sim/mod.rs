@@ -7,9 +7,9 @@
 //! bursts, on for a range of steps only). Step i uses a random stream seeded by (seed, i), so
 //! files are reproducible whatever the thread count.
 
+use crate::inject::{SignalModel, SyntheticAxion};
 use crate::physics::constants::{BOLTZMANN_J_PER_K, DEFAULT_DM_DENSITY_GEV_PER_CM3, G_GAMMA_KSVZ};
 use crate::physics::lineshape::HaloModel;
-use crate::inject::{SignalModel, SyntheticAxion};
 use crate::physics::signal::{CavityState, Haloscope};
 use crate::runfile::{RunFileError, RunHeader, RunWriter, StepMeta};
 use ndarray::Array1;

@@ -103,14 +103,16 @@ impl StepStage for Baseline {
     }
     /// IF pieces of [`SURVEY_PIECE_BINS`] in parallel, each summing the steps in their order.
     fn survey_all(&mut self, steps: &[&Step]) {
-        self.gain_sum.par_chunks_mut(SURVEY_PIECE_BINS).zip(self.gain_count.par_chunks_mut(SURVEY_PIECE_BINS)).enumerate().for_each(|(piece, (sums, counts))| {
-            let a = piece * SURVEY_PIECE_BINS;
-            for step in steps {
-                if let Some(values) = step.values.get(a..) {
-                    add_power(sums, counts, values);
+        self.gain_sum.par_chunks_mut(SURVEY_PIECE_BINS).zip(self.gain_count.par_chunks_mut(SURVEY_PIECE_BINS)).enumerate().for_each(
+            |(piece, (sums, counts))| {
+                let a = piece * SURVEY_PIECE_BINS;
+                for step in steps {
+                    if let Some(values) = step.values.get(a..) {
+                        add_power(sums, counts, values);
+                    }
                 }
-            }
-        });
+            },
+        );
     }
     fn finish_survey(&mut self) -> Result<(), String> {
         let mean: Vec<f64> = self.gain_sum.iter().zip(&self.gain_count).map(|(&s, &c)| if c > 0 { s / f64::from(c) } else { f64::NAN }).collect();

@@ -69,7 +69,12 @@ impl MlCombiner {
         if (offset - whole).abs() > self.tolerance {
             return Err(format!(
                 "step {} (file {}, row {}): start_freq_hz = {} Hz is {:.4} bins off the RF grid (tolerance {})",
-                step.index, step.file, step.index_in_file, step.meta.start_freq_hz, offset - whole, self.tolerance
+                step.index,
+                step.file,
+                step.index_in_file,
+                step.meta.start_freq_hz,
+                offset - whole,
+                self.tolerance
             ));
         }
         Ok(whole as usize)
@@ -96,7 +101,13 @@ impl Combiner for MlCombiner {
     fn add(&mut self, step: &Step) -> Result<(), String> {
         let first = self.first_bin(step)?;
         let n = step.values.len().min(step.sigma.len());
-        accumulate(&mut self.weighted_sum[first..first + n], &mut self.weight[first..first + n], &mut self.coverage[first..first + n], &step.values, &step.sigma);
+        accumulate(
+            &mut self.weighted_sum[first..first + n],
+            &mut self.weight[first..first + n],
+            &mut self.coverage[first..first + n],
+            &step.values,
+            &step.sigma,
+        );
         Ok(())
     }
     /// Pieces of [`PIECE_BINS`] RF bins in parallel; within a piece the steps are added in

@@ -80,11 +80,8 @@ impl SpectrumStage for Flag {
                 j += 1;
             }
             let frequency_hz = sp.freq_hz(peak) - sp.bin_width_hz / 2.0;
-            let covering_steps = steps
-                .iter()
-                .filter(|(_, m)| m.start_freq_hz <= frequency_hz && frequency_hz <= m.start_freq_hz + sp.step_span_hz)
-                .map(|(i, _)| *i)
-                .collect();
+            let covering_steps =
+                steps.iter().filter(|(_, m)| m.start_freq_hz <= frequency_hz && frequency_hz <= m.start_freq_hz + sp.step_span_hz).map(|(i, _)| *i).collect();
             sp.candidates.push(Candidate {
                 frequency_hz,
                 significance: sp.grand[peak],

@@ -122,7 +122,8 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) ->
     let info = NightInfo { rf_span_hz: (spectrum.freq_hz(0), spectrum.freq_hz(spectrum.combined.len() - 1)), ..night_red.night.clone() };
     // The whole plan is built for the accumulated grid (so the filter sees the baseline
     // kernel for its spread prediction); only its spectrum stages are applied.
-    let stages: Vec<_> = plan.build(&info).map_err(refused)?.into_iter().filter_map(|b| if let Built::Spectrum(stage) = b { Some(stage) } else { None }).collect();
+    let stages: Vec<_> =
+        plan.build(&info).map_err(refused)?.into_iter().filter_map(|b| if let Built::Spectrum(stage) = b { Some(stage) } else { None }).collect();
     for stage in &stages {
         stage.apply(&mut spectrum, &night_red.used_steps).map_err(refused)?;
     }

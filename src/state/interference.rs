@@ -109,8 +109,13 @@ impl IfProfile {
     pub fn add_all(&mut self, steps: &[&Step]) {
         let n_if = self.steps.len();
         let (steps_k, weight, weighted_sum, weighted_sq_sum) = (&mut self.steps, &mut self.weight, &mut self.weighted_sum, &mut self.weighted_sq_sum);
-        steps_k.par_chunks_mut(PIECE_BINS).zip(weight.par_chunks_mut(PIECE_BINS)).zip(weighted_sum.par_chunks_mut(PIECE_BINS)).zip(weighted_sq_sum.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
-            |(piece, (((count, w_sum), wr_sum), wrr_sum))| {
+        steps_k
+            .par_chunks_mut(PIECE_BINS)
+            .zip(weight.par_chunks_mut(PIECE_BINS))
+            .zip(weighted_sum.par_chunks_mut(PIECE_BINS))
+            .zip(weighted_sq_sum.par_chunks_mut(PIECE_BINS))
+            .enumerate()
+            .for_each(|(piece, (((count, w_sum), wr_sum), wrr_sum))| {
                 let a = piece * PIECE_BINS;
                 for step in steps {
                     // Equal-length slices: the loop has no bounds checks and no branches.
@@ -125,12 +130,17 @@ impl IfProfile {
                         wrr_sum[i] += w * r * r;
                     }
                 }
-            },
-        );
-        let placed: Vec<(i64, &Step)> = steps.iter().map(|&step| (((step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz).round() as i64, step)).collect();
+            });
+        let placed: Vec<(i64, &Step)> =
+            steps.iter().map(|&step| (((step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz).round() as i64, step)).collect();
         let (top_z, top_weight, top_value, top_if_bin) = (&mut self.top_z, &mut self.top_weight, &mut self.top_value, &mut self.top_if_bin);
-        top_z.par_chunks_mut(PIECE_BINS).zip(top_weight.par_chunks_mut(PIECE_BINS)).zip(top_value.par_chunks_mut(PIECE_BINS)).zip(top_if_bin.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
-            |(piece, (((z_top, w_top), r_top), k_top))| {
+        top_z
+            .par_chunks_mut(PIECE_BINS)
+            .zip(top_weight.par_chunks_mut(PIECE_BINS))
+            .zip(top_value.par_chunks_mut(PIECE_BINS))
+            .zip(top_if_bin.par_chunks_mut(PIECE_BINS))
+            .enumerate()
+            .for_each(|(piece, (((z_top, w_top), r_top), k_top))| {
                 // This piece holds RF bins a..b.
                 let a = (piece * PIECE_BINS) as i64;
                 let b = a + z_top.len() as i64;
@@ -154,8 +164,7 @@ impl IfProfile {
                         k_top[i] = if take { (k0 + i) as u32 } else { k_top[i] };
                     }
                 }
-            },
-        );
+            });
     }
 
     /// The profile's significances, its lines, and the RF samples in those lines.

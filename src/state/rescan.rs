@@ -90,11 +90,20 @@ impl InterferenceEvidence {
             .map(|run| {
                 let (a, b) = (run[0], run[run.len() - 1]);
                 let sigma = run.iter().map(|l| l.if_profile_sigma).fold(f64::NEG_INFINITY, f64::max);
-                let bins = if a.if_bin == b.if_bin { format!("IF bin {} (+{:.1} kHz", a.if_bin, a.if_offset_hz / 1e3) } else { format!("IF bins {}-{} (+{:.1} to +{:.1} kHz", a.if_bin, b.if_bin, a.if_offset_hz / 1e3, b.if_offset_hz / 1e3) };
+                let bins = if a.if_bin == b.if_bin {
+                    format!("IF bin {} (+{:.1} kHz", a.if_bin, a.if_offset_hz / 1e3)
+                } else {
+                    format!("IF bins {}-{} (+{:.1} to +{:.1} kHz", a.if_bin, b.if_bin, a.if_offset_hz / 1e3, b.if_offset_hz / 1e3)
+                };
                 format!("{bins} into the step, up to {sigma:.1} sigma in night {}'s IF profile)", a.night)
             })
             .collect();
-        format!("fixed-IF line at {} in {} step(s); without their samples grand {:.2} <= threshold {threshold:.3}", text.join(", "), self.n_steps, self.significance_without)
+        format!(
+            "fixed-IF line at {} in {} step(s); without their samples grand {:.2} <= threshold {threshold:.3}",
+            text.join(", "),
+            self.n_steps,
+            self.significance_without
+        )
     }
 }
 

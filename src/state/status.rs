@@ -99,7 +99,12 @@ impl StatusSummary {
             bin_width_hz: st.bin_width_hz,
             rf_span_hz: (n_rf > 0).then(|| (st.rf_origin_hz, st.rf_origin_hz + (n_rf - 1) as f64 * st.bin_width_hz)),
             covered_hz: st.coverage.iter().filter(|&&c| c > 0).count() as f64 * st.bin_width_hz,
-            candidates_by_class: ClassCounts { new: count(Class::New), persists: count(Class::Persists), cleared: count(Class::Cleared), interference: count(Class::Interference) },
+            candidates_by_class: ClassCounts {
+                new: count(Class::New),
+                persists: count(Class::Persists),
+                cleared: count(Class::Cleared),
+                interference: count(Class::Interference),
+            },
             candidates: st
                 .candidates
                 .iter()

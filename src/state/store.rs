@@ -182,7 +182,15 @@ impl State {
         state.line_night = read_i32("line_night")?;
         state.line_if_bin = read_i32("line_if_bin")?;
         let n = state.weight.len();
-        let lengths = [state.weighted_sum.len(), state.coverage.len(), state.line_weight.len(), state.line_weighted_sum.len(), state.line_steps.len(), state.line_night.len(), state.line_if_bin.len()];
+        let lengths = [
+            state.weighted_sum.len(),
+            state.coverage.len(),
+            state.line_weight.len(),
+            state.line_weighted_sum.len(),
+            state.line_steps.len(),
+            state.line_night.len(),
+            state.line_if_bin.len(),
+        ];
         if lengths.iter().any(|&l| l != n) {
             return Err(io(&sums, format!("the RF datasets differ in length ({n} in `weight`, {lengths:?} in the others)")));
         }
@@ -217,19 +225,40 @@ impl State {
                 ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
                 ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))
             };
-            write("weight", "reference-axion power^-2", "sum over steps of 1/sigma^2", &|n| file.new_dataset_builder().with_data(&self.weight).create(n)).map_err(|e| io(&tmp, e))?;
-            write("weighted_sum", "reference-axion power^-1", "sum over steps of R/sigma^2", &|n| file.new_dataset_builder().with_data(&self.weighted_sum).create(n)).map_err(|e| io(&tmp, e))?;
-            write("coverage", "steps", "steps contributing to the bin", &|n| file.new_dataset_builder().with_data(&self.coverage).create(n)).map_err(|e| io(&tmp, e))?;
-            write("line_weight", "reference-axion power^-2", "sum of 1/sigma^2 of the IF-line samples (included in weight)", &|n| file.new_dataset_builder().with_data(&self.line_weight).create(n)).map_err(|e| io(&tmp, e))?;
-            write("line_weighted_sum", "reference-axion power^-1", "sum of R/sigma^2 of the IF-line samples (included in weighted_sum)", &|n| file.new_dataset_builder().with_data(&self.line_weighted_sum).create(n)).map_err(|e| io(&tmp, e))?;
-            write("line_steps", "steps", "IF-line samples in the bin", &|n| file.new_dataset_builder().with_data(&self.line_steps).create(n)).map_err(|e| io(&tmp, e))?;
-            write("line_night", "night index", "night of the latest IF-line sample (-1 = none)", &|n| file.new_dataset_builder().with_data(&self.line_night).create(n)).map_err(|e| io(&tmp, e))?;
-            write("line_if_bin", "IF bin", "IF bin of the latest IF-line sample (-1 = none)", &|n| file.new_dataset_builder().with_data(&self.line_if_bin).create(n)).map_err(|e| io(&tmp, e))?;
+            write("weight", "reference-axion power^-2", "sum over steps of 1/sigma^2", &|n| file.new_dataset_builder().with_data(&self.weight).create(n))
+                .map_err(|e| io(&tmp, e))?;
+            write("weighted_sum", "reference-axion power^-1", "sum over steps of R/sigma^2", &|n| {
+                file.new_dataset_builder().with_data(&self.weighted_sum).create(n)
+            })
+            .map_err(|e| io(&tmp, e))?;
+            write("coverage", "steps", "steps contributing to the bin", &|n| file.new_dataset_builder().with_data(&self.coverage).create(n))
+                .map_err(|e| io(&tmp, e))?;
+            write("line_weight", "reference-axion power^-2", "sum of 1/sigma^2 of the IF-line samples (included in weight)", &|n| {
+                file.new_dataset_builder().with_data(&self.line_weight).create(n)
+            })
+            .map_err(|e| io(&tmp, e))?;
+            write("line_weighted_sum", "reference-axion power^-1", "sum of R/sigma^2 of the IF-line samples (included in weighted_sum)", &|n| {
+                file.new_dataset_builder().with_data(&self.line_weighted_sum).create(n)
+            })
+            .map_err(|e| io(&tmp, e))?;
+            write("line_steps", "steps", "IF-line samples in the bin", &|n| file.new_dataset_builder().with_data(&self.line_steps).create(n))
+                .map_err(|e| io(&tmp, e))?;
+            write("line_night", "night index", "night of the latest IF-line sample (-1 = none)", &|n| {
+                file.new_dataset_builder().with_data(&self.line_night).create(n)
+            })
+            .map_err(|e| io(&tmp, e))?;
+            write("line_if_bin", "IF bin", "IF bin of the latest IF-line sample (-1 = none)", &|n| {
+                file.new_dataset_builder().with_data(&self.line_if_bin).create(n)
+            })
+            .map_err(|e| io(&tmp, e))?;
             for night in &self.nights {
                 let group = file.create_group(&format!("night-{}", night.index)).map_err(|e| io(&tmp, e))?;
-                write("if_profile_sigma", "normal sigma", "excess scatter of the night's steps per IF bin (NaN = fewer than 3 steps)", &|n| group.new_dataset_builder().with_data(&night.if_profile_sigma).create(n))
+                write("if_profile_sigma", "normal sigma", "excess scatter of the night's steps per IF bin (NaN = fewer than 3 steps)", &|n| {
+                    group.new_dataset_builder().with_data(&night.if_profile_sigma).create(n)
+                })
+                .map_err(|e| io(&tmp, e))?;
+                write("if_steps", "steps", "steps with a valid sample per IF bin", &|n| group.new_dataset_builder().with_data(&night.if_steps).create(n))
                     .map_err(|e| io(&tmp, e))?;
-                write("if_steps", "steps", "steps with a valid sample per IF bin", &|n| group.new_dataset_builder().with_data(&night.if_steps).create(n)).map_err(|e| io(&tmp, e))?;
             }
             file.close().map_err(|e| io(&tmp, e))?;
         }

@@ -3,8 +3,8 @@
 
 use crate::common::{DEMO_SCENARIO, PIPELINE, null_scenario};
 use axsift::calib::{self, CampaignSpec, NoiseSource};
-use axsift::{config, sim};
 use axsift::state::State;
+use axsift::{config, sim};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
@@ -96,12 +96,19 @@ pub fn assert_same_reduction(reference: (&Path, &Path), merged: (&Path, &Path)) 
     }
 }
 
-
 /// A small campaign: the demo night at 200 steps, one null and one eta realisation, two SNRs
 /// with two realisations each. Writes its scenario and spec files into `dir`, runs it on this
 /// machine and writes the reference calibration to `dir/ref-cal`; returns the three paths.
 pub fn campaign_reference(dir: &Path) -> (PathBuf, PathBuf, PathBuf) {
-    let spec = CampaignSpec { seed: 3, null_realisations: 1, eta_realisations: 1, eta_snr: 20.0, snr_grid: vec![4.0, 6.0], realisations_per_snr: 2, max_injections_per_realisation: 20 };
+    let spec = CampaignSpec {
+        seed: 3,
+        null_realisations: 1,
+        eta_realisations: 1,
+        eta_snr: 20.0,
+        snr_grid: vec![4.0, 6.0],
+        realisations_per_snr: 2,
+        max_injections_per_realisation: 20,
+    };
     let scenario_text = DEMO_SCENARIO.replace("n_steps = 600", "n_steps = 200");
     assert!(scenario_text.contains("n_steps = 200"));
     let (scenario_file, spec_file) = (dir.join("scenario.toml"), dir.join("spec.toml"));
