@@ -110,15 +110,17 @@ struct Lorentzian {
 }
 
 /// Multiplies each bin of `values` by its scale and refills `sigma` with scale / sqrt(N)
-/// (infinite where the value is not finite). `sigma` is written by `extend` rather than
-/// zero-filled first, and the two buffers come in as separate arguments, so the compiler
-/// knows they are distinct and vectorises the loop.
+/// (infinite where the value is not finite). A plain loop over two equal-length slices with
+/// the bin index counted as `i32` (a step has at most `runfile::MAX_BINS_PER_STEP` = 2^20
+/// bins), which converts to f64 by a packed instruction where `usize` has none: the loop
+/// vectorises.
 fn scale_bins(values: &mut [f64], sigma: &mut Vec<f64>, line: Lorentzian, inv_root_n: f64) {
     sigma.clear();
-    sigma.extend(values.iter_mut().enumerate().map(|(k, v)| {
-        let detuning = line.detuning_0 + k as f64 * line.detuning_step;
+    sigma.resize(values.len(), 0.0);
+    for (k, (v, s)) in (0i32..).zip(values.iter_mut().zip(sigma.iter_mut())) {
+        let detuning = line.detuning_0 + f64::from(k) * line.detuning_step;
         let scale = line.on_resonance * (1.0 + line.four_q2 * detuning * detuning);
         *v *= scale;
-        if finite(*v) { scale * inv_root_n } else { f64::INFINITY }
-    }));
+        *s = if finite(*v) { scale * inv_root_n } else { f64::INFINITY };
+    }
 }

@@ -44,10 +44,10 @@ pub struct IfProfile {
     weight: Vec<f64>,
     weighted_sum: Vec<f64>,
     weighted_sq_sum: Vec<f64>,
-    /// Per RF bin of the night's grid: the most significant sample (r / sigma), its weight,
+    /// Per RF bin of the night's grid: the most significant sample (r / sigma), its sigma,
     /// value and IF bin.
     top_z: Vec<f64>,
-    top_weight: Vec<f64>,
+    top_sigma: Vec<f64>,
     top_value: Vec<f64>,
     top_if_bin: Vec<u32>,
 }
@@ -96,7 +96,7 @@ impl IfProfile {
             weighted_sum: vec![0.0; night.n_bins],
             weighted_sq_sum: vec![0.0; night.n_bins],
             top_z: vec![f64::NEG_INFINITY; n_rf],
-            top_weight: vec![0.0; n_rf],
+            top_sigma: vec![f64::INFINITY; n_rf],
             top_value: vec![0.0; n_rf],
             top_if_bin: vec![0; n_rf],
         }
@@ -121,26 +121,19 @@ impl IfProfile {
                     // Equal-length slices: the loop has no bounds checks and no branches.
                     let n = count.len().min(step.values.len().saturating_sub(a)).min(step.sigma.len().saturating_sub(a));
                     let (values, sigma) = (&step.values[a..a + n], &step.sigma[a..a + n]);
-                    let (count, w_sum, wr_sum, wrr_sum) = (&mut count[..n], &mut w_sum[..n], &mut wr_sum[..n], &mut wrr_sum[..n]);
-                    for i in 0..n {
-                        let (r, w, valid) = sample(values[i], sigma[i]);
-                        count[i] += u32::from(valid);
-                        w_sum[i] += w;
-                        wr_sum[i] += w * r;
-                        wrr_sum[i] += w * r * r;
-                    }
+                    add_to_sums(&mut count[..n], &mut w_sum[..n], &mut wr_sum[..n], &mut wrr_sum[..n], values, sigma);
                 }
             });
         let placed: Vec<(i64, &Step)> =
             steps.iter().map(|&step| (((step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz).round() as i64, step)).collect();
-        let (top_z, top_weight, top_value, top_if_bin) = (&mut self.top_z, &mut self.top_weight, &mut self.top_value, &mut self.top_if_bin);
+        let (top_z, top_sigma, top_value, top_if_bin) = (&mut self.top_z, &mut self.top_sigma, &mut self.top_value, &mut self.top_if_bin);
         top_z
             .par_chunks_mut(PIECE_BINS)
-            .zip(top_weight.par_chunks_mut(PIECE_BINS))
+            .zip(top_sigma.par_chunks_mut(PIECE_BINS))
             .zip(top_value.par_chunks_mut(PIECE_BINS))
             .zip(top_if_bin.par_chunks_mut(PIECE_BINS))
             .enumerate()
-            .for_each(|(piece, (((z_top, w_top), r_top), k_top))| {
+            .for_each(|(piece, (((z_top, s_top), r_top), k_top))| {
                 // This piece holds RF bins a..b.
                 let a = (piece * PIECE_BINS) as i64;
                 let b = a + z_top.len() as i64;
@@ -152,17 +145,9 @@ impl IfProfile {
                     }
                     let (k0, i0, n) = ((j0 - first) as usize, (j0 - a) as usize, (j1 - j0) as usize);
                     let (values, sigma) = (&step.values[k0..k0 + n], &step.sigma[k0..k0 + n]);
-                    let (z_top, w_top, r_top, k_top) = (&mut z_top[i0..i0 + n], &mut w_top[i0..i0 + n], &mut r_top[i0..i0 + n], &mut k_top[i0..i0 + n]);
-                    for i in 0..n {
-                        let (r, w, valid) = sample(values[i], sigma[i]);
-                        let z = r * w.sqrt();
-                        // Strictly greater: of equal samples the first in step order stays.
-                        let take = valid && z > z_top[i];
-                        z_top[i] = if take { z } else { z_top[i] };
-                        w_top[i] = if take { w } else { w_top[i] };
-                        r_top[i] = if take { r } else { r_top[i] };
-                        k_top[i] = if take { (k0 + i) as u32 } else { k_top[i] };
-                    }
+                    let range = i0..i0 + n;
+                    // IF bins fit in u32: a step has at most `runfile::MAX_BINS_PER_STEP` (2^20) bins.
+                    keep_top(&mut z_top[range.clone()], &mut s_top[range.clone()], &mut r_top[range.clone()], &mut k_top[range], values, sigma, k0 as u32);
                 }
             });
     }
@@ -207,8 +192,9 @@ impl IfProfile {
         for j in 0..n_rf {
             let k = self.top_if_bin[j] as usize;
             if self.top_z[j].is_finite() && in_line[k] {
-                scan.removed_weight[j] = self.top_weight[j];
-                scan.removed_weighted_sum[j] = self.top_weight[j] * self.top_value[j];
+                let weight = 1.0 / (self.top_sigma[j] * self.top_sigma[j]);
+                scan.removed_weight[j] = weight;
+                scan.removed_weighted_sum[j] = weight * self.top_value[j];
                 scan.removed_if_bin[j] = k as i32;
             }
         }
@@ -216,12 +202,47 @@ impl IfProfile {
     }
 }
 
-/// A bin's value r and weight 1/sigma^2, and whether it is valid (r and sigma finite,
-/// sigma > 0). An invalid bin gives value and weight 0, so sums can take it without a branch.
+/// Adds one step's samples (equal-length slices) to the per-IF-bin sums. An invalid sample
+/// enters as value 0, sigma 1 and weight factor 0, so every bin takes the same arithmetic
+/// (one division, no branch) and the loop vectorises; the buffers come in as separate
+/// arguments, so the compiler knows they are distinct.
+fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], values: &[f64], sigma: &[f64]) {
+    let n = count.len().min(w_sum.len()).min(wr_sum.len()).min(wrr_sum.len()).min(values.len()).min(sigma.len());
+    for i in 0..n {
+        let valid = is_sample(values[i], sigma[i]);
+        let (r, s, m) = if valid { (values[i], sigma[i], 1.0) } else { (0.0, 1.0, 0.0) };
+        let inv = 1.0 / s;
+        let z = r * inv;
+        count[i] += u32::from(valid);
+        w_sum[i] += m * (inv * inv);
+        wr_sum[i] += z * inv;
+        wrr_sum[i] += z * z;
+    }
+}
+
+/// Replaces, bin by bin, the kept most significant sample (z = r / sigma, sigma, value, IF
+/// bin) by one step's sample where that is valid and more significant. The test is
+/// r > z_top sigma (sigma > 0), so the division is done only for a new maximum, which is
+/// rare after the first few steps; of samples equal to rounding the first in step order
+/// stays. `first_if_bin` is the IF bin of the slices' first entry.
+fn keep_top(z_top: &mut [f64], s_top: &mut [f64], r_top: &mut [f64], k_top: &mut [u32], values: &[f64], sigma: &[f64], first_if_bin: u32) {
+    let n = z_top.len().min(s_top.len()).min(r_top.len()).min(k_top.len()).min(values.len()).min(sigma.len());
+    for i in 0..n {
+        let (r, s) = (values[i], sigma[i]);
+        if is_sample(r, s) & (r > z_top[i] * s) {
+            z_top[i] = r / s;
+            s_top[i] = s;
+            r_top[i] = r;
+            k_top[i] = first_if_bin + i as u32;
+        }
+    }
+}
+
+/// Whether a bin is a valid sample: value and sigma finite, sigma > 0. Written with `&`, so
+/// callers' loops need no branch for it.
 #[inline]
-fn sample(r: f64, sigma: f64) -> (f64, f64, bool) {
-    let valid = finite(r) && sigma > 0.0 && finite(sigma);
-    (if valid { r } else { 0.0 }, if valid { 1.0 / (sigma * sigma) } else { 0.0 }, valid)
+fn is_sample(r: f64, sigma: f64) -> bool {
+    finite(r) & (sigma > 0.0) & finite(sigma)
 }
 
 /// Normal significance of a chi-square value with `nu` degrees of freedom (Wilson-Hilferty:
