@@ -19,7 +19,7 @@ fn smoothing(c: &mut Criterion) {
     let plan = sg.plan(N_BINS).unwrap();
     let x = input(N_BINS);
     let mut out = vec![0.0; N_BINS];
-    let mut scratch = SmoothingScratch::default();
+    let mut scratch: SmoothingScratch = SmoothingScratch::default();
     let mut g = c.benchmark_group("savgol_w401_d4_32768");
     g.throughput(Throughput::Elements(N_BINS as u64));
     g.bench_function("planned_fft", |b| b.iter(|| plan.smooth_with(black_box(&x), &mut out, &mut scratch).unwrap()));
@@ -40,7 +40,7 @@ fn lineshape(c: &mut Criterion) {
     let n = 1 << 16;
     let x = input(n);
     let mut out = vec![0.0; n];
-    let mut scratch = CorrelationScratch::default();
+    let mut scratch: CorrelationScratch = CorrelationScratch::default();
     let mut g = c.benchmark_group(format!("lineshape_k{}_65536", kernel.len()));
     g.throughput(Throughput::Elements(n as u64));
     g.bench_function("fft", |b| b.iter(|| corr.correlate_with(black_box(&x), &mut out, &mut scratch)));
