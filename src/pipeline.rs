@@ -192,7 +192,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
         let mut cut_here = Vec::new();
         for_each_chunk(&readers, &night, injection, &mut steps, |chunk, fresh| {
             let (before, rest) = step_stages.split_at_mut(s);
-            let kept = run_stages(before, chunk, fresh, &night, &mut cut_here, paths);
+            let kept = run_stages(before, chunk, fresh, &night, &mut cut_here, paths, false);
             rest[0].1.survey_all(&kept);
             Ok(())
         })?;
@@ -204,7 +204,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     let mut done = 0;
     for_each_chunk(&readers, &night, injection, &mut steps, |chunk, fresh| {
         let n = chunk.len();
-        let kept = run_stages(&mut step_stages, chunk, fresh, &night, &mut cuts, paths);
+        let kept = run_stages(&mut step_stages, chunk, fresh, &night, &mut cuts, paths, true);
         combiner.add_all(&kept).map_err(ReduceError::Night)?;
         if_profile.add_all(&kept);
         used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
@@ -221,8 +221,9 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
 }
 
 /// Loads each step of a chunk from `fresh` and applies `stages` to it, in parallel (loading
-/// and stages in one task per step, so the step's bins are still in that core's cache);
-/// returns the kept steps in order and records cuts.
+/// and stages in one task per step, so the step's bins are still in that core's cache), and
+/// with `standardise` fills each kept step's [`Step::standard`] in the same task; returns the
+/// kept steps in order and records cuts.
 fn run_stages<'a>(
     stages: &mut [(String, Box<dyn StepStage>)],
     chunk: &'a mut [Step],
@@ -230,6 +231,7 @@ fn run_stages<'a>(
     night: &NightInfo,
     cuts: &mut Vec<CutStep>,
     paths: &[PathBuf],
+    standardise: bool,
 ) -> Vec<&'a Step> {
     let stages: &[(String, Box<dyn StepStage>)] = stages;
     let verdicts: Vec<Option<(String, String)>> = chunk
@@ -237,10 +239,14 @@ fn run_stages<'a>(
         .enumerate()
         .map(|(r, step)| {
             fresh.load(r, step);
-            stages.iter().find_map(|(kind, stage)| match stage.apply(step, night) {
+            let cut = stages.iter().find_map(|(kind, stage)| match stage.apply(step, night) {
                 Verdict::Keep => None,
                 Verdict::Cut(reason) => Some((kind.clone(), reason)),
-            })
+            });
+            if standardise && cut.is_none() {
+                step.standardise();
+            }
+            cut
         })
         .collect();
     let mut kept = Vec::new();
@@ -368,7 +374,15 @@ fn place_steps(steps: &mut Vec<Step>, raw: &RawChunk, reader: &RunReader) {
     let n = raw.rows.len();
     let meta = &reader.steps()[raw.first_row..raw.first_row + n];
     if steps.len() < n {
-        steps.resize_with(n, || Step { index: 0, file: 0, index_in_file: 0, meta: meta[0], values: Vec::new(), sigma: Vec::new() });
+        steps.resize_with(n, || Step {
+            index: 0,
+            file: 0,
+            index_in_file: 0,
+            meta: meta[0],
+            values: Vec::new(),
+            sigma: Vec::new(),
+            standard: Default::default(),
+        });
     }
     for (r, (step, meta)) in steps[..n].iter_mut().zip(meta).enumerate() {
         step.index = raw.first_index + r;

@@ -145,8 +145,9 @@ fn baseline_stage_matches_its_formula_with_gaps() {
         }
         v
     };
-    let steps: Vec<Step> =
-        (0..4).map(|i| Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values: raw(&mut rng), sigma: Vec::new() }).collect();
+    let steps: Vec<Step> = (0..4)
+        .map(|i| Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values: raw(&mut rng), sigma: Vec::new(), standard: Default::default() })
+        .collect();
     for s in &steps {
         stage.survey(s);
     }
@@ -205,7 +206,7 @@ fn rescale_stage_matches_signal_power_per_bin() {
     let mut rng = StdRng::seed_from_u64(4);
     let delta: Vec<f64> =
         (0..n).map(|k| if k == 77 { f64::NAN } else { 0.007 * <StandardNormal as Distribution<f64>>::sample(&StandardNormal, &mut rng) }).collect();
-    let mut step = Step { index: 0, file: 0, index_in_file: 0, meta: m, values: delta.clone(), sigma: Vec::new() };
+    let mut step = Step { index: 0, file: 0, index_in_file: 0, meta: m, values: delta.clone(), sigma: Vec::new(), standard: Default::default() };
     assert_eq!(stage.apply(&mut step, &night), Verdict::Keep);
     let h = &night.headers[0];
     let scope = Haloscope { magnet_field_t: h.magnet_field_t, cavity_volume_m3: h.cavity_volume_m3, form_factor: h.form_factor };
@@ -274,7 +275,8 @@ fn fft_filter_matches_direct_sums() {
 }
 
 /// The combining stage's batched `add_all` (RF pieces in parallel) gives the same spectrum,
-/// bit for bit, as adding the steps one by one: overlapping steps of different lengths, NaN
+/// bit for bit, as adding the steps one by one, and both equal the maximum-likelihood mean and
+/// sigma computed from the steps' values and sigma within 1e-12 (of sigma, relative): overlapping steps of different lengths, NaN
 /// values, infinite and zero sigma, batches that start mid-grid and a step off the grid.
 #[test]
 fn combine_add_all_equals_steps_added_one_by_one() {
@@ -308,7 +310,9 @@ fn combine_add_all_equals_steps_added_one_by_one() {
             }
             let mut meta = meta(start + (i * shift) as f64 * 100.0, n);
             meta.timestamp_s += i as f64;
-            Step { index: i, file: 0, index_in_file: i, meta, values, sigma }
+            let mut step = Step { index: i, file: 0, index_in_file: i, meta, values, sigma, standard: Default::default() };
+            step.standardise();
+            step
         })
         .collect();
     let mut one_by_one = combiner();
@@ -325,6 +329,30 @@ fn combine_add_all_equals_steps_added_one_by_one() {
     assert_eq!(bits(&a.combined_sigma), bits(&b.combined_sigma));
     assert_eq!(a.coverage, b.coverage);
     assert!(a.coverage.iter().any(|&c| c > 1));
+    // Against the maximum-likelihood formula on values and sigma, valid bins only (value and
+    // sigma finite, sigma > 0): mean sum(r / s^2) / sum(1 / s^2), sigma sum(1 / s^2)^(-1/2).
+    let n_rf = a.combined.len();
+    let (mut num, mut den, mut count) = (vec![0.0; n_rf], vec![0.0; n_rf], vec![0u32; n_rf]);
+    for step in &steps {
+        let first = ((step.meta.start_freq_hz - start) / 100.0).round() as usize;
+        for (k, (&r, &s)) in step.values.iter().zip(&step.sigma).enumerate() {
+            if r.is_finite() && s.is_finite() && s > 0.0 {
+                num[first + k] += r / (s * s);
+                den[first + k] += 1.0 / (s * s);
+                count[first + k] += 1;
+            }
+        }
+    }
+    assert_eq!(a.coverage, count);
+    for j in 0..n_rf {
+        if count[j] == 0 {
+            assert!(a.combined[j].is_nan() && a.combined_sigma[j] == f64::INFINITY, "RF bin {j}");
+            continue;
+        }
+        let (mean, sigma) = (num[j] / den[j], den[j].sqrt().recip());
+        assert!((a.combined[j] - mean).abs() <= 1e-12 * sigma, "RF bin {j}: {} vs {mean}", a.combined[j]);
+        assert!((a.combined_sigma[j] / sigma - 1.0).abs() <= 1e-12, "RF bin {j}");
+    }
 
     let mut off_grid = steps[3].clone();
     off_grid.meta.start_freq_hz += 40.0;
@@ -348,7 +376,7 @@ fn baseline_survey_all_equals_steps_surveyed_one_by_one() {
             for k in (i..n).step_by(331) {
                 values[k] = f64::NAN;
             }
-            Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values, sigma: Vec::new() }
+            Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values, sigma: Vec::new(), standard: Default::default() }
         })
         .collect();
     let (mut one_by_one, mut batched) = (build(), build());

@@ -117,6 +117,7 @@ fn for_each_chunk(readers: &[crate::runfile::RunReader], f: &mut dyn FnMut(&mut 
                     meta: reader.steps()[start + r],
                     values: row.to_vec(),
                     sigma: Vec::new(),
+                    standard: Default::default(),
                 })
                 .collect();
             index += end - start;

@@ -4,7 +4,7 @@
 //! A step whose start is not a whole number of bins from the grid origin (within
 //! `max_misalignment_bins`) is an error naming it: steps are never silently shifted.
 
-use super::{Combiner, NightInfo, Spectrum, Step, finite};
+use super::{Combiner, NightInfo, Spectrum, Standardised, Step};
 use crate::config::{BuildContext, Built, StageConfig};
 use rayon::prelude::*;
 use serde::Deserialize;
@@ -81,33 +81,26 @@ impl MlCombiner {
     }
 }
 
-/// Adds `values` with standard deviations `sigmas` into the sums of the same RF bins.
-/// Equal-length slices and no branches: the loop vectorises.
-fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], values: &[f64], sigmas: &[f64]) {
-    let n = sums.len().min(weights.len()).min(coverage.len()).min(values.len()).min(sigmas.len());
-    let (sums, weights, coverage, values, sigmas) = (&mut sums[..n], &mut weights[..n], &mut coverage[..n], &values[..n], &sigmas[..n]);
+/// Adds a step's standardised bins (significance `z`, inverse sigma `inv`, both 0 where there
+/// is no sample) into the sums of the same RF bins: weighted value z inv, weight inv^2, one
+/// more step where inv > 0. Equal-length slices, no division and no branch: the loop
+/// vectorises.
+fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], z: &[f64], inv: &[f64]) {
+    let n = sums.len().min(weights.len()).min(coverage.len()).min(z.len()).min(inv.len());
+    let (sums, weights, coverage, z, inv) = (&mut sums[..n], &mut weights[..n], &mut coverage[..n], &z[..n], &inv[..n]);
     for k in 0..n {
-        let (r, s) = (values[k], sigmas[k]);
-        let valid = finite(r) & (s > 0.0) & (s <= f64::MAX);
-        let w = if valid { 1.0 / (s * s) } else { 0.0 };
-        // Adding +0.0 leaves a sum that started at +0.0 unchanged.
-        sums[k] += if valid { w * r } else { 0.0 };
-        weights[k] += w;
-        coverage[k] += u32::from(valid);
+        sums[k] += z[k] * inv[k];
+        weights[k] += inv[k] * inv[k];
+        coverage[k] += u32::from(inv[k] > 0.0);
     }
 }
 
 impl Combiner for MlCombiner {
     fn add(&mut self, step: &Step) -> Result<(), String> {
         let first = self.first_bin(step)?;
-        let n = step.values.len().min(step.sigma.len());
-        accumulate(
-            &mut self.weighted_sum[first..first + n],
-            &mut self.weight[first..first + n],
-            &mut self.coverage[first..first + n],
-            &step.values,
-            &step.sigma,
-        );
+        let Standardised { z, inverse_sigma } = &step.standard;
+        let n = z.len().min(inverse_sigma.len());
+        accumulate(&mut self.weighted_sum[first..first + n], &mut self.weight[first..first + n], &mut self.coverage[first..first + n], z, inverse_sigma);
         Ok(())
     }
     /// Pieces of [`PIECE_BINS`] RF bins in parallel; within a piece the steps are added in
@@ -116,7 +109,7 @@ impl Combiner for MlCombiner {
     fn add_all(&mut self, steps: &[&Step]) -> Result<(), String> {
         let placed: Vec<(usize, &Step)> = steps.iter().map(|&step| Ok((self.first_bin(step)?, step))).collect::<Result<_, String>>()?;
         let Some(lo) = placed.iter().map(|&(first, _)| first).min() else { return Ok(()) };
-        let hi = placed.iter().map(|&(first, step)| first + step.values.len().min(step.sigma.len())).max().unwrap_or(lo);
+        let hi = placed.iter().map(|&(first, step)| first + step.standard.z.len().min(step.standard.inverse_sigma.len())).max().unwrap_or(lo);
         let (sums, weights, coverage) = (&mut self.weighted_sum[lo..hi], &mut self.weight[lo..hi], &mut self.coverage[lo..hi]);
         sums.par_chunks_mut(PIECE_BINS).zip(weights.par_chunks_mut(PIECE_BINS)).zip(coverage.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
             |(piece, ((sums, weights), coverage))| {
@@ -124,11 +117,12 @@ impl Combiner for MlCombiner {
                 let a = lo + piece * PIECE_BINS;
                 let b = a + sums.len();
                 for &(first, step) in &placed {
-                    let n = step.values.len().min(step.sigma.len());
+                    let Standardised { z, inverse_sigma } = &step.standard;
+                    let n = z.len().min(inverse_sigma.len());
                     let (from, to) = (first.max(a), (first + n).min(b));
                     if from < to {
                         let (here, there) = (from - a..to - a, from - first..to - first);
-                        accumulate(&mut sums[here.clone()], &mut weights[here.clone()], &mut coverage[here], &step.values[there.clone()], &step.sigma[there]);
+                        accumulate(&mut sums[here.clone()], &mut weights[here.clone()], &mut coverage[here], &z[there.clone()], &inverse_sigma[there]);
                     }
                 }
             },

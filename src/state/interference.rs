@@ -22,7 +22,7 @@
 //! step, arrays of the IF and RF lengths; the accumulation runs in step order, so the result
 //! does not depend on the thread count.
 
-use crate::stage::{NightInfo, Step, finite};
+use crate::stage::{NightInfo, Standardised, Step};
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
@@ -44,11 +44,10 @@ pub struct IfProfile {
     weight: Vec<f64>,
     weighted_sum: Vec<f64>,
     weighted_sq_sum: Vec<f64>,
-    /// Per RF bin of the night's grid: the most significant sample (r / sigma), its sigma,
-    /// value and IF bin.
+    /// Per RF bin of the night's grid: the most significant sample (z = r / sigma), its
+    /// 1 / sigma and IF bin.
     top_z: Vec<f64>,
-    top_sigma: Vec<f64>,
-    top_value: Vec<f64>,
+    top_inverse_sigma: Vec<f64>,
     top_if_bin: Vec<u32>,
 }
 
@@ -96,14 +95,13 @@ impl IfProfile {
             weighted_sum: vec![0.0; night.n_bins],
             weighted_sq_sum: vec![0.0; night.n_bins],
             top_z: vec![f64::NEG_INFINITY; n_rf],
-            top_sigma: vec![f64::INFINITY; n_rf],
-            top_value: vec![0.0; n_rf],
+            top_inverse_sigma: vec![0.0; n_rf],
             top_if_bin: vec![0; n_rf],
         }
     }
 
-    /// Adds consecutive steps as they enter the combination, in step order (values and sigma
-    /// in reference-axion units). IF bins and RF bins are worked on in pieces in parallel;
+    /// Adds consecutive steps as they enter the combination, in step order, standardised
+    /// ([`Step::standard`], reference-axion units). IF bins and RF bins are worked on in pieces in parallel;
     /// within a piece the steps are taken in their order, so the sums and the kept samples do
     /// not depend on the number of threads.
     pub fn add_all(&mut self, steps: &[&Step]) {
@@ -118,38 +116,33 @@ impl IfProfile {
             .for_each(|(piece, (((count, w_sum), wr_sum), wrr_sum))| {
                 let a = piece * PIECE_BINS;
                 for step in steps {
-                    // Equal-length slices: the loop has no bounds checks and no branches.
-                    let n = count.len().min(step.values.len().saturating_sub(a)).min(step.sigma.len().saturating_sub(a));
-                    let (values, sigma) = (&step.values[a..a + n], &step.sigma[a..a + n]);
-                    add_to_sums(&mut count[..n], &mut w_sum[..n], &mut wr_sum[..n], &mut wrr_sum[..n], values, sigma);
+                    let Standardised { z, inverse_sigma } = &step.standard;
+                    let n = count.len().min(z.len().saturating_sub(a)).min(inverse_sigma.len().saturating_sub(a));
+                    add_to_sums(&mut count[..n], &mut w_sum[..n], &mut wr_sum[..n], &mut wrr_sum[..n], &z[a..a + n], &inverse_sigma[a..a + n]);
                 }
             });
         let placed: Vec<(i64, &Step)> =
             steps.iter().map(|&step| (((step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz).round() as i64, step)).collect();
-        let (top_z, top_sigma, top_value, top_if_bin) = (&mut self.top_z, &mut self.top_sigma, &mut self.top_value, &mut self.top_if_bin);
-        top_z
-            .par_chunks_mut(PIECE_BINS)
-            .zip(top_sigma.par_chunks_mut(PIECE_BINS))
-            .zip(top_value.par_chunks_mut(PIECE_BINS))
-            .zip(top_if_bin.par_chunks_mut(PIECE_BINS))
-            .enumerate()
-            .for_each(|(piece, (((z_top, s_top), r_top), k_top))| {
+        let (top_z, top_inverse_sigma, top_if_bin) = (&mut self.top_z, &mut self.top_inverse_sigma, &mut self.top_if_bin);
+        top_z.par_chunks_mut(PIECE_BINS).zip(top_inverse_sigma.par_chunks_mut(PIECE_BINS)).zip(top_if_bin.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
+            |(piece, ((z_top, inv_top), k_top))| {
                 // This piece holds RF bins a..b.
                 let a = (piece * PIECE_BINS) as i64;
                 let b = a + z_top.len() as i64;
                 for &(first, step) in &placed {
-                    let len = step.values.len().min(step.sigma.len()).min(n_if) as i64;
+                    let Standardised { z, inverse_sigma } = &step.standard;
+                    let len = z.len().min(inverse_sigma.len()).min(n_if) as i64;
                     let (j0, j1) = (first.max(a), (first + len).min(b));
                     if j0 >= j1 {
                         continue;
                     }
                     let (k0, i0, n) = ((j0 - first) as usize, (j0 - a) as usize, (j1 - j0) as usize);
-                    let (values, sigma) = (&step.values[k0..k0 + n], &step.sigma[k0..k0 + n]);
-                    let range = i0..i0 + n;
+                    let (here, there) = (i0..i0 + n, k0..k0 + n);
                     // IF bins fit in u32: a step has at most `runfile::MAX_BINS_PER_STEP` (2^20) bins.
-                    keep_top(&mut z_top[range.clone()], &mut s_top[range.clone()], &mut r_top[range.clone()], &mut k_top[range], values, sigma, k0 as u32);
+                    keep_top(&mut z_top[here.clone()], &mut inv_top[here.clone()], &mut k_top[here], &z[there.clone()], &inverse_sigma[there], k0 as u32);
                 }
-            });
+            },
+        );
     }
 
     /// The profile's significances, its lines, and the RF samples in those lines.
@@ -192,9 +185,9 @@ impl IfProfile {
         for j in 0..n_rf {
             let k = self.top_if_bin[j] as usize;
             if self.top_z[j].is_finite() && in_line[k] {
-                let weight = 1.0 / (self.top_sigma[j] * self.top_sigma[j]);
-                scan.removed_weight[j] = weight;
-                scan.removed_weighted_sum[j] = weight * self.top_value[j];
+                let (z, inv) = (self.top_z[j], self.top_inverse_sigma[j]);
+                scan.removed_weight[j] = inv * inv;
+                scan.removed_weighted_sum[j] = z * inv;
                 scan.removed_if_bin[j] = k as i32;
             }
         }
@@ -202,47 +195,33 @@ impl IfProfile {
     }
 }
 
-/// Adds one step's samples (equal-length slices) to the per-IF-bin sums. An invalid sample
-/// enters as value 0, sigma 1 and weight factor 0, so every bin takes the same arithmetic
-/// (one division, no branch) and the loop vectorises; the buffers come in as separate
-/// arguments, so the compiler knows they are distinct.
-fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], values: &[f64], sigma: &[f64]) {
-    let n = count.len().min(w_sum.len()).min(wr_sum.len()).min(wrr_sum.len()).min(values.len()).min(sigma.len());
+/// Adds one step's standardised samples (equal-length slices; z and 1 / sigma, both 0 where
+/// there is no sample) to the per-IF-bin sums: w = inv^2, w r = z inv, w r^2 = z^2. No
+/// division and no branch, and the buffers come in as separate arguments, so the compiler
+/// knows they are distinct: the loop vectorises.
+fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], z: &[f64], inv: &[f64]) {
+    let n = count.len().min(w_sum.len()).min(wr_sum.len()).min(wrr_sum.len()).min(z.len()).min(inv.len());
     for i in 0..n {
-        let valid = is_sample(values[i], sigma[i]);
-        let (r, s, m) = if valid { (values[i], sigma[i], 1.0) } else { (0.0, 1.0, 0.0) };
-        let inv = 1.0 / s;
-        let z = r * inv;
-        count[i] += u32::from(valid);
-        w_sum[i] += m * (inv * inv);
-        wr_sum[i] += z * inv;
-        wrr_sum[i] += z * z;
+        count[i] += u32::from(inv[i] > 0.0);
+        w_sum[i] += inv[i] * inv[i];
+        wr_sum[i] += z[i] * inv[i];
+        wrr_sum[i] += z[i] * z[i];
     }
 }
 
-/// Replaces, bin by bin, the kept most significant sample (z = r / sigma, sigma, value, IF
-/// bin) by one step's sample where that is valid and more significant. The test is
-/// r > z_top sigma (sigma > 0), so the division is done only for a new maximum, which is
-/// rare after the first few steps; of samples equal to rounding the first in step order
-/// stays. `first_if_bin` is the IF bin of the slices' first entry.
-fn keep_top(z_top: &mut [f64], s_top: &mut [f64], r_top: &mut [f64], k_top: &mut [u32], values: &[f64], sigma: &[f64], first_if_bin: u32) {
-    let n = z_top.len().min(s_top.len()).min(r_top.len()).min(k_top.len()).min(values.len()).min(sigma.len());
+/// Replaces, bin by bin, the kept most significant sample (z, 1 / sigma, IF bin) by one
+/// step's sample where that is a sample (inv > 0) and strictly more significant, so that of
+/// equal samples the first in step order stays. `first_if_bin` is the IF bin of the slices'
+/// first entry. A new maximum is rare after the first few steps, so the branch is cheap.
+fn keep_top(z_top: &mut [f64], inv_top: &mut [f64], k_top: &mut [u32], z: &[f64], inv: &[f64], first_if_bin: u32) {
+    let n = z_top.len().min(inv_top.len()).min(k_top.len()).min(z.len()).min(inv.len());
     for i in 0..n {
-        let (r, s) = (values[i], sigma[i]);
-        if is_sample(r, s) & (r > z_top[i] * s) {
-            z_top[i] = r / s;
-            s_top[i] = s;
-            r_top[i] = r;
+        if (inv[i] > 0.0) & (z[i] > z_top[i]) {
+            z_top[i] = z[i];
+            inv_top[i] = inv[i];
             k_top[i] = first_if_bin + i as u32;
         }
     }
-}
-
-/// Whether a bin is a valid sample: value and sigma finite, sigma > 0. Written with `&`, so
-/// callers' loops need no branch for it.
-#[inline]
-fn is_sample(r: f64, sigma: f64) -> bool {
-    finite(r) & (sigma > 0.0) & finite(sigma)
 }
 
 /// Normal significance of a chi-square value with `nu` degrees of freedom (Wilson-Hilferty:
