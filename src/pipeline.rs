@@ -13,11 +13,12 @@ use rayon::prelude::*;
 use std::path::PathBuf;
 use std::sync::mpsc;
 
-/// Steps read and processed together (32 x 32768 bins: 4 MB as f32 on disk, 16 MB of step
-/// buffers as f64 values and sigma).
-const CHUNK_STEPS: usize = 32;
-/// Chunks read ahead of the computation; with the chunk in work this bounds the spectra in
-/// memory to (2 + this) chunks, whatever the number of steps.
+/// Steps read and processed together (16 x 32768 bins: 2 MB as f32 on disk; 16 MB of step
+/// buffers as f64 values, sigma, z and 1 / sigma, in each of the two buffer sets).
+const CHUNK_STEPS: usize = 16;
+/// Chunks read ahead of the computation; with the chunk being processed and the one being
+/// absorbed this bounds the spectra in memory to (2 + this) chunks, whatever the number of
+/// steps.
 const READ_AHEAD_CHUNKS: usize = 2;
 
 /// A step removed by a stage, with the reason.
@@ -181,8 +182,8 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     let mut combiner = combiner.ok_or_else(|| ReduceError::Night("the plan has no combine stage".into()))?;
     let total: usize = readers.iter().map(|r| r.steps().len()).sum();
     let mut cuts = Vec::new();
-    // Step buffers, refilled chunk after chunk.
-    let mut steps: Vec<Step> = Vec::new();
+    // Two sets of step buffers, refilled chunk after chunk.
+    let mut buffers: [Vec<Step>; 2] = Default::default();
 
     // Survey passes: each surveying stage sees the output of the stages before it.
     for s in 0..step_stages.len() {
@@ -190,29 +191,43 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
             continue;
         }
         let mut cut_here = Vec::new();
-        for_each_chunk(&readers, &night, injection, &mut steps, |chunk, fresh| {
-            let (before, rest) = step_stages.split_at_mut(s);
-            let kept = run_stages(before, chunk, fresh, &night, &mut cut_here, paths, false);
-            rest[0].1.survey_all(&kept);
-            Ok(())
-        })?;
+        let (before, rest) = step_stages.split_at_mut(s);
+        let surveyor = &mut rest[0].1;
+        stream_chunks(
+            &readers,
+            &night,
+            injection,
+            &mut buffers,
+            |chunk, fresh| run_stages(before, chunk, fresh, &night, &mut cut_here, paths, false),
+            |kept| {
+                surveyor.survey_all(kept);
+                Ok(())
+            },
+            |_| {},
+        )?;
         step_stages[s].1.finish_survey().map_err(|e| ReduceError::Night(format!("stage \"{}\": {e}", step_stages[s].0)))?;
     }
 
     let mut used_steps = Vec::new();
     let mut if_profile = crate::state::IfProfile::new(&night);
     let mut done = 0;
-    for_each_chunk(&readers, &night, injection, &mut steps, |chunk, fresh| {
-        let n = chunk.len();
-        let kept = run_stages(&mut step_stages, chunk, fresh, &night, &mut cuts, paths, true);
-        combiner.add_all(&kept).map_err(ReduceError::Night)?;
-        if_profile.add_all(&kept);
-        used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
-        done += n;
-        progress(done, total);
-        Ok(())
-    })?;
-    drop(steps);
+    stream_chunks(
+        &readers,
+        &night,
+        injection,
+        &mut buffers,
+        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, paths, true),
+        |kept| {
+            let (combined, ()) = rayon::join(|| combiner.add_all(kept).map_err(ReduceError::Night), || if_profile.add_all(kept));
+            used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
+            combined
+        },
+        |n| {
+            done += n;
+            progress(done, total);
+        },
+    )?;
+    drop(buffers);
     let mut spectrum = combiner.finish();
     for stage in &spectrum_stages {
         stage.apply(&mut spectrum, &used_steps).map_err(ReduceError::Night)?;
@@ -222,18 +237,17 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
 
 /// Loads each step of a chunk from `fresh` and applies `stages` to it, in parallel (loading
 /// and stages in one task per step, so the step's bins are still in that core's cache), and
-/// with `standardise` fills each kept step's [`Step::standard`] in the same task; returns the
-/// kept steps in order and records cuts.
-fn run_stages<'a>(
-    stages: &mut [(String, Box<dyn StepStage>)],
-    chunk: &'a mut [Step],
+/// with `standardise` fills each kept step's [`Step::standard`] in the same task; returns
+/// which steps were kept and records cuts.
+fn run_stages(
+    stages: &[(String, Box<dyn StepStage>)],
+    chunk: &mut [Step],
     fresh: &Fresh<'_>,
     night: &NightInfo,
     cuts: &mut Vec<CutStep>,
     paths: &[PathBuf],
     standardise: bool,
-) -> Vec<&'a Step> {
-    let stages: &[(String, Box<dyn StepStage>)] = stages;
+) -> Vec<bool> {
     let verdicts: Vec<Option<(String, String)>> = chunk
         .par_iter_mut()
         .enumerate()
@@ -249,10 +263,11 @@ fn run_stages<'a>(
             cut
         })
         .collect();
-    let mut kept = Vec::new();
+    let mut kept = Vec::with_capacity(chunk.len());
     for (step, verdict) in chunk.iter().zip(verdicts) {
+        kept.push(verdict.is_none());
         match verdict {
-            None => kept.push(step),
+            None => {}
             Some((stage, reason)) => {
                 if !cuts.iter().any(|c| c.step == step.index) {
                     cuts.push(CutStep { step: step.index, file: paths[step.file].clone(), row: step.index_in_file, stage, reason });
@@ -325,15 +340,22 @@ impl Fresh<'_> {
 }
 
 /// Reads every file in chunks of rows on one thread (every HDF5 call of the pass happens
-/// there) while the calling thread sets the metadata of `steps` (buffers reused from chunk
-/// to chunk) and hands them to `f` with the rows they are to be loaded from ([`Fresh`]).
-/// Reading runs ahead of the computation by at most [`READ_AHEAD_CHUNKS`] chunks.
-fn for_each_chunk(
+/// there) and streams them through two stages of work. Each chunk's steps (buffers reused,
+/// alternating between the two sets of `buffers`) get their metadata here and go to
+/// `process` with the rows they are to be loaded from ([`Fresh`]); `process` says which were
+/// kept. Meanwhile the previous chunk's kept steps, in step order, go to `absorb`: the two run
+/// side by side on the thread pool, so no core waits at the end of either. Every chunk reaches
+/// `absorb` in order, so whatever `absorb` accumulates does not depend on the thread count.
+/// `done` is told the number of steps of each chunk processed. Reading runs ahead of the
+/// computation by at most [`READ_AHEAD_CHUNKS`] chunks.
+fn stream_chunks(
     readers: &[RunReader],
     night: &NightInfo,
     injection: Option<&Injection>,
-    steps: &mut Vec<Step>,
-    mut f: impl FnMut(&mut [Step], &Fresh<'_>) -> Result<(), ReduceError>,
+    buffers: &mut [Vec<Step>; 2],
+    mut process: impl FnMut(&mut [Step], &Fresh<'_>) -> Vec<bool> + Send,
+    mut absorb: impl FnMut(&[&Step]) -> Result<(), ReduceError> + Send,
+    mut done: impl FnMut(usize),
 ) -> Result<(), ReduceError> {
     std::thread::scope(|scope| {
         let (sender, receiver) = mpsc::sync_channel::<Result<RawChunk, RunFileError>>(READ_AHEAD_CHUNKS);
@@ -358,14 +380,32 @@ fn for_each_chunk(
                 }
             }
         });
+        let [even, odd] = buffers;
+        // The previous chunk: its number of steps and which were kept.
+        let mut previous_chunk: Option<(usize, Vec<bool>)> = None;
+        let mut current_is_odd = false;
         for raw in receiver {
             let raw = raw?;
             let n = raw.rows.len();
-            place_steps(steps, &raw, &readers[raw.file]);
-            f(&mut steps[..n], &Fresh { raw: &raw, night, injection })?;
+            let (current, previous) = if current_is_odd { (&mut *odd, &*even) } else { (&mut *even, &*odd) };
+            place_steps(current, &raw, &readers[raw.file]);
+            let fresh = Fresh { raw: &raw, night, injection };
+            let (kept, absorbed) = rayon::join(|| process(&mut current[..n], &fresh), || absorb_kept(previous, previous_chunk.as_ref(), &mut absorb));
+            absorbed?;
+            done(n);
+            previous_chunk = Some((n, kept));
+            current_is_odd = !current_is_odd;
         }
-        Ok(())
+        let last = if current_is_odd { &*even } else { &*odd };
+        absorb_kept(last, previous_chunk.as_ref(), &mut absorb)
     })
+}
+
+/// Hands the kept steps of a processed chunk (the first `n` of `steps`, `kept` saying which)
+/// to `absorb`, in step order; nothing if there is no such chunk.
+fn absorb_kept(steps: &[Step], chunk: Option<&(usize, Vec<bool>)>, absorb: &mut impl FnMut(&[&Step]) -> Result<(), ReduceError>) -> Result<(), ReduceError> {
+    let Some((n, kept)) = chunk else { return Ok(()) };
+    absorb(&steps[..*n].iter().zip(kept).filter(|(_, kept)| **kept).map(|(step, _)| step).collect::<Vec<_>>())
 }
 
 /// Sets index and metadata of the first rows of `steps` (grown if needed) for a chunk; the

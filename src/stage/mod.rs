@@ -90,9 +90,9 @@ impl Step {
     pub fn standardise(&mut self) {
         let n = self.values.len().min(self.sigma.len());
         let Standardised { z, inverse_sigma } = &mut self.standard;
-        z.clear();
+        // Every entry is written below; resizing buffers reused from the last step of the
+        // same length costs nothing.
         z.resize(n, 0.0);
-        inverse_sigma.clear();
         inverse_sigma.resize(n, 0.0);
         standardise_bins(&self.values[..n], &self.sigma[..n], z, inverse_sigma);
     }
