@@ -8,6 +8,7 @@ use crate::physics::constants::BOLTZMANN_J_PER_K;
 use crate::physics::signal::{CavityState, Haloscope};
 use crate::runfile::{RunFileError, RunReader, StepMeta};
 use crate::stage::{Combiner, NightInfo, Spectrum, SpectrumStage, Step, StepStage, Verdict};
+use multiversion::multiversion;
 use ndarray::Array2;
 use rayon::prelude::*;
 use std::path::PathBuf;
@@ -298,7 +299,7 @@ impl Rows {
         // Rows of a freshly read array are contiguous; the slice form lets the loop vectorise.
         match self {
             Rows::F32(a) => match a.row(r).as_slice() {
-                Some(row) => out.extend(row.iter().map(|&p| f64::from(p))),
+                Some(row) => widen(row, out),
                 None => out.extend(a.row(r).iter().map(|&p| f64::from(p))),
             },
             Rows::F64(a) => match a.row(r).as_slice() {
@@ -307,6 +308,12 @@ impl Rows {
             },
         }
     }
+}
+
+/// Appends `row` to `out`, widened to f64.
+#[multiversion(targets = "simd")]
+fn widen(row: &[f32], out: &mut Vec<f64>) {
+    out.extend(row.iter().map(|&p| f64::from(p)));
 }
 
 /// A chunk of rows in flight from the reading thread.

@@ -19,6 +19,7 @@
 use super::{NightInfo, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::savgol::{SavitzkyGolay, SmoothingPlan, SmoothingScratch};
+use multiversion::multiversion;
 use rayon::prelude::*;
 use serde::Deserialize;
 use std::cell::RefCell;
@@ -161,6 +162,7 @@ const SURVEY_PIECE_BINS: usize = 4096;
 
 /// Adds the finite values to `sums` and counts them in `counts`, bin by bin over the common
 /// length.
+#[multiversion(targets = "simd")]
 fn add_power(sums: &mut [f64], counts: &mut [u32], values: &[f64]) {
     for ((s, c), &p) in sums.iter_mut().zip(counts.iter_mut()).zip(values) {
         let valid = finite(p);
@@ -171,6 +173,7 @@ fn add_power(sums: &mut [f64], counts: &mut [u32], values: &[f64]) {
 
 /// `out[k] = a[k] * b[k]` over the common length. The per-bin loops of this stage take
 /// slices as arguments, so the compiler knows the buffers are distinct and vectorises them.
+#[multiversion(targets = "simd")]
 fn multiply(a: &[f64], b: &[f64], out: &mut [f64]) {
     for (o, (&a, &b)) in out.iter_mut().zip(a.iter().zip(b)) {
         *o = a * b;
@@ -180,6 +183,7 @@ fn multiply(a: &[f64], b: &[f64], out: &mut [f64]) {
 /// delta = x / fit - 1 in every bin that holds data; bins without (NaN after ingest) are left
 /// as they are, since `flat` was bridged over them. The ratio is formed in `fit` first, for
 /// every bin, so the division is not tied to the test and both loops vectorise.
+#[multiversion(targets = "simd")]
 fn residual(values: &mut [f64], flat: &[f64], fit: &mut [f64]) {
     for (f, &x) in fit.iter_mut().zip(flat) {
         *f = x / *f - 1.0;
@@ -191,6 +195,7 @@ fn residual(values: &mut [f64], flat: &[f64], fit: &mut [f64]) {
 
 /// Root mean square of the finite values (0 if there are none). Four interleaved partial
 /// sums keep the floating-point additions off one serial chain.
+#[multiversion(targets = "simd")]
 fn rms_of_finite(x: &[f64]) -> f64 {
     let (mut sums, mut count) = ([0.0f64; 4], 0usize);
     let mut chunks = x.chunks_exact(4);

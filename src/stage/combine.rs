@@ -6,6 +6,7 @@
 
 use super::{Combiner, NightInfo, Spectrum, Standardised, Step};
 use crate::config::{BuildContext, Built, StageConfig};
+use multiversion::multiversion;
 use rayon::prelude::*;
 use serde::Deserialize;
 
@@ -85,6 +86,7 @@ impl MlCombiner {
 /// is no sample) into the sums of the same RF bins: weighted value z inv, weight inv^2, one
 /// more step where inv > 0. Equal-length slices, no division and no branch: the loop
 /// vectorises.
+#[multiversion(targets = "simd")]
 fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], z: &[f64], inv: &[f64]) {
     let n = sums.len().min(weights.len()).min(coverage.len()).min(z.len()).min(inv.len());
     let (sums, weights, coverage, z, inv) = (&mut sums[..n], &mut weights[..n], &mut coverage[..n], &z[..n], &inv[..n]);

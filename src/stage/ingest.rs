@@ -6,6 +6,7 @@
 
 use super::{NightInfo, Step, StepStage, Verdict};
 use crate::config::{BuildContext, Built, StageConfig};
+use multiversion::multiversion;
 use serde::Deserialize;
 
 /// Options of the `ingest` stage. Ranges are inclusive `[min, max]`.
@@ -77,6 +78,7 @@ impl StepStage for Ingest {
 /// Eight lanes with their own counters, floating-point comparisons combined with `&` rather
 /// than `&&`: no branch in the loop, so it vectorises (NaN fails both comparisons; `<= MAX`
 /// rather than `< INFINITY`, which the compiler turns into integer tests).
+#[multiversion(targets = "simd")]
 fn mark_invalid(values: &mut [f64]) -> usize {
     const LANES: usize = 8;
     let mut counts = [0u64; LANES];

@@ -13,6 +13,7 @@ pub mod ingest;
 pub mod rescale;
 
 use crate::runfile::{RunHeader, StepMeta};
+use multiversion::multiversion;
 
 /// `x.is_finite()` written as a floating-point comparison. The standard form is compiled to
 /// integer tests on the bits, which keeps the per-bin loops of the stages from vectorising.
@@ -100,6 +101,7 @@ impl Step {
 
 /// The loop of [`Step::standardise`]: an invalid bin enters as value 0 and sigma infinite,
 /// so every bin takes the same arithmetic (selects, one division) and the loop vectorises.
+#[multiversion(targets = "simd")]
 fn standardise_bins(values: &[f64], sigma: &[f64], z: &mut [f64], inverse_sigma: &mut [f64]) {
     for (((&r, &s), z), inv) in values.iter().zip(sigma).zip(z.iter_mut()).zip(inverse_sigma.iter_mut()) {
         let valid = finite(r) & (s > 0.0) & finite(s);

@@ -9,6 +9,7 @@ use super::{NightInfo, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_DFSZ, G_GAMMA_KSVZ};
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
+use multiversion::multiversion;
 use serde::Deserialize;
 
 /// The reference axion-photon coupling, as a model name or a value of g_gamma.
@@ -115,6 +116,7 @@ struct Lorentzian {
 /// works the scale out again, which costs less than a stored copy. The bin index is counted
 /// as `i32` (a step has at most `runfile::MAX_BINS_PER_STEP` = 2^20 bins), which converts to
 /// f64 by a packed instruction where `usize` has none.
+#[multiversion(targets = "simd")]
 fn scale_bins(values: &mut [f64], sigma: &mut Vec<f64>, line: Lorentzian, inv_root_n: f64) {
     for (v, k) in values.iter_mut().zip(0i32..) {
         *v *= line.scale(k);

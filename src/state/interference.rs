@@ -23,6 +23,7 @@
 //! does not depend on the thread count.
 
 use crate::stage::{NightInfo, Standardised, Step};
+use multiversion::multiversion;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
@@ -199,6 +200,7 @@ impl IfProfile {
 /// there is no sample) to the per-IF-bin sums: w = inv^2, w r = z inv, w r^2 = z^2. No
 /// division and no branch, and the buffers come in as separate arguments, so the compiler
 /// knows they are distinct: the loop vectorises.
+#[multiversion(targets = "simd")]
 fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], z: &[f64], inv: &[f64]) {
     let n = count.len().min(w_sum.len()).min(wr_sum.len()).min(wrr_sum.len()).min(z.len()).min(inv.len());
     for i in 0..n {
@@ -213,6 +215,7 @@ fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum
 /// step's sample where that is a sample (inv > 0) and strictly more significant, so that of
 /// equal samples the first in step order stays. `first_if_bin` is the IF bin of the slices'
 /// first entry. A new maximum is rare after the first few steps, so the branch is cheap.
+#[multiversion(targets = "simd")]
 fn keep_top(z_top: &mut [f64], inv_top: &mut [f64], k_top: &mut [u32], z: &[f64], inv: &[f64], first_if_bin: u32) {
     let n = z_top.len().min(inv_top.len()).min(k_top.len()).min(z.len()).min(inv.len());
     for i in 0..n {
