@@ -206,19 +206,28 @@ impl Reduction {
         let tmp = |n: &str| dir.join(format!(".tmp.{n}"));
         let calibration = calibrated.map(|c| c.0);
         let limits = calibrated.map(|c| c.1);
-        let staged = (|| -> anyhow::Result<()> {
-            self.write_hdf5(&tmp(names[0]), config_text, provenance, limits).context("writing results.h5")?;
-            self.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
-            std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration, limits))?).context("writing summary.json")?;
-            plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
-            if let Some(limits) = limits {
-                limits.write_tables(&tmp(LIMIT_OUTPUTS[0]), &tmp(LIMIT_OUTPUTS[1]), LIMIT_BLOCK_HZ).context("writing the limit tables")?;
-                let points: Vec<(f64, f64)> = limits.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev)).collect();
-                let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.assumptions.confidence, limits.assumptions.eta);
-                crate::limits::exclusion_plot(&points, &title, &tmp(LIMIT_OUTPUTS[2]), &tmp(LIMIT_OUTPUTS[3])).context("drawing the exclusion plot")?;
-            }
-            Ok(())
-        })();
+        // Tables and plots are drawn side by side (the plots make no HDF5 call).
+        let (tables, plots) = rayon::join(
+            || -> anyhow::Result<()> {
+                self.write_hdf5(&tmp(names[0]), config_text, provenance, limits).context("writing results.h5")?;
+                self.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
+                std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration, limits))?).context("writing summary.json")?;
+                if let Some(limits) = limits {
+                    limits.write_tables(&tmp(LIMIT_OUTPUTS[0]), &tmp(LIMIT_OUTPUTS[1]), LIMIT_BLOCK_HZ).context("writing the limit tables")?;
+                }
+                Ok(())
+            },
+            || -> anyhow::Result<()> {
+                plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
+                if let Some(limits) = limits {
+                    let points: Vec<(f64, f64)> = limits.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev)).collect();
+                    let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.assumptions.confidence, limits.assumptions.eta);
+                    crate::limits::exclusion_plot(&points, &title, &tmp(LIMIT_OUTPUTS[2]), &tmp(LIMIT_OUTPUTS[3])).context("drawing the exclusion plot")?;
+                }
+                Ok(())
+            },
+        );
+        let staged = tables.and(plots);
         if limits.is_some() {
             names.extend(LIMIT_OUTPUTS);
         }
