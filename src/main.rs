@@ -303,19 +303,20 @@ fn restore_default_sigpipe() {
     }
 }
 
-/// Freed memory stays with the process instead of going back to the system: the reduction
+/// Buffers freed and allocated again chunk after chunk stay with the process: the reduction
 /// allocates and frees buffers of a few MB per chunk of steps, and with glibc's defaults each
 /// would be a fresh mapping whose pages are faulted in and zeroed again (on virtual machines,
-/// memory handed back to the host is slower still to touch again). Allocations up to 32 MB
-/// (glibc's largest mapping threshold) come from the heap, and the heap is never trimmed;
-/// peak memory is unchanged, since it is set by the largest working set.
+/// memory handed back to the host is slower still to touch again). Allocations below 4 MB come
+/// from the heap, which keeps up to 64 MB free before giving memory back; larger ones (the
+/// RF-grid arrays of a long night) are mappings of their own, returned when freed, so the peak
+/// memory stays that of the largest phase.
 fn keep_freed_memory() {
     #[cfg(all(target_os = "linux", target_env = "gnu"))]
     // SAFETY: called first in `main`, before any thread or allocation that could race with it;
     // both parameters are documented mallopt options taking a byte count.
     unsafe {
-        libc::mallopt(libc::M_MMAP_THRESHOLD, 32 << 20);
-        libc::mallopt(libc::M_TRIM_THRESHOLD, i32::MAX);
+        libc::mallopt(libc::M_MMAP_THRESHOLD, 4 << 20);
+        libc::mallopt(libc::M_TRIM_THRESHOLD, 64 << 20);
     }
 }
 
