@@ -344,8 +344,12 @@ enum Outcome {
     Hung,
 }
 
-/// Longest a child may run before it counts as hung (a clean run takes well under 1 s).
-const CHILD_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(5);
+/// Longest a child may run before it counts as hung. Most runs take well under 1 s, but a
+/// mutated start frequency can spread 12 steps over an RF grid close to the accepted maximum
+/// (`runfile::MAX_RF_BINS`, 2^25 bins), which is then reduced in earnest: a mutation giving
+/// 22.7 M RF bins took 6.8 s on the 2-core machine. The limit leaves room for the largest grid
+/// on a loaded machine.
+const CHILD_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(60);
 
 fn reduce_in_child(config: &Path, run: &Path, out: &Path) -> (Outcome, String) {
     use std::io::Read;
