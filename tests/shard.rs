@@ -5,7 +5,7 @@
 mod common;
 mod shard_common;
 
-use shard_common::{assert_same_reduction, axsift, campaign_reference, night, nightly, plan_reduction, run_ok, s, three_nights};
+use shard_common::{assert_same_reduction, axsift, campaign_reference, night, nightly, plan_campaign, plan_reduction, run_ok, s, three_nights};
 use std::path::Path;
 use std::process::{Child, Output};
 
@@ -52,22 +52,7 @@ fn sharded_reduction_equals_nightly_reduction() {
 fn sharded_campaign_equals_single_machine_campaign() {
     let dir = tempfile::tempdir().unwrap();
     let (scenario_file, spec_file, reference) = campaign_reference(dir.path());
-    let work = dir.path().join("work");
-    run_ok(&[
-        "shard-plan",
-        "--config",
-        "pipeline.toml",
-        "--work",
-        s(&work),
-        "--shards",
-        "3",
-        "--campaign",
-        "--scenario",
-        s(&scenario_file),
-        "--spec",
-        s(&spec_file),
-    ]);
-    let plan = work.join("plan.json");
+    let plan = plan_campaign(&dir.path().join("work"), &scenario_file, &spec_file, 3);
     // Efficiency shards need the head's file.
     let early = axsift(&["shard-run", "--plan", s(&plan), "--index", "1"]).output().unwrap();
     assert_eq!(early.status.code(), Some(2));
@@ -211,22 +196,8 @@ fn sharded_reduction_with_a_calibration_has_the_nightly_limits() {
     assert!(limit(&ref_state).is_some());
     assert_eq!(limit(&ref_state), limit(&state));
 
-    let work = dir.path().join("camp");
-    run_ok(&[
-        "shard-plan",
-        "--config",
-        "pipeline.toml",
-        "--work",
-        s(&work),
-        "--shards",
-        "2",
-        "--campaign",
-        "--scenario",
-        s(&scenario_file),
-        "--spec",
-        s(&spec_file),
-    ]);
-    let refused = axsift(&["shard-merge", "--plan", s(&work.join("plan.json")), "--out", s(&dir.path().join("c")), "--calibration", s(&cal)]).output().unwrap();
+    let campaign = plan_campaign(&dir.path().join("camp"), &scenario_file, &spec_file, 2);
+    let refused = axsift(&["shard-merge", "--plan", s(&campaign), "--out", s(&dir.path().join("c")), "--calibration", s(&cal)]).output().unwrap();
     assert_eq!(refused.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&refused.stderr).contains("takes none"), "{}", String::from_utf8_lossy(&refused.stderr));
 }

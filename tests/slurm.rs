@@ -8,7 +8,7 @@
 mod common;
 mod shard_common;
 
-use shard_common::{assert_same_reduction, campaign_reference, nightly, plan_reduction, run_ok, s, three_nights};
+use shard_common::{assert_same_reduction, campaign_reference, nightly, plan_campaign, plan_reduction, run_ok, s, three_nights};
 use std::path::Path;
 use std::process::Command;
 use std::time::{Duration, Instant};
@@ -124,10 +124,9 @@ fn shard_array_and_merge_on_a_local_slurm() {
 
     // A campaign in three shards: shard 0, then shards 1-2 after it, then the merge.
     let (scenario, spec, reference) = campaign_reference(dir.path());
-    let work = dir.path().join("camp");
-    run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(&work), "--shards", "3", "--campaign", "--scenario", s(&scenario), "--spec", s(&spec)]);
+    let campaign = plan_campaign(&dir.path().join("camp"), &scenario, &spec, 3);
     let cal = dir.path().join("cal");
-    let submitted = run_ok(&["shard-slurm", "--plan", s(&work.join("plan.json")), "--out", s(&cal), "--submit"]);
+    let submitted = run_ok(&["shard-slurm", "--plan", s(&campaign), "--out", s(&cal), "--submit"]);
     let printed = String::from_utf8_lossy(&submitted.stdout).into_owned();
     let ids: Vec<&str> = printed.lines().find_map(|l| l.strip_prefix("submitted jobs ")).expect("job ids printed").split(' ').collect();
     assert_eq!(ids.len(), 3, "head array, efficiency array, merge: {printed}");

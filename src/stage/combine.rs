@@ -101,7 +101,7 @@ impl Combiner for MlCombiner {
     fn add(&mut self, step: &Step) -> Result<(), String> {
         let first = self.first_bin(step)?;
         let Standardised { z, inverse_sigma } = &step.standard;
-        let n = z.len().min(inverse_sigma.len());
+        let n = step.standard.len();
         accumulate(&mut self.weighted_sum[first..first + n], &mut self.weight[first..first + n], &mut self.coverage[first..first + n], z, inverse_sigma);
         Ok(())
     }
@@ -111,7 +111,7 @@ impl Combiner for MlCombiner {
     fn add_all(&mut self, steps: &[&Step]) -> Result<(), String> {
         let placed: Vec<(usize, &Step)> = steps.iter().map(|&step| Ok((self.first_bin(step)?, step))).collect::<Result<_, String>>()?;
         let Some(lo) = placed.iter().map(|&(first, _)| first).min() else { return Ok(()) };
-        let hi = placed.iter().map(|&(first, step)| first + step.standard.z.len().min(step.standard.inverse_sigma.len())).max().unwrap_or(lo);
+        let hi = placed.iter().map(|&(first, step)| first + step.standard.len()).max().unwrap_or(lo);
         let (sums, weights, coverage) = (&mut self.weighted_sum[lo..hi], &mut self.weight[lo..hi], &mut self.coverage[lo..hi]);
         sums.par_chunks_mut(PIECE_BINS).zip(weights.par_chunks_mut(PIECE_BINS)).zip(coverage.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
             |(piece, ((sums, weights), coverage))| {
@@ -120,7 +120,7 @@ impl Combiner for MlCombiner {
                 let b = a + sums.len();
                 for &(first, step) in &placed {
                     let Standardised { z, inverse_sigma } = &step.standard;
-                    let n = z.len().min(inverse_sigma.len());
+                    let n = step.standard.len();
                     let (from, to) = (first.max(a), (first + n).min(b));
                     if from < to {
                         let (here, there) = (from - a..to - a, from - first..to - first);

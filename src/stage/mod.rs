@@ -86,6 +86,18 @@ pub struct Standardised {
     pub inverse_sigma: Vec<f64>,
 }
 
+impl Standardised {
+    /// Number of standardised bins (the common length of the two buffers).
+    pub fn len(&self) -> usize {
+        self.z.len().min(self.inverse_sigma.len())
+    }
+
+    /// Whether there are none (the step has not been standardised).
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+}
+
 impl Step {
     /// Fills [`Step::standard`] from `values` and `sigma` (over their common length).
     pub fn standardise(&mut self) {

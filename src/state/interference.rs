@@ -118,7 +118,7 @@ impl IfProfile {
                 let a = piece * PIECE_BINS;
                 for step in steps {
                     let Standardised { z, inverse_sigma } = &step.standard;
-                    let n = count.len().min(z.len().saturating_sub(a)).min(inverse_sigma.len().saturating_sub(a));
+                    let n = count.len().min(step.standard.len().saturating_sub(a));
                     add_to_sums(&mut count[..n], &mut w_sum[..n], &mut wr_sum[..n], &mut wrr_sum[..n], &z[a..a + n], &inverse_sigma[a..a + n]);
                 }
             });
@@ -132,7 +132,7 @@ impl IfProfile {
                 let b = a + z_top.len() as i64;
                 for &(first, step) in &placed {
                     let Standardised { z, inverse_sigma } = &step.standard;
-                    let len = z.len().min(inverse_sigma.len()).min(n_if) as i64;
+                    let len = step.standard.len().min(n_if) as i64;
                     let (j0, j1) = (first.max(a), (first + len).min(b));
                     if j0 >= j1 {
                         continue;

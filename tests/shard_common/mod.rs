@@ -61,6 +61,13 @@ pub fn plan_reduction(work: &Path, nights: &[PathBuf], shards: usize) -> PathBuf
     work.join("plan.json")
 }
 
+/// Plans a calibration campaign (scenario and spec files) in `shards` shards; returns the plan.
+pub fn plan_campaign(work: &Path, scenario: &Path, spec: &Path, shards: usize) -> PathBuf {
+    let shards = shards.to_string();
+    run_ok(&["shard-plan", "--config", "pipeline.toml", "--work", s(work), "--shards", &shards, "--campaign", "--scenario", s(scenario), "--spec", s(spec)]);
+    work.join("plan.json")
+}
+
 fn bits(v: &[f64]) -> Vec<u64> {
     v.iter().map(|x| x.to_bits()).collect()
 }
