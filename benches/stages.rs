@@ -1,6 +1,6 @@
 //! Per-step stage and accumulation timings on synthetic 32768-bin steps (the scale of the
 //! whole-reduction benchmark): ingest, baseline (gain flattening, Savitzky-Golay fit window
-//! 401 order 4, residual, spread check), rescale, standardising, and the two accumulations a chunk of 32
+//! 401 order 4, residual, spread check), rescale (into the standardised form), and the two accumulations a chunk of 32
 //! steps goes through (combination onto the RF grid, the night's IF profile).
 //! Run: cargo bench --bench stages
 
@@ -50,7 +50,7 @@ fn raw_step(i: usize, rng: &mut StdRng) -> Step {
             (1.0 + 0.05 * (k as f64 / 1500.0).sin()) * (1.0 + noise * z)
         })
         .collect();
-    Step { index: i, file: 0, index_in_file: i, meta, values, sigma: Vec::new(), standard: Default::default() }
+    Step { index: i, file: 0, index_in_file: i, meta, values, standard: Default::default() }
 }
 
 fn step_stage(config: &dyn StageConfig, night: &NightInfo) -> Box<dyn StepStage> {
@@ -97,9 +97,6 @@ fn stages(c: &mut Criterion) {
         })
     });
     g.bench_function("copy_only", |b| b.iter(|| step.values.clone_from(&flat[0].values)));
-    let mut rescaled = flat[0].clone();
-    rescale.apply(&mut rescaled, &night);
-    g.bench_function("standardise", |b| b.iter(|| rescaled.standardise()));
     g.finish();
 
     let rescaled: Vec<Step> = flat
@@ -107,7 +104,6 @@ fn stages(c: &mut Criterion) {
         .map(|s| {
             let mut s = s.clone();
             rescale.apply(&mut s, &night);
-            s.standardise();
             s
         })
         .collect();

@@ -14,8 +14,8 @@ use rayon::prelude::*;
 use std::path::PathBuf;
 use std::sync::mpsc;
 
-/// Steps read and processed together (16 x 32768 bins: 2 MB as f32 on disk; 16 MB of step
-/// buffers as f64 values, sigma, z and 1 / sigma, in each of the two buffer sets).
+/// Steps read and processed together (16 x 32768 bins: 2 MB as f32 on disk; 12 MB of step
+/// buffers as f64 values, z and 1 / sigma, in each of the two buffer sets).
 const CHUNK_STEPS: usize = 16;
 /// Chunks read ahead of the computation; with the chunk being processed and the one being
 /// absorbed this bounds the spectra in memory to (2 + this) chunks, whatever the number of
@@ -199,7 +199,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
             &night,
             injection,
             &mut buffers,
-            |chunk, fresh| run_stages(before, chunk, fresh, &night, &mut cut_here, paths, false),
+            |chunk, fresh| run_stages(before, chunk, fresh, &night, &mut cut_here, paths),
             |kept| {
                 surveyor.survey_all(kept);
                 Ok(())
@@ -217,7 +217,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
         &night,
         injection,
         &mut buffers,
-        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, paths, true),
+        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, paths),
         |kept| {
             let (combined, ()) = rayon::join(|| combiner.add_all(kept).map_err(ReduceError::Night), || if_profile.add_all(kept));
             used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
@@ -237,9 +237,8 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
 }
 
 /// Loads each step of a chunk from `fresh` and applies `stages` to it, in parallel (loading
-/// and stages in one task per step, so the step's bins are still in that core's cache), and
-/// with `standardise` fills each kept step's [`Step::standard`] in the same task; returns
-/// which steps were kept and records cuts.
+/// and stages in one task per step, so the step's bins are still in that core's cache);
+/// returns which steps were kept and records cuts.
 fn run_stages(
     stages: &[(String, Box<dyn StepStage>)],
     chunk: &mut [Step],
@@ -247,21 +246,16 @@ fn run_stages(
     night: &NightInfo,
     cuts: &mut Vec<CutStep>,
     paths: &[PathBuf],
-    standardise: bool,
 ) -> Vec<bool> {
     let verdicts: Vec<Option<(String, String)>> = chunk
         .par_iter_mut()
         .enumerate()
         .map(|(r, step)| {
             fresh.load(r, step);
-            let cut = stages.iter().find_map(|(kind, stage)| match stage.apply(step, night) {
+            stages.iter().find_map(|(kind, stage)| match stage.apply(step, night) {
                 Verdict::Keep => None,
                 Verdict::Cut(reason) => Some((kind.clone(), reason)),
-            });
-            if standardise && cut.is_none() {
-                step.standardise();
-            }
-            cut
+            })
         })
         .collect();
     let mut kept = Vec::with_capacity(chunk.len());
@@ -336,10 +330,9 @@ struct Fresh<'a> {
 
 impl Fresh<'_> {
     /// Replaces the values of `step` (row `r` of the chunk, its metadata already set) with the
-    /// stored row widened to f64, empties its sigma, and adds the injection if any.
+    /// stored row widened to f64, and adds the injection if any.
     fn load(&self, r: usize, step: &mut Step) {
         self.raw.rows.widen_into(r, &mut step.values);
-        step.sigma.clear();
         if let Some(injection) = self.injection {
             injection.apply(step, self.night);
         }
@@ -421,15 +414,7 @@ fn place_steps(steps: &mut Vec<Step>, raw: &RawChunk, reader: &RunReader) {
     let n = raw.rows.len();
     let meta = &reader.steps()[raw.first_row..raw.first_row + n];
     if steps.len() < n {
-        steps.resize_with(n, || Step {
-            index: 0,
-            file: 0,
-            index_in_file: 0,
-            meta: meta[0],
-            values: Vec::new(),
-            sigma: Vec::new(),
-            standard: Default::default(),
-        });
+        steps.resize_with(n, || Step { index: 0, file: 0, index_in_file: 0, meta: meta[0], values: Vec::new(), standard: Default::default() });
     }
     for (r, (step, meta)) in steps[..n].iter_mut().zip(meta).enumerate() {
         step.index = raw.first_index + r;

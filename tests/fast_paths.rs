@@ -11,7 +11,7 @@ use axsift::runfile::{RunHeader, StepMeta};
 use axsift::stage::baseline::BaselineConfig;
 use axsift::stage::filter::{FilterConfig, Halo, predicted_spread};
 use axsift::stage::rescale::{Reference, RescaleConfig};
-use axsift::stage::{NightInfo, Spectrum, Step, StepStage, Verdict};
+use axsift::stage::{NightInfo, Spectrum, Standardised, Step, StepStage, Verdict};
 use rand::rngs::StdRng;
 use rand::{RngExt, SeedableRng};
 use rand_distr::{Distribution, StandardNormal};
@@ -145,9 +145,8 @@ fn baseline_stage_matches_its_formula_with_gaps() {
         }
         v
     };
-    let steps: Vec<Step> = (0..4)
-        .map(|i| Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values: raw(&mut rng), sigma: Vec::new(), standard: Default::default() })
-        .collect();
+    let steps: Vec<Step> =
+        (0..4).map(|i| Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values: raw(&mut rng), standard: Default::default() }).collect();
     for s in &steps {
         stage.survey(s);
     }
@@ -192,10 +191,11 @@ fn baseline_stage_matches_its_formula_with_gaps() {
     assert!(worst <= 1e-8, "{worst:.2e}");
 }
 
-/// The rescale stage (on-resonance power once, Lorentzian per bin) equals
-/// k_B T dnu_b / P_sig(f_k) evaluated per bin with `signal_power_w`, within 1e-10 relative,
-/// for values and sigmas; a missing bin gets an infinite sigma. (The oracle's f / f_c - 1
-/// cancels to about 1e-16 / |f / f_c - 1|, a few 1e-12 relative in the band.)
+/// The rescale stage (on-resonance power once, Lorentzian per bin) equals the documented
+/// R = delta k_B T dnu_b / P_sig(f_k), sigma = k_B T dnu_b / (P_sig(f_k) sqrt(N)) evaluated
+/// per bin with `signal_power_w`, as the standardised pair z = R / sigma and 1 / sigma, within
+/// 1e-10 relative; a missing bin gets z = 0 and 1 / sigma = 0 (no sample). (The oracle's
+/// f / f_c - 1 cancels to about 1e-16 / |f / f_c - 1|, a few 1e-12 relative in the band.)
 #[test]
 fn rescale_stage_matches_signal_power_per_bin() {
     let n = 32_768;
@@ -206,7 +206,7 @@ fn rescale_stage_matches_signal_power_per_bin() {
     let mut rng = StdRng::seed_from_u64(4);
     let delta: Vec<f64> =
         (0..n).map(|k| if k == 77 { f64::NAN } else { 0.007 * <StandardNormal as Distribution<f64>>::sample(&StandardNormal, &mut rng) }).collect();
-    let mut step = Step { index: 0, file: 0, index_in_file: 0, meta: m, values: delta.clone(), sigma: Vec::new(), standard: Default::default() };
+    let mut step = Step { index: 0, file: 0, index_in_file: 0, meta: m, values: delta.clone(), standard: Default::default() };
     assert_eq!(stage.apply(&mut step, &night), Verdict::Keep);
     let h = &night.headers[0];
     let scope = Haloscope { magnet_field_t: h.magnet_field_t, cavity_volume_m3: h.cavity_volume_m3, form_factor: h.form_factor };
@@ -214,12 +214,14 @@ fn rescale_stage_matches_signal_power_per_bin() {
     let noise_w = BOLTZMANN_J_PER_K * m.noise_temp_k * 100.0;
     for k in 0..n {
         let scale = noise_w / signal_power_w(-0.97, 0.45, &scope, &cavity, m.start_freq_hz + k as f64 * 100.0);
+        let (z, inv) = (step.standard.z[k], step.standard.inverse_sigma[k]);
         if k == 77 {
-            assert!(step.values[k].is_nan() && step.sigma[k] == f64::INFINITY);
+            assert!(z == 0.0 && inv == 0.0, "bin {k}: {z} {inv}");
             continue;
         }
-        assert!((step.values[k] / (delta[k] * scale) - 1.0).abs() < 1e-10, "bin {k}");
-        assert!((step.sigma[k] / (scale / 20_000f64.sqrt()) - 1.0).abs() < 1e-10, "bin {k}");
+        let (r, sigma) = (delta[k] * scale, scale / 20_000f64.sqrt());
+        assert!((z / (r / sigma) - 1.0).abs() < 1e-10, "bin {k}");
+        assert!((inv * sigma - 1.0).abs() < 1e-10, "bin {k}");
     }
 }
 
@@ -293,7 +295,7 @@ fn combine_add_all_equals_steps_added_one_by_one() {
         _ => panic!("not a combining stage"),
     };
     let mut rng = StdRng::seed_from_u64(29);
-    let steps: Vec<Step> = (0..n_steps)
+    let (steps, sigmas): (Vec<Step>, Vec<Vec<f64>>) = (0..n_steps)
         .map(|i| {
             // Later steps are shorter, so batches end at different RF bins.
             let n = n_bins - 37 * i;
@@ -310,9 +312,11 @@ fn combine_add_all_equals_steps_added_one_by_one() {
             }
             let mut meta = meta(start + (i * shift) as f64 * 100.0, n);
             meta.timestamp_s += i as f64;
-            let mut step = Step { index: i, file: 0, index_in_file: i, meta, values, sigma, standard: Default::default() };
-            step.standardise();
-            step
+            // The standardised form as defined on `Standardised`: z = r / sigma and
+            // 1 / sigma, both 0 where the bin holds no sample.
+            let (z, inverse_sigma) =
+                values.iter().zip(&sigma).map(|(&r, &s)| if r.is_finite() && s.is_finite() && s > 0.0 { (r / s, 1.0 / s) } else { (0.0, 0.0) }).unzip();
+            (Step { index: i, file: 0, index_in_file: i, meta, values, standard: Standardised { z, inverse_sigma } }, sigma)
         })
         .collect();
     let mut one_by_one = combiner();
@@ -333,9 +337,9 @@ fn combine_add_all_equals_steps_added_one_by_one() {
     // sigma finite, sigma > 0): mean sum(r / s^2) / sum(1 / s^2), sigma sum(1 / s^2)^(-1/2).
     let n_rf = a.combined.len();
     let (mut num, mut den, mut count) = (vec![0.0; n_rf], vec![0.0; n_rf], vec![0u32; n_rf]);
-    for step in &steps {
+    for (step, sigma) in steps.iter().zip(&sigmas) {
         let first = ((step.meta.start_freq_hz - start) / 100.0).round() as usize;
-        for (k, (&r, &s)) in step.values.iter().zip(&step.sigma).enumerate() {
+        for (k, (&r, &s)) in step.values.iter().zip(sigma).enumerate() {
             if r.is_finite() && s.is_finite() && s > 0.0 {
                 num[first + k] += r / (s * s);
                 den[first + k] += 1.0 / (s * s);
@@ -376,7 +380,7 @@ fn baseline_survey_all_equals_steps_surveyed_one_by_one() {
             for k in (i..n).step_by(331) {
                 values[k] = f64::NAN;
             }
-            Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values, sigma: Vec::new(), standard: Default::default() }
+            Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values, standard: Default::default() }
         })
         .collect();
     let (mut one_by_one, mut batched) = (build(), build());

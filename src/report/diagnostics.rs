@@ -116,7 +116,6 @@ fn for_each_chunk(readers: &[crate::runfile::RunReader], f: &mut dyn FnMut(&mut 
                     index_in_file: start + r,
                     meta: reader.steps()[start + r],
                     values: row.to_vec(),
-                    sigma: Vec::new(),
                     standard: Default::default(),
                 })
                 .collect();

@@ -13,7 +13,6 @@ pub mod ingest;
 pub mod rescale;
 
 use crate::runfile::{RunHeader, StepMeta};
-use multiversion::multiversion;
 
 /// `x.is_finite()` written as a floating-point comparison. The standard form is compiled to
 /// integer tests on the bits, which keeps the per-bin loops of the stages from vectorising.
@@ -31,7 +30,8 @@ pub enum Form {
     Accepted,
     /// Baseline-free fluctuation delta = P / (G * SG) - 1 (dimensionless, sigma ~ 1/sqrt(N)).
     Normalised,
-    /// Excess power in units of the reference axion's power, with per-bin sigma.
+    /// Excess power in units of the reference axion's power, held standardised in
+    /// [`Step::standard`] (significance and inverse sigma per bin).
     Rescaled,
     /// Maximum-likelihood combination on one RF grid.
     Combined,
@@ -63,12 +63,11 @@ pub struct Step {
     pub index_in_file: usize,
     /// Its cavity and receiver parameters.
     pub meta: StepMeta,
-    /// Per-bin values; their meaning is given by the current [`Form`]. NaN = no data.
+    /// Per-bin values up to the [`Form::Normalised`] form; their meaning is given by the
+    /// current [`Form`]. NaN = no data.
     pub values: Vec<f64>,
-    /// Per-bin standard deviation in the units of `values` (filled by rescaling).
-    pub sigma: Vec<f64>,
-    /// The bins in the form the accumulations take, filled by [`Step::standardise`] once the
-    /// per-step stages have kept the step.
+    /// The bins in the [`Form::Rescaled`] form, the one the accumulations take (filled by
+    /// the rescaling stage from `values`).
     pub standard: Standardised,
 }
 
@@ -77,7 +76,8 @@ pub struct Step {
 /// or sigma not finite, or sigma not > 0). Weight 1 / sigma^2 = inv^2, weighted value
 /// r / sigma^2 = z inv and w r^2 = z^2 then follow by multiplication: the accumulations,
 /// which run over every step of a chunk for each RF piece, need no division and no test, and
-/// the one division per bin is made while the step is still in its core's cache.
+/// the one division per bin is made while the step is still in its core's cache, by the stage
+/// that produces this form.
 #[derive(Debug, Clone, Default)]
 pub struct Standardised {
     /// r / sigma (0 = no sample).
@@ -95,31 +95,6 @@ impl Standardised {
     /// Whether there are none (the step has not been standardised).
     pub fn is_empty(&self) -> bool {
         self.len() == 0
-    }
-}
-
-impl Step {
-    /// Fills [`Step::standard`] from `values` and `sigma` (over their common length).
-    pub fn standardise(&mut self) {
-        let n = self.values.len().min(self.sigma.len());
-        let Standardised { z, inverse_sigma } = &mut self.standard;
-        // Every entry is written below; resizing buffers reused from the last step of the
-        // same length costs nothing.
-        z.resize(n, 0.0);
-        inverse_sigma.resize(n, 0.0);
-        standardise_bins(&self.values[..n], &self.sigma[..n], z, inverse_sigma);
-    }
-}
-
-/// The loop of [`Step::standardise`]: an invalid bin enters as value 0 and sigma infinite,
-/// so every bin takes the same arithmetic (selects, one division) and the loop vectorises.
-#[multiversion(targets = "simd")]
-fn standardise_bins(values: &[f64], sigma: &[f64], z: &mut [f64], inverse_sigma: &mut [f64]) {
-    for (((&r, &s), z), inv) in values.iter().zip(sigma).zip(z.iter_mut()).zip(inverse_sigma.iter_mut()) {
-        let valid = finite(r) & (s > 0.0) & finite(s);
-        let (r, s) = if valid { (r, s) } else { (0.0, f64::INFINITY) };
-        *inv = 1.0 / s;
-        *z = r * *inv;
     }
 }
 

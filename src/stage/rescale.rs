@@ -4,8 +4,11 @@
 //! (P_sig(f_k) sqrt(N)), with P_sig the power of an axion of the reference coupling at the
 //! bin's RF frequency f_k, cavity Lorentzian included. 1.0 means the whole power of the
 //! reference axion falls in the bin.
+//!
+//! The stage writes the bins as the accumulations take them ([`Step::standard`]): the
+//! significance z = R / sigma = delta sqrt(N), in which the scale cancels, and 1 / sigma.
 
-use super::{NightInfo, Step, StepStage, Verdict, finite};
+use super::{NightInfo, Standardised, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_DFSZ, G_GAMMA_KSVZ};
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
@@ -91,8 +94,13 @@ impl StepStage for Rescale {
         // Detuning f_k / f_c - 1 of bin k, as its value at bin 0 plus k steps of dnu_b / f_c.
         let (detuning_0, detuning_step) = (m.start_freq_hz / m.cavity_freq_hz - 1.0, night.bin_width_hz / m.cavity_freq_hz);
         let four_q2 = 4.0 * m.loaded_q * m.loaded_q;
-        let inv_root_n = 1.0 / (m.n_averages as f64).sqrt();
-        scale_bins(&mut step.values, &mut step.sigma, Lorentzian { on_resonance, detuning_0, detuning_step, four_q2 }, inv_root_n);
+        let root_n = (m.n_averages as f64).sqrt();
+        let Standardised { z, inverse_sigma } = &mut step.standard;
+        // Every entry is written below; buffers reused from a step of the same length are not
+        // touched by the resizing.
+        z.resize(step.values.len(), 0.0);
+        inverse_sigma.resize(step.values.len(), 0.0);
+        standardise_bins(&step.values, z, inverse_sigma, Lorentzian { on_resonance, detuning_0, detuning_step, four_q2 }, root_n);
         Verdict::Keep
     }
 }
@@ -110,19 +118,21 @@ struct Lorentzian {
     four_q2: f64,
 }
 
-/// Multiplies each bin of `values` by its scale, then refills `sigma` with scale / sqrt(N)
-/// (infinite where the value is not finite). Two loops, each vectorising: the first over
-/// `values` in place; the second appends to the emptied `sigma` (no zero-filling first) and
-/// works the scale out again, which costs less than a stored copy. The bin index is counted
+/// Fills `z` with delta sqrt(N) and `inverse_sigma` with sqrt(N) / scale, both 0 where the
+/// bin holds no sample (delta not finite, or 1 / sigma not finite and positive). Equal-length
+/// slices, one division and no branch per bin: the loop vectorises. The bin index is counted
 /// as `i32` (a step has at most `runfile::MAX_BINS_PER_STEP` = 2^20 bins), which converts to
 /// f64 by a packed instruction where `usize` has none.
 #[multiversion(targets = "simd")]
-fn scale_bins(values: &mut [f64], sigma: &mut Vec<f64>, line: Lorentzian, inv_root_n: f64) {
-    for (v, k) in values.iter_mut().zip(0i32..) {
-        *v *= line.scale(k);
+fn standardise_bins(delta: &[f64], z: &mut [f64], inverse_sigma: &mut [f64], line: Lorentzian, root_n: f64) {
+    let n = delta.len().min(z.len()).min(inverse_sigma.len());
+    let (delta, z, inverse_sigma) = (&delta[..n], &mut z[..n], &mut inverse_sigma[..n]);
+    for (((&d, z), inv), k) in delta.iter().zip(z.iter_mut()).zip(inverse_sigma.iter_mut()).zip(0i32..) {
+        let inverse = root_n / line.scale(k);
+        let valid = finite(d) & (inverse > 0.0) & finite(inverse);
+        *z = if valid { d * root_n } else { 0.0 };
+        *inv = if valid { inverse } else { 0.0 };
     }
-    sigma.clear();
-    sigma.extend(values.iter().zip(0i32..).map(|(&v, k)| if finite(v) { line.scale(k) * inv_root_n } else { f64::INFINITY }));
 }
 
 impl Lorentzian {
