@@ -687,6 +687,16 @@ fn order_not_below_window() {
 }
 
 #[test]
+fn reference_coupling_out_of_range() {
+    for (value, shown) in [("1.0e-9", "1e-9"), ("-3.0e7", "-3e7"), ("0.0", "0e0")] {
+        let text = pipeline_with("reference = \"ksvz\"", &format!("reference = {value}"));
+        one_problem(&text, line_of(&text, "reference = "), 13, &["stage 3 \"rescale\"", "key `reference`", shown, "magnitude 1e-6 to 1e6"]);
+    }
+    // A number inside the range is a valid reference.
+    config::load(&pipeline_with("reference = \"ksvz\"", "reference = -0.5"), "night.toml").unwrap();
+}
+
+#[test]
 fn threshold_not_positive() {
     let text = pipeline_with("target_snr = 5.0\nconfidence = 0.95", "threshold = 0.0");
     one_problem(&text, line_of(&text, "threshold = 0.0"), 13, &["stage 6 \"flag\"", "key `threshold`", "must be > 0"]);

@@ -194,8 +194,9 @@ fn baseline_stage_matches_its_formula_with_gaps() {
 /// The rescale stage (on-resonance power once, Lorentzian per bin) equals the documented
 /// R = delta k_B T dnu_b / P_sig(f_k), sigma = k_B T dnu_b / (P_sig(f_k) sqrt(N)) evaluated
 /// per bin with `signal_power_w`, as the standardised pair z = R / sigma and 1 / sigma, within
-/// 1e-10 relative; a missing bin gets z = 0 and 1 / sigma = 0 (no sample). (The oracle's
-/// f / f_c - 1 cancels to about 1e-16 / |f / f_c - 1|, a few 1e-12 relative in the band.)
+/// 1e-7 relative (both are stored in f32, whose rounding is at most 2^-24 = 6e-8 relative);
+/// a missing bin gets z = 0 and 1 / sigma = 0 (no sample). (The oracle's f / f_c - 1 cancels
+/// to about 1e-16 / |f / f_c - 1|, a few 1e-12 relative in the band.)
 #[test]
 fn rescale_stage_matches_signal_power_per_bin() {
     let n = 32_768;
@@ -220,8 +221,8 @@ fn rescale_stage_matches_signal_power_per_bin() {
             continue;
         }
         let (r, sigma) = (delta[k] * scale, scale / 20_000f64.sqrt());
-        assert!((z / (r / sigma) - 1.0).abs() < 1e-10, "bin {k}");
-        assert!((inv * sigma - 1.0).abs() < 1e-10, "bin {k}");
+        assert!((f64::from(z) / (r / sigma) - 1.0).abs() < 1e-7, "bin {k}");
+        assert!((f64::from(inv) * sigma - 1.0).abs() < 1e-7, "bin {k}");
     }
 }
 
@@ -278,7 +279,8 @@ fn fft_filter_matches_direct_sums() {
 
 /// The combining stage's batched `add_all` (RF pieces in parallel) gives the same spectrum,
 /// bit for bit, as adding the steps one by one, and both equal the maximum-likelihood mean and
-/// sigma computed from the steps' values and sigma within 1e-12 (of sigma, relative): overlapping steps of different lengths, NaN
+/// sigma computed from the steps' values and sigma within 1e-6 of sigma (the standardised
+/// pairs are f32; 3.7e-7 seen), for the mean and relative for sigma: overlapping steps of different lengths, NaN
 /// values, infinite and zero sigma, batches that start mid-grid and a step off the grid.
 #[test]
 fn combine_add_all_equals_steps_added_one_by_one() {
@@ -314,8 +316,11 @@ fn combine_add_all_equals_steps_added_one_by_one() {
             meta.timestamp_s += i as f64;
             // The standardised form as defined on `Standardised`: z = r / sigma and
             // 1 / sigma, both 0 where the bin holds no sample.
-            let (z, inverse_sigma) =
-                values.iter().zip(&sigma).map(|(&r, &s)| if r.is_finite() && s.is_finite() && s > 0.0 { (r / s, 1.0 / s) } else { (0.0, 0.0) }).unzip();
+            let (z, inverse_sigma) = values
+                .iter()
+                .zip(&sigma)
+                .map(|(&r, &s)| if r.is_finite() && s.is_finite() && s > 0.0 { ((r / s) as f32, (1.0 / s) as f32) } else { (0.0, 0.0) })
+                .unzip();
             (Step { index: i, file: 0, index_in_file: i, meta, values, standard: Standardised { z, inverse_sigma } }, sigma)
         })
         .collect();
@@ -348,15 +353,18 @@ fn combine_add_all_equals_steps_added_one_by_one() {
         }
     }
     assert_eq!(a.coverage, count);
+    let mut worst = 0.0f64;
     for j in 0..n_rf {
         if count[j] == 0 {
             assert!(a.combined[j].is_nan() && a.combined_sigma[j] == f64::INFINITY, "RF bin {j}");
             continue;
         }
         let (mean, sigma) = (num[j] / den[j], den[j].sqrt().recip());
-        assert!((a.combined[j] - mean).abs() <= 1e-12 * sigma, "RF bin {j}: {} vs {mean}", a.combined[j]);
-        assert!((a.combined_sigma[j] / sigma - 1.0).abs() <= 1e-12, "RF bin {j}");
+        worst = worst.max((a.combined[j] - mean).abs() / sigma).max((a.combined_sigma[j] / sigma - 1.0).abs());
+        assert!((a.combined[j] - mean).abs() <= 1e-6 * sigma, "RF bin {j}: {} vs {mean}", a.combined[j]);
+        assert!((a.combined_sigma[j] / sigma - 1.0).abs() <= 1e-6, "RF bin {j}");
     }
+    println!("largest departure from the f64 formula: {worst:.2e} (of sigma)");
 
     let mut off_grid = steps[3].clone();
     off_grid.meta.start_freq_hz += 40.0;

@@ -87,13 +87,14 @@ impl MlCombiner {
 /// more step where inv > 0. Equal-length slices, no division and no branch: the loop
 /// vectorises.
 #[multiversion(targets = "simd")]
-fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], z: &[f64], inv: &[f64]) {
+fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], z: &[f32], inv: &[f32]) {
     let n = sums.len().min(weights.len()).min(coverage.len()).min(z.len()).min(inv.len());
     let (sums, weights, coverage, z, inv) = (&mut sums[..n], &mut weights[..n], &mut coverage[..n], &z[..n], &inv[..n]);
     for k in 0..n {
-        sums[k] += z[k] * inv[k];
-        weights[k] += inv[k] * inv[k];
-        coverage[k] += u32::from(inv[k] > 0.0);
+        let (z, inv) = (f64::from(z[k]), f64::from(inv[k]));
+        sums[k] += z * inv;
+        weights[k] += inv * inv;
+        coverage[k] += u32::from(inv > 0.0);
     }
 }
 

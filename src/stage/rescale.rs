@@ -44,13 +44,19 @@ fn default_density() -> f64 {
     crate::physics::constants::DEFAULT_DM_DENSITY_GEV_PER_CM3
 }
 
+/// Accepted magnitudes of a numeric reference g_gamma (the models sit near 1: KSVZ -0.97,
+/// DFSZ 0.36). Within them 1 / sigma stays far inside the range of f32, in which the
+/// standardised bins are held, for any Q, detuning and number of averages of a real step.
+const G_GAMMA_RANGE: (f64, f64) = (1e-6, 1e6);
+
 impl RescaleConfig {
-    /// The reference g_gamma, if the option names a known model or a non-zero number.
+    /// The reference g_gamma, if the option names a known model or a number whose magnitude
+    /// lies in [`G_GAMMA_RANGE`].
     pub fn g_gamma(&self) -> Option<f64> {
         match &self.reference {
             Reference::Model(m) if m == "ksvz" => Some(G_GAMMA_KSVZ),
             Reference::Model(m) if m == "dfsz" => Some(G_GAMMA_DFSZ),
-            Reference::Value(v) if v.is_finite() && *v != 0.0 => Some(*v),
+            Reference::Value(v) if (G_GAMMA_RANGE.0..=G_GAMMA_RANGE.1).contains(&v.abs()) => Some(*v),
             _ => None,
         }
     }
@@ -63,7 +69,12 @@ impl StageConfig for RescaleConfig {
     fn validate(&self) -> Vec<(String, String)> {
         let mut p = Vec::new();
         if self.g_gamma().is_none() {
-            p.push(("reference".into(), format!("{:?} is not valid; choose \"ksvz\", \"dfsz\" or a non-zero number", self.reference)));
+            let (lo, hi) = G_GAMMA_RANGE;
+            let given = match &self.reference {
+                Reference::Model(m) => format!("{m:?}"),
+                Reference::Value(v) => format!("{v:e}"),
+            };
+            p.push(("reference".into(), format!("{given} is not valid; choose \"ksvz\", \"dfsz\" or a number of magnitude {lo:e} to {hi:e}")));
         }
         if !(self.dm_density_gev_per_cm3 > 0.0 && self.dm_density_gev_per_cm3 < 100.0) {
             p.push(("dm_density_gev_per_cm3".into(), format!("{} must be in (0, 100) GeV/cm^3", self.dm_density_gev_per_cm3)));
@@ -118,19 +129,20 @@ struct Lorentzian {
     four_q2: f64,
 }
 
-/// Fills `z` with delta sqrt(N) and `inverse_sigma` with sqrt(N) / scale, both 0 where the
-/// bin holds no sample (delta not finite, or 1 / sigma not finite and positive). Equal-length
+/// Fills `z` with delta sqrt(N) and `inverse_sigma` with sqrt(N) / scale, rounded to f32,
+/// both 0 where the bin holds no sample (delta not finite, or 1 / sigma not finite and
+/// positive in f32; the reference coupling's accepted range keeps it well inside). Equal-length
 /// slices, one division and no branch per bin: the loop vectorises. The bin index is counted
 /// as `i32` (a step has at most `runfile::MAX_BINS_PER_STEP` = 2^20 bins), which converts to
 /// f64 by a packed instruction where `usize` has none.
 #[multiversion(targets = "simd")]
-fn standardise_bins(delta: &[f64], z: &mut [f64], inverse_sigma: &mut [f64], line: Lorentzian, root_n: f64) {
+fn standardise_bins(delta: &[f64], z: &mut [f32], inverse_sigma: &mut [f32], line: Lorentzian, root_n: f64) {
     let n = delta.len().min(z.len()).min(inverse_sigma.len());
     let (delta, z, inverse_sigma) = (&delta[..n], &mut z[..n], &mut inverse_sigma[..n]);
     for (((&d, z), inv), k) in delta.iter().zip(z.iter_mut()).zip(inverse_sigma.iter_mut()).zip(0i32..) {
-        let inverse = root_n / line.scale(k);
-        let valid = finite(d) & (inverse > 0.0) & finite(inverse);
-        *z = if valid { d * root_n } else { 0.0 };
+        let inverse = (root_n / line.scale(k)) as f32;
+        let valid = finite(d) & (inverse > 0.0) & (inverse <= f32::MAX);
+        *z = if valid { (d * root_n) as f32 } else { 0.0 };
         *inv = if valid { inverse } else { 0.0 };
     }
 }

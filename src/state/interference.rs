@@ -47,8 +47,8 @@ pub struct IfProfile {
     weighted_sq_sum: Vec<f64>,
     /// Per RF bin of the night's grid: the most significant sample (z = r / sigma), its
     /// 1 / sigma and IF bin.
-    top_z: Vec<f64>,
-    top_inverse_sigma: Vec<f64>,
+    top_z: Vec<f32>,
+    top_inverse_sigma: Vec<f32>,
     top_if_bin: Vec<u32>,
 }
 
@@ -95,7 +95,7 @@ impl IfProfile {
             weight: vec![0.0; night.n_bins],
             weighted_sum: vec![0.0; night.n_bins],
             weighted_sq_sum: vec![0.0; night.n_bins],
-            top_z: vec![f64::NEG_INFINITY; n_rf],
+            top_z: vec![f32::NEG_INFINITY; n_rf],
             top_inverse_sigma: vec![0.0; n_rf],
             top_if_bin: vec![0; n_rf],
         }
@@ -186,7 +186,7 @@ impl IfProfile {
         for j in 0..n_rf {
             let k = self.top_if_bin[j] as usize;
             if self.top_z[j].is_finite() && in_line[k] {
-                let (z, inv) = (self.top_z[j], self.top_inverse_sigma[j]);
+                let (z, inv) = (f64::from(self.top_z[j]), f64::from(self.top_inverse_sigma[j]));
                 scan.removed_weight[j] = inv * inv;
                 scan.removed_weighted_sum[j] = z * inv;
                 scan.removed_if_bin[j] = k as i32;
@@ -201,25 +201,26 @@ impl IfProfile {
 /// division and no branch, and the buffers come in as separate arguments, so the compiler
 /// knows they are distinct: the loop vectorises.
 #[multiversion(targets = "simd")]
-fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], z: &[f64], inv: &[f64]) {
+fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], z: &[f32], inv: &[f32]) {
     let n = count.len().min(w_sum.len()).min(wr_sum.len()).min(wrr_sum.len()).min(z.len()).min(inv.len());
     for i in 0..n {
-        count[i] += u32::from(inv[i] > 0.0);
-        w_sum[i] += inv[i] * inv[i];
-        wr_sum[i] += z[i] * inv[i];
-        wrr_sum[i] += z[i] * z[i];
+        let (z, inv) = (f64::from(z[i]), f64::from(inv[i]));
+        count[i] += u32::from(inv > 0.0);
+        w_sum[i] += inv * inv;
+        wr_sum[i] += z * inv;
+        wrr_sum[i] += z * z;
     }
 }
 
 /// Replaces, bin by bin, the kept most significant sample (z, 1 / sigma, IF bin) by one
 /// step's sample where that is a sample (inv > 0) and strictly more significant, so that of
 /// equal samples the first in step order stays. `first_if_bin` is the IF bin of the slices'
-/// first entry. A new maximum is rare after the first few steps, so the bins are tested four
+/// first entry. A new maximum is rare after the first few steps, so the bins are tested eight
 /// at a time without a branch (a loop that vectorises) and only a group holding a new
 /// maximum is updated.
 #[multiversion(targets = "simd")]
-fn keep_top(z_top: &mut [f64], inv_top: &mut [f64], k_top: &mut [u32], z: &[f64], inv: &[f64], first_if_bin: u32) {
-    const GROUP: usize = 4;
+fn keep_top(z_top: &mut [f32], inv_top: &mut [f32], k_top: &mut [u32], z: &[f32], inv: &[f32], first_if_bin: u32) {
+    const GROUP: usize = 8;
     let n = z_top.len().min(inv_top.len()).min(k_top.len()).min(z.len()).min(inv.len());
     let (z_top, inv_top, k_top, z, inv) = (&mut z_top[..n], &mut inv_top[..n], &mut k_top[..n], &z[..n], &inv[..n]);
     let whole = n - n % GROUP;
@@ -236,7 +237,7 @@ fn keep_top(z_top: &mut [f64], inv_top: &mut [f64], k_top: &mut [u32], z: &[f64]
 
 /// The update of [`keep_top`] over the bins `group`.
 #[inline(always)]
-fn take_higher(z_top: &mut [f64], inv_top: &mut [f64], k_top: &mut [u32], z: &[f64], inv: &[f64], group: std::ops::Range<usize>, first_if_bin: u32) {
+fn take_higher(z_top: &mut [f32], inv_top: &mut [f32], k_top: &mut [u32], z: &[f32], inv: &[f32], group: std::ops::Range<usize>, first_if_bin: u32) {
     for i in group {
         if (inv[i] > 0.0) & (z[i] > z_top[i]) {
             z_top[i] = z[i];
@@ -262,13 +263,13 @@ mod tests {
     /// lengths that are not multiples of the group, with ties, missing samples and negative z.
     #[test]
     fn top_samples_follow_the_plain_rule() {
-        for n in [0, 1, 3, 4, 5, 17, 64] {
-            let (mut z_top, mut inv_top, mut k_top) = (vec![f64::NEG_INFINITY; n], vec![0.0; n], vec![0u32; n]);
+        for n in [0, 1, 3, 7, 8, 9, 17, 64] {
+            let (mut z_top, mut inv_top, mut k_top) = (vec![f32::NEG_INFINITY; n], vec![0.0; n], vec![0u32; n]);
             let (mut z_want, mut inv_want, mut k_want) = (z_top.clone(), inv_top.clone(), k_top.clone());
             for step in 0..12u32 {
                 // Values from a small set, so ties and repeats are common.
-                let z: Vec<f64> = (0..n).map(|i| f64::from((i as u32 * 7 + step * 5) % 9) - 4.0).collect();
-                let inv: Vec<f64> = (0..n).map(|i| if (i as u32 + step) % 5 == 0 { 0.0 } else { 1.0 + f64::from(step) }).collect();
+                let z: Vec<f32> = (0..n).map(|i| ((i as u32 * 7 + step * 5) % 9) as f32 - 4.0).collect();
+                let inv: Vec<f32> = (0..n).map(|i| if (i as u32 + step) % 5 == 0 { 0.0 } else { 1.0 + step as f32 }).collect();
                 keep_top(&mut z_top, &mut inv_top, &mut k_top, &z, &inv, 100 * step);
                 for i in 0..n {
                     if inv[i] > 0.0 && z[i] > z_want[i] {
