@@ -142,12 +142,12 @@ impl StepStage for Baseline {
         WORK.with_borrow_mut(|work| {
             let Work { flat, fit, scratch } = work;
             flat.resize(n, 0.0);
-            multiply(&step.values, &self.inverse_gain, flat);
-            bridge_gaps(flat);
+            if multiply_counting_finite(&step.values, &self.inverse_gain, flat) < n {
+                bridge_gaps(flat);
+            }
             fit.resize(n, 0.0);
             self.plan.smooth_with(flat, fit, scratch).expect("buffers have the planned length");
-            residual(&mut step.values, flat, fit);
-            let measured = rms_of_finite(&step.values);
+            let measured = residual_and_its_rms(&mut step.values, flat, fit);
             let expected = ((1.0 - self.plan.filter().center_weight()) / step.meta.n_averages as f64).sqrt();
             if (measured / expected - 1.0).abs() > self.max_dev {
                 return Verdict::Cut(format!("residual spread {measured:.3e} departs from predicted {expected:.3e} by more than {:.0}%", 100.0 * self.max_dev));
@@ -171,47 +171,55 @@ fn add_power(sums: &mut [f64], counts: &mut [u32], values: &[f64]) {
     }
 }
 
-/// `out[k] = a[k] * b[k]` over the common length. The per-bin loops of this stage take
-/// slices as arguments, so the compiler knows the buffers are distinct and vectorises them.
+/// `out[k] = a[k] * b[k]` over the common length; returns how many products are finite. The
+/// per-bin loops of this stage take slices as arguments, so the compiler knows the buffers
+/// are distinct, and count without branches: they vectorise.
 #[multiversion(targets = "simd")]
-fn multiply(a: &[f64], b: &[f64], out: &mut [f64]) {
+fn multiply_counting_finite(a: &[f64], b: &[f64], out: &mut [f64]) -> usize {
+    let mut count = 0;
     for (o, (&a, &b)) in out.iter_mut().zip(a.iter().zip(b)) {
         *o = a * b;
+        count += usize::from(finite(*o));
     }
+    count
 }
 
-/// delta = x / fit - 1 in every bin that holds data; bins without (NaN after ingest) are left
-/// as they are, since `flat` was bridged over them. The ratio is formed in `fit` first, for
-/// every bin, so the division is not tied to the test and both loops vectorise.
+/// Replaces every value that holds data by delta = x / fit - 1 (bins without, NaN after
+/// ingest, are left as they are, since `flat` was bridged over them) and returns the root mean
+/// square of the finite deltas (0 if there are none). The ratio is formed in `fit` first, for
+/// every bin, so the division is not tied to the test; the second loop selects and sums in
+/// four interleaved partial sums, which keep the additions off one serial chain. Both loops
+/// vectorise, and the sum does not depend on the SIMD level.
 #[multiversion(targets = "simd")]
-fn residual(values: &mut [f64], flat: &[f64], fit: &mut [f64]) {
+fn residual_and_its_rms(values: &mut [f64], flat: &[f64], fit: &mut [f64]) -> f64 {
+    const LANES: usize = 4;
+    let n = values.len().min(flat.len()).min(fit.len());
+    let (values, flat, fit) = (&mut values[..n], &flat[..n], &mut fit[..n]);
     for (f, &x) in fit.iter_mut().zip(flat) {
         *f = x / *f - 1.0;
     }
-    for (v, &delta) in values.iter_mut().zip(fit.iter()) {
-        *v = if finite(*v) { delta } else { *v };
-    }
-}
-
-/// Root mean square of the finite values (0 if there are none). Four interleaved partial
-/// sums keep the floating-point additions off one serial chain.
-#[multiversion(targets = "simd")]
-fn rms_of_finite(x: &[f64]) -> f64 {
-    let (mut sums, mut count) = ([0.0f64; 4], 0usize);
-    let mut chunks = x.chunks_exact(4);
-    for c in &mut chunks {
-        for (s, &v) in sums.iter_mut().zip(c) {
-            let valid = finite(v);
-            *s += if valid { v * v } else { 0.0 };
-            count += usize::from(valid);
+    let (mut sums, mut counts) = ([0.0f64; LANES], [0u64; LANES]);
+    let mut groups = values.chunks_exact_mut(LANES);
+    for (v, delta) in (&mut groups).zip(fit.chunks_exact(LANES)) {
+        for lane in 0..LANES {
+            let valid = finite(v[lane]);
+            v[lane] = if valid { delta[lane] } else { v[lane] };
+            let counted = valid & finite(delta[lane]);
+            sums[lane] += if counted { delta[lane] * delta[lane] } else { 0.0 };
+            counts[lane] += u64::from(counted);
         }
     }
-    for &v in chunks.remainder() {
-        if v.is_finite() {
-            sums[0] += v * v;
-            count += 1;
+    let whole = n - n % LANES;
+    for (v, &delta) in groups.into_remainder().iter_mut().zip(&fit[whole..]) {
+        if finite(*v) {
+            *v = delta;
+            if finite(delta) {
+                sums[0] += delta * delta;
+                counts[0] += 1;
+            }
         }
     }
+    let count = counts.iter().sum::<u64>();
     ((sums[0] + sums[1] + (sums[2] + sums[3])) / count.max(1) as f64).sqrt()
 }
 
@@ -219,10 +227,6 @@ fn rms_of_finite(x: &[f64]) -> f64 {
 /// the ends; a slice with no finite value is left as it is).
 fn bridge_gaps(x: &mut [f64]) {
     let n = x.len();
-    // Fast path: most steps have no gap (counted without branches, so it vectorises).
-    if x.iter().map(|&v| usize::from(finite(v))).sum::<usize>() == n {
-        return;
-    }
     let mut previous: Option<usize> = None;
     let mut i = 0;
     while i < n {

@@ -4,7 +4,7 @@
 //! A step whose start is not a whole number of bins from the grid origin (within
 //! `max_misalignment_bins`) is an error naming it: steps are never silently shifted.
 
-use super::{Combiner, NightInfo, Spectrum, Standardised, Step};
+use super::{Combiner, NightInfo, Spectrum, Standardised, Step, written_zeros};
 use crate::config::{BuildContext, Built, StageConfig};
 use multiversion::multiversion;
 use rayon::prelude::*;
@@ -42,9 +42,9 @@ impl StageConfig for CombineConfig {
             step_span_hz: (night.n_bins - 1) as f64 * night.bin_width_hz,
             origin_hz: lo,
             bin_width_hz: night.bin_width_hz,
-            weighted_sum: vec![0.0; n],
-            weight: vec![0.0; n],
-            coverage: vec![0; n],
+            weighted_sum: written_zeros(n),
+            weight: written_zeros(n),
+            coverage: written_zeros(n),
         })))
     }
 }

@@ -21,6 +21,16 @@ pub(crate) fn finite(x: f64) -> bool {
     x.abs() <= f64::MAX
 }
 
+/// `n` zeros, written when allocated. A zeroed allocation (`vec![0.0; n]`) of a large array
+/// gets pages that the first read maps to the kernel's shared zero page and the first write
+/// then copies, a second page fault and a TLB flush on every core per page; an accumulator
+/// that adds into each entry (read, then write) would take both inside its hot loop.
+pub(crate) fn written_zeros<T: Copy + Default>(n: usize) -> Vec<T> {
+    let mut v = Vec::with_capacity(n);
+    v.resize(n, T::default());
+    v
+}
+
 /// What the numbers in the data currently mean.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Form {
