@@ -19,5 +19,6 @@ pub mod report;
 pub mod runfile;
 pub mod shard;
 pub mod sim;
+mod simd;
 pub mod stage;
 pub mod state;

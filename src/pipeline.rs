@@ -7,8 +7,8 @@ use crate::inject::{SignalModel, SyntheticAxion};
 use crate::physics::constants::BOLTZMANN_J_PER_K;
 use crate::physics::signal::{CavityState, Haloscope};
 use crate::runfile::{RunFileError, RunReader, StepMeta};
+use crate::simd::per_bin_loop;
 use crate::stage::{Combiner, NightInfo, Spectrum, SpectrumStage, Step, StepStage, Verdict};
-use multiversion::multiversion;
 use ndarray::Array2;
 use rayon::prelude::*;
 use std::path::PathBuf;
@@ -304,10 +304,11 @@ impl Rows {
     }
 }
 
-/// Appends `row` to `out`, widened to f64.
-#[multiversion(targets = "simd")]
-fn widen(row: &[f32], out: &mut Vec<f64>) {
-    out.extend(row.iter().map(|&p| f64::from(p)));
+per_bin_loop! {
+    /// Appends `row` to `out`, widened to f64.
+    fn widen(row: &[f32], out: &mut Vec<f64>) {
+        out.extend(row.iter().map(|&p| f64::from(p)));
+    }
 }
 
 /// A chunk of rows in flight from the reading thread.

@@ -19,7 +19,7 @@
 use super::{NightInfo, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::savgol::{SavitzkyGolay, SmoothingPlan, SmoothingScratch};
-use multiversion::multiversion;
+use crate::simd::per_bin_loop;
 use rayon::prelude::*;
 use serde::Deserialize;
 use std::cell::RefCell;
@@ -160,67 +160,70 @@ impl StepStage for Baseline {
 /// IF bins one task of [`Baseline::survey_all`] accumulates.
 const SURVEY_PIECE_BINS: usize = 4096;
 
-/// Adds the finite values to `sums` and counts them in `counts`, bin by bin over the common
-/// length.
-#[multiversion(targets = "simd")]
-fn add_power(sums: &mut [f64], counts: &mut [u32], values: &[f64]) {
-    for ((s, c), &p) in sums.iter_mut().zip(counts.iter_mut()).zip(values) {
-        let valid = finite(p);
-        *s += if valid { p } else { 0.0 };
-        *c += u32::from(valid);
-    }
-}
-
-/// `out[k] = a[k] * b[k]` over the common length; returns how many products are finite. The
-/// per-bin loops of this stage take slices as arguments, so the compiler knows the buffers
-/// are distinct, and count without branches: they vectorise.
-#[multiversion(targets = "simd")]
-fn multiply_counting_finite(a: &[f64], b: &[f64], out: &mut [f64]) -> usize {
-    let mut count = 0;
-    for (o, (&a, &b)) in out.iter_mut().zip(a.iter().zip(b)) {
-        *o = a * b;
-        count += usize::from(finite(*o));
-    }
-    count
-}
-
-/// Replaces every value that holds data by delta = x / fit - 1 (bins without, NaN after
-/// ingest, are left as they are, since `flat` was bridged over them) and returns the root mean
-/// square of the finite deltas (0 if there are none). The ratio is formed in `fit` first, for
-/// every bin, so the division is not tied to the test; the second loop selects and sums in
-/// four interleaved partial sums, which keep the additions off one serial chain. Both loops
-/// vectorise, and the sum does not depend on the SIMD level.
-#[multiversion(targets = "simd")]
-fn residual_and_its_rms(values: &mut [f64], flat: &[f64], fit: &mut [f64]) -> f64 {
-    const LANES: usize = 4;
-    let n = values.len().min(flat.len()).min(fit.len());
-    let (values, flat, fit) = (&mut values[..n], &flat[..n], &mut fit[..n]);
-    for (f, &x) in fit.iter_mut().zip(flat) {
-        *f = x / *f - 1.0;
-    }
-    let (mut sums, mut counts) = ([0.0f64; LANES], [0u64; LANES]);
-    let mut groups = values.chunks_exact_mut(LANES);
-    for (v, delta) in (&mut groups).zip(fit.chunks_exact(LANES)) {
-        for lane in 0..LANES {
-            let valid = finite(v[lane]);
-            v[lane] = if valid { delta[lane] } else { v[lane] };
-            let counted = valid & finite(delta[lane]);
-            sums[lane] += if counted { delta[lane] * delta[lane] } else { 0.0 };
-            counts[lane] += u64::from(counted);
+per_bin_loop! {
+    /// Adds the finite values to `sums` and counts them in `counts`, bin by bin over the common
+    /// length.
+    fn add_power(sums: &mut [f64], counts: &mut [u32], values: &[f64]) {
+        for ((s, c), &p) in sums.iter_mut().zip(counts.iter_mut()).zip(values) {
+            let valid = finite(p);
+            *s += if valid { p } else { 0.0 };
+            *c += u32::from(valid);
         }
     }
-    let whole = n - n % LANES;
-    for (v, &delta) in groups.into_remainder().iter_mut().zip(&fit[whole..]) {
-        if finite(*v) {
-            *v = delta;
-            if finite(delta) {
-                sums[0] += delta * delta;
-                counts[0] += 1;
+}
+
+per_bin_loop! {
+    /// `out[k] = a[k] * b[k]` over the common length; returns how many products are finite. The
+    /// per-bin loops of this stage take slices as arguments, so the compiler knows the buffers
+    /// are distinct, and count without branches: they vectorise.
+    fn multiply_counting_finite(a: &[f64], b: &[f64], out: &mut [f64]) -> usize {
+        let mut count = 0;
+        for (o, (&a, &b)) in out.iter_mut().zip(a.iter().zip(b)) {
+            *o = a * b;
+            count += usize::from(finite(*o));
+        }
+        count
+    }
+}
+
+per_bin_loop! {
+    /// Replaces every value that holds data by delta = x / fit - 1 (bins without, NaN after
+    /// ingest, are left as they are, since `flat` was bridged over them) and returns the root mean
+    /// square of the finite deltas (0 if there are none). The ratio is formed in `fit` first, for
+    /// every bin, so the division is not tied to the test; the second loop selects and sums in
+    /// four interleaved partial sums, which keep the additions off one serial chain. Both loops
+    /// vectorise, and the sum does not depend on the SIMD level.
+    fn residual_and_its_rms(values: &mut [f64], flat: &[f64], fit: &mut [f64]) -> f64 {
+        const LANES: usize = 4;
+        let n = values.len().min(flat.len()).min(fit.len());
+        let (values, flat, fit) = (&mut values[..n], &flat[..n], &mut fit[..n]);
+        for (f, &x) in fit.iter_mut().zip(flat) {
+            *f = x / *f - 1.0;
+        }
+        let (mut sums, mut counts) = ([0.0f64; LANES], [0u64; LANES]);
+        let mut groups = values.chunks_exact_mut(LANES);
+        for (v, delta) in (&mut groups).zip(fit.chunks_exact(LANES)) {
+            for lane in 0..LANES {
+                let valid = finite(v[lane]);
+                v[lane] = if valid { delta[lane] } else { v[lane] };
+                let counted = valid & finite(delta[lane]);
+                sums[lane] += if counted { delta[lane] * delta[lane] } else { 0.0 };
+                counts[lane] += u64::from(counted);
             }
         }
+        let whole = n - n % LANES;
+        for (v, &delta) in groups.into_remainder().iter_mut().zip(&fit[whole..]) {
+            if finite(*v) {
+                *v = delta;
+                if finite(delta) {
+                    sums[0] += delta * delta;
+                    counts[0] += 1;
+                }
+            }
+        }
+        let count = counts.iter().sum::<u64>();
+        ((sums[0] + sums[1] + (sums[2] + sums[3])) / count.max(1) as f64).sqrt()
     }
-    let count = counts.iter().sum::<u64>();
-    ((sums[0] + sums[1] + (sums[2] + sums[3])) / count.max(1) as f64).sqrt()
 }
 
 /// Linear interpolation across runs of non-finite values, in place (constant extension at

@@ -6,7 +6,7 @@
 
 use super::{Combiner, NightInfo, Spectrum, Standardised, Step, written_zeros};
 use crate::config::{BuildContext, Built, StageConfig};
-use multiversion::multiversion;
+use crate::simd::per_bin_loop;
 use rayon::prelude::*;
 use serde::Deserialize;
 
@@ -82,19 +82,20 @@ impl MlCombiner {
     }
 }
 
-/// Adds a step's standardised bins (significance `z`, inverse sigma `inv`, both 0 where there
-/// is no sample) into the sums of the same RF bins: weighted value z inv, weight inv^2, one
-/// more step where inv > 0. Equal-length slices, no division and no branch: the loop
-/// vectorises.
-#[multiversion(targets = "simd")]
-fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], z: &[f32], inv: &[f32]) {
-    let n = sums.len().min(weights.len()).min(coverage.len()).min(z.len()).min(inv.len());
-    let (sums, weights, coverage, z, inv) = (&mut sums[..n], &mut weights[..n], &mut coverage[..n], &z[..n], &inv[..n]);
-    for k in 0..n {
-        let (z, inv) = (f64::from(z[k]), f64::from(inv[k]));
-        sums[k] += z * inv;
-        weights[k] += inv * inv;
-        coverage[k] += u32::from(inv > 0.0);
+per_bin_loop! {
+    /// Adds a step's standardised bins (significance `z`, inverse sigma `inv`, both 0 where there
+    /// is no sample) into the sums of the same RF bins: weighted value z inv, weight inv^2, one
+    /// more step where inv > 0. Equal-length slices, no division and no branch: the loop
+    /// vectorises.
+    fn accumulate(sums: &mut [f64], weights: &mut [f64], coverage: &mut [u32], z: &[f32], inv: &[f32]) {
+        let n = sums.len().min(weights.len()).min(coverage.len()).min(z.len()).min(inv.len());
+        let (sums, weights, coverage, z, inv) = (&mut sums[..n], &mut weights[..n], &mut coverage[..n], &z[..n], &inv[..n]);
+        for k in 0..n {
+            let (z, inv) = (f64::from(z[k]), f64::from(inv[k]));
+            sums[k] += z * inv;
+            weights[k] += inv * inv;
+            coverage[k] += u32::from(inv > 0.0);
+        }
     }
 }
 

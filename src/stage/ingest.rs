@@ -6,7 +6,7 @@
 
 use super::{NightInfo, Step, StepStage, Verdict};
 use crate::config::{BuildContext, Built, StageConfig};
-use multiversion::multiversion;
+use crate::simd::per_bin_loop;
 use serde::Deserialize;
 
 /// Options of the `ingest` stage. Ranges are inclusive `[min, max]`.
@@ -73,30 +73,21 @@ impl StepStage for Ingest {
     }
 }
 
-/// Replaces every bin that is not finite and positive by NaN; returns how many bins were valid.
-///
-/// Eight lanes with their own counters, floating-point comparisons combined with `&` rather
-/// than `&&`: no branch in the loop, so it vectorises (NaN fails both comparisons; `<= MAX`
-/// rather than `< INFINITY`, which the compiler turns into integer tests).
-#[multiversion(targets = "simd")]
-fn mark_invalid(values: &mut [f64]) -> usize {
-    const LANES: usize = 8;
-    let mut counts = [0u64; LANES];
-    let mut chunks = values.chunks_exact_mut(LANES);
-    for chunk in &mut chunks {
-        for (p, count) in chunk.iter_mut().zip(&mut counts) {
+per_bin_loop! {
+    /// Replaces every bin that is not finite and positive by NaN; returns how many bins were valid.
+    ///
+    /// Floating-point comparisons combined with `&` rather than `&&` and a count by addition:
+    /// no branch in the loop, so it vectorises (NaN fails both comparisons; `<= MAX` rather
+    /// than `< INFINITY`, which the compiler turns into integer tests).
+    fn mark_invalid(values: &mut [f64]) -> usize {
+        let mut good = 0;
+        for p in values.iter_mut() {
             let valid = (*p > 0.0) & (*p <= f64::MAX);
-            *count += u64::from(valid);
+            good += usize::from(valid);
             *p = if valid { *p } else { f64::NAN };
         }
+        good
     }
-    let mut good = counts.iter().sum::<u64>() as usize;
-    for p in chunks.into_remainder() {
-        let valid = (*p > 0.0) & (*p <= f64::MAX);
-        good += usize::from(valid);
-        *p = if valid { *p } else { f64::NAN };
-    }
-    good
 }
 
 #[cfg(test)]

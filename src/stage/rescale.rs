@@ -12,7 +12,7 @@ use super::{NightInfo, Standardised, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_DFSZ, G_GAMMA_KSVZ};
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
-use multiversion::multiversion;
+use crate::simd::per_bin_loop;
 use serde::Deserialize;
 
 /// The reference axion-photon coupling, as a model name or a value of g_gamma.
@@ -129,21 +129,22 @@ struct Lorentzian {
     four_q2: f64,
 }
 
-/// Fills `z` with delta sqrt(N) and `inverse_sigma` with sqrt(N) / scale, rounded to f32,
-/// both 0 where the bin holds no sample (delta not finite, or 1 / sigma not finite and
-/// positive in f32; the reference coupling's accepted range keeps it well inside). Equal-length
-/// slices, one division and no branch per bin: the loop vectorises. The bin index is counted
-/// as `i32` (a step has at most `runfile::MAX_BINS_PER_STEP` = 2^20 bins), which converts to
-/// f64 by a packed instruction where `usize` has none.
-#[multiversion(targets = "simd")]
-fn standardise_bins(delta: &[f64], z: &mut [f32], inverse_sigma: &mut [f32], line: Lorentzian, root_n: f64) {
-    let n = delta.len().min(z.len()).min(inverse_sigma.len());
-    let (delta, z, inverse_sigma) = (&delta[..n], &mut z[..n], &mut inverse_sigma[..n]);
-    for (((&d, z), inv), k) in delta.iter().zip(z.iter_mut()).zip(inverse_sigma.iter_mut()).zip(0i32..) {
-        let inverse = (root_n / line.scale(k)) as f32;
-        let valid = finite(d) & (inverse > 0.0) & (inverse <= f32::MAX);
-        *z = if valid { (d * root_n) as f32 } else { 0.0 };
-        *inv = if valid { inverse } else { 0.0 };
+per_bin_loop! {
+    /// Fills `z` with delta sqrt(N) and `inverse_sigma` with sqrt(N) / scale, rounded to f32,
+    /// both 0 where the bin holds no sample (delta not finite, or 1 / sigma not finite and
+    /// positive in f32; the reference coupling's accepted range keeps it well inside). Equal-length
+    /// slices, one division and no branch per bin: the loop vectorises. The bin index is counted
+    /// as `i32` (a step has at most `runfile::MAX_BINS_PER_STEP` = 2^20 bins), which converts to
+    /// f64 by a packed instruction where `usize` has none.
+    fn standardise_bins(delta: &[f64], z: &mut [f32], inverse_sigma: &mut [f32], line: Lorentzian, root_n: f64) {
+        let n = delta.len().min(z.len()).min(inverse_sigma.len());
+        let (delta, z, inverse_sigma) = (&delta[..n], &mut z[..n], &mut inverse_sigma[..n]);
+        for (((&d, z), inv), k) in delta.iter().zip(z.iter_mut()).zip(inverse_sigma.iter_mut()).zip(0i32..) {
+            let inverse = (root_n / line.scale(k)) as f32;
+            let valid = finite(d) & (inverse > 0.0) & (inverse <= f32::MAX);
+            *z = if valid { (d * root_n) as f32 } else { 0.0 };
+            *inv = if valid { inverse } else { 0.0 };
+        }
     }
 }
 

@@ -22,13 +22,16 @@
 //! step, arrays of the IF and RF lengths; the accumulation runs in step order, so the result
 //! does not depend on the thread count.
 
+use crate::simd::per_bin_loop;
 use crate::stage::{NightInfo, Standardised, Step};
-use multiversion::multiversion;
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 /// Bins one parallel task of [`IfProfile::add_all`] works on.
 const PIECE_BINS: usize = 8192;
+
+/// Bins [`keep_top`] tests at once for a new maximum.
+const TOP_BLOCK_BINS: usize = 64;
 
 /// Significance in the IF profile (excess scatter, in normal sigma) above which an IF bin
 /// holds a line. With 4096 IF bins a null night puts a bin above 5 sigma with probability
@@ -196,53 +199,45 @@ impl IfProfile {
     }
 }
 
-/// Adds one step's standardised samples (equal-length slices; z and 1 / sigma, both 0 where
-/// there is no sample) to the per-IF-bin sums: w = inv^2, w r = z inv, w r^2 = z^2. No
-/// division and no branch, and the buffers come in as separate arguments, so the compiler
-/// knows they are distinct: the loop vectorises.
-#[multiversion(targets = "simd")]
-fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], z: &[f32], inv: &[f32]) {
-    let n = count.len().min(w_sum.len()).min(wr_sum.len()).min(wrr_sum.len()).min(z.len()).min(inv.len());
-    for i in 0..n {
-        let (z, inv) = (f64::from(z[i]), f64::from(inv[i]));
-        count[i] += u32::from(inv > 0.0);
-        w_sum[i] += inv * inv;
-        wr_sum[i] += z * inv;
-        wrr_sum[i] += z * z;
-    }
-}
-
-/// Replaces, bin by bin, the kept most significant sample (z, 1 / sigma, IF bin) by one
-/// step's sample where that is a sample (inv > 0) and strictly more significant, so that of
-/// equal samples the first in step order stays. `first_if_bin` is the IF bin of the slices'
-/// first entry. A new maximum is rare after the first few steps, so the bins are tested eight
-/// at a time without a branch (a loop that vectorises) and only a group holding a new
-/// maximum is updated.
-#[multiversion(targets = "simd")]
-fn keep_top(z_top: &mut [f32], inv_top: &mut [f32], k_top: &mut [u32], z: &[f32], inv: &[f32], first_if_bin: u32) {
-    const GROUP: usize = 8;
-    let n = z_top.len().min(inv_top.len()).min(k_top.len()).min(z.len()).min(inv.len());
-    let (z_top, inv_top, k_top, z, inv) = (&mut z_top[..n], &mut inv_top[..n], &mut k_top[..n], &z[..n], &inv[..n]);
-    let whole = n - n % GROUP;
-    for start in (0..whole).step_by(GROUP) {
-        let group = start..start + GROUP;
-        let any =
-            z_top[group.clone()].iter().zip(&z[group.clone()]).zip(&inv[group.clone()]).fold(false, |any, ((&top, &z), &inv)| any | ((inv > 0.0) & (z > top)));
-        if any {
-            take_higher(z_top, inv_top, k_top, z, inv, group, first_if_bin);
+per_bin_loop! {
+    /// Adds one step's standardised samples (equal-length slices; z and 1 / sigma, both 0 where
+    /// there is no sample) to the per-IF-bin sums: w = inv^2, w r = z inv, w r^2 = z^2. No
+    /// division and no branch, and the buffers come in as separate arguments, so the compiler
+    /// knows they are distinct: the loop vectorises.
+    fn add_to_sums(count: &mut [u32], w_sum: &mut [f64], wr_sum: &mut [f64], wrr_sum: &mut [f64], z: &[f32], inv: &[f32]) {
+        let n = count.len().min(w_sum.len()).min(wr_sum.len()).min(wrr_sum.len()).min(z.len()).min(inv.len());
+        for i in 0..n {
+            let (z, inv) = (f64::from(z[i]), f64::from(inv[i]));
+            count[i] += u32::from(inv > 0.0);
+            w_sum[i] += inv * inv;
+            wr_sum[i] += z * inv;
+            wrr_sum[i] += z * z;
         }
     }
-    take_higher(z_top, inv_top, k_top, z, inv, whole..n, first_if_bin);
 }
 
-/// The update of [`keep_top`] over the bins `group`.
-#[inline(always)]
-fn take_higher(z_top: &mut [f32], inv_top: &mut [f32], k_top: &mut [u32], z: &[f32], inv: &[f32], group: std::ops::Range<usize>, first_if_bin: u32) {
-    for i in group {
-        if (inv[i] > 0.0) & (z[i] > z_top[i]) {
-            z_top[i] = z[i];
-            inv_top[i] = inv[i];
-            k_top[i] = first_if_bin + i as u32;
+per_bin_loop! {
+    /// Replaces, bin by bin, the kept most significant sample (z, 1 / sigma, IF bin) by one
+    /// step's sample where that is a sample (inv > 0) and strictly more significant, so that of
+    /// equal samples the first in step order stays. `first_if_bin` is the IF bin of the slices'
+    /// first entry. A new maximum is rare after the first few steps, so each block of
+    /// [`TOP_BLOCK_BINS`] is first tested as a whole, without a branch (a loop that
+    /// vectorises), and only a block holding a new maximum is updated.
+    fn keep_top(z_top: &mut [f32], inv_top: &mut [f32], k_top: &mut [u32], z: &[f32], inv: &[f32], first_if_bin: u32) {
+        let n = z_top.len().min(inv_top.len()).min(k_top.len()).min(z.len()).min(inv.len());
+        for start in (0..n).step_by(TOP_BLOCK_BINS) {
+            let block = start..(start + TOP_BLOCK_BINS).min(n);
+            let (tops, zs, invs) = (&z_top[block.clone()], &z[block.clone()], &inv[block.clone()]);
+            let any = tops.iter().zip(zs).zip(invs).fold(false, |any, ((&top, &z), &inv)| any | ((inv > 0.0) & (z > top)));
+            if any {
+                for i in block {
+                    if (inv[i] > 0.0) & (z[i] > z_top[i]) {
+                        z_top[i] = z[i];
+                        inv_top[i] = inv[i];
+                        k_top[i] = first_if_bin + i as u32;
+                    }
+                }
+            }
         }
     }
 }
