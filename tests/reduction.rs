@@ -180,8 +180,9 @@ fn rf_fixed_line_is_flagged() {
     );
 }
 
-/// The same inputs give bit-identical grand spectra with 1 and with 2 threads, and the
-/// simulator gives the same file content for the same seed.
+/// The same inputs give bit-identical grand spectra with 1 and with 2 threads (which also
+/// read and process the steps in chunks of different sizes), and the simulator gives the same
+/// file content for the same seed.
 #[test]
 fn reduction_is_bit_identical_across_thread_counts() {
     let dir = tempfile::tempdir().unwrap();
