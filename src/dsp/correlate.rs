@@ -27,6 +27,8 @@ use std::sync::Arc;
 use rustfft::num_complex::Complex;
 use rustfft::{Fft, FftNum, FftPlanner};
 
+use crate::simd::per_bin_loop;
+
 /// A floating-point type the transforms of a [`Correlator`] can run in.
 pub trait Sample: FftNum {
     /// The nearest value of this type.
@@ -146,36 +148,61 @@ impl<T: Sample> Correlator<T> {
         let (buf, work) = (&mut scratch.block[..], &mut scratch.fft[..]);
         let n = input.len();
         let window = |start: usize| &input[start.min(n)..(start + len).min(n)];
-        let departure = |x: f64| T::narrow(x - level);
         let back = level * self.kernel_sum;
         // Block b reads input[b·valid .. b·valid + len) and yields out[b·valid ..][..valid].
         for pair in (0..blocks).step_by(2) {
             let (re_start, im_start) = (pair * valid, (pair + 1) * valid);
             let re = window(re_start);
             let im = if pair + 1 < blocks { window(im_start) } else { &[] };
-            // `im` starts later than `re`, so it is never the longer one.
-            let both = im.len();
-            for (slot, (&a, &b)) in buf.iter_mut().zip(re.iter().zip(im)) {
-                *slot = Complex::new(departure(a), departure(b));
-            }
-            for (slot, &a) in buf[both..].iter_mut().zip(&re[both..]) {
-                *slot = Complex::new(departure(a), T::zero());
-            }
-            buf[re.len()..].fill(zero);
+            pack_departures(re, im, level, buf);
             self.forward.process_with_scratch(buf, work);
-            buf.iter_mut().zip(self.spectrum.iter()).for_each(|(b, k)| *b = *b * *k);
+            multiply_in_place(buf, &self.spectrum);
             self.inverse.process_with_scratch(buf, work);
             let results = &buf[self.kernel_len - 1..];
             let end = (re_start + valid).min(out.len());
-            for (o, r) in out[re_start..end].iter_mut().zip(results) {
-                *o = r.re.widen() + back;
-            }
+            unpack(results, back, &mut out[re_start..end], &mut []);
             if pair + 1 < blocks {
                 let end = (im_start + valid).min(out.len());
-                for (o, r) in out[im_start..end].iter_mut().zip(results) {
-                    *o = r.im.widen() + back;
-                }
+                unpack(results, back, &mut [], &mut out[im_start..end]);
             }
+        }
+    }
+}
+
+per_bin_loop! {
+    /// Fills `buf` with `re[i] - level` as real and `im[i] - level` as imaginary parts, in the
+    /// sample type, each part zero past the end of its input (`im` no longer than `re`).
+    fn pack_departures<T: Sample>(re: &[f64], im: &[f64], level: f64, buf: &mut [Complex<T>]) {
+        let both = im.len().min(re.len());
+        for (slot, (&a, &b)) in buf.iter_mut().zip(re.iter().zip(im)) {
+            *slot = Complex::new(T::narrow(a - level), T::narrow(b - level));
+        }
+        for (slot, &a) in buf[both..].iter_mut().zip(&re[both..]) {
+            *slot = Complex::new(T::narrow(a - level), T::zero());
+        }
+        let filled = re.len().min(buf.len());
+        buf[filled..].fill(Complex::new(T::zero(), T::zero()));
+    }
+}
+
+per_bin_loop! {
+    /// `buf[i] *= spectrum[i]` over the common length.
+    fn multiply_in_place<T: Sample>(buf: &mut [Complex<T>], spectrum: &[Complex<T>]) {
+        for (b, k) in buf.iter_mut().zip(spectrum) {
+            *b = *b * *k;
+        }
+    }
+}
+
+per_bin_loop! {
+    /// Writes the real parts of `results` plus `back` into `real` and the imaginary parts plus
+    /// `back` into `imaginary`, each over its common length with `results`, in f64.
+    fn unpack<T: Sample>(results: &[Complex<T>], back: f64, real: &mut [f64], imaginary: &mut [f64]) {
+        for (o, r) in real.iter_mut().zip(results) {
+            *o = r.re.widen() + back;
+        }
+        for (o, r) in imaginary.iter_mut().zip(results) {
+            *o = r.im.widen() + back;
         }
     }
 }
