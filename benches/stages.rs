@@ -1,7 +1,8 @@
 //! Per-step stage and accumulation timings on synthetic 32768-bin steps (the scale of the
 //! whole-reduction benchmark): ingest, baseline (gain flattening, Savitzky-Golay fit window
-//! 401 order 4, residual, spread check), rescale (into the standardised form), and the two accumulations a chunk of 32
-//! steps goes through (combination onto the RF grid, the night's IF profile).
+//! 401 order 4, residual, spread check), rescale (into the standardised form), and the two
+//! accumulations a chunk of steps goes through (combination onto the RF grid, the night's IF
+//! profile).
 //! Run: cargo bench --bench stages
 
 use axsift::config::{BuildContext, Built, StageConfig};
@@ -18,8 +19,8 @@ use rand::rngs::StdRng;
 use rand_distr::{Distribution, StandardNormal};
 
 const N_BINS: usize = 32_768;
-/// Steps in one accumulation batch, as the reduction's chunks.
-const BATCH_STEPS: usize = 32;
+/// Steps in one accumulation batch, as a chunk of the reduction on 2 cores (2 per thread).
+const BATCH_STEPS: usize = 4;
 /// LO move per step, bins (the demo scenario's).
 const STEP_BINS: usize = 200;
 const START_HZ: f64 = 5.2e9;

@@ -304,7 +304,8 @@ fn restore_default_sigpipe() {
 }
 
 /// Buffers freed and allocated again chunk after chunk stay with the process: the reduction
-/// allocates and frees buffers of a few MB per chunk of steps, and with glibc's defaults each
+/// allocates and frees a chunk's rows (about 0.5 MB on 2 cores, more with more threads) and
+/// other buffers of up to a few MB, and with glibc's defaults each
 /// would be a fresh mapping whose pages are faulted in and zeroed again (on virtual machines,
 /// memory handed back to the host is slower still to touch again). Allocations below 4 MB come
 /// from the heap, which keeps up to 64 MB free before giving memory back; larger ones (the

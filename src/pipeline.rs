@@ -345,8 +345,9 @@ impl Fresh<'_> {
 }
 
 /// Reads every file in chunks of rows ([`STEPS_PER_THREAD`] per thread of the pool) on one
-/// thread (every HDF5 call of the pass happens there) and streams them through two stages of work. Each chunk's steps (buffers reused,
-/// alternating between the two sets of `buffers`) get their metadata here and go to
+/// thread (every HDF5 call of the pass happens there) and streams them through two stages of
+/// work. Each chunk's steps (buffers reused, alternating between the two sets of `buffers`)
+/// get their metadata here and go to
 /// `process` with the rows they are to be loaded from ([`Fresh`]); `process` says which were
 /// kept. Meanwhile the previous chunk's kept steps, in step order, go to `absorb`: the two run
 /// side by side on the thread pool, so no core waits at the end of either. Every chunk reaches

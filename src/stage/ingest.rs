@@ -74,7 +74,8 @@ impl StepStage for Ingest {
 }
 
 per_bin_loop! {
-    /// Replaces every bin that is not finite and positive by NaN; returns how many bins were valid.
+    /// Replaces every bin that is not finite and positive by NaN; returns how many bins were
+    /// valid.
     ///
     /// Floating-point comparisons combined with `&` rather than `&&` and a count by addition:
     /// no branch in the loop, so it vectorises (NaN fails both comparisons; `<= MAX` rather

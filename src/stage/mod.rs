@@ -103,13 +103,8 @@ pub struct Standardised {
 
 impl Standardised {
     /// Number of standardised bins (the common length of the two buffers).
-    pub fn len(&self) -> usize {
+    pub(crate) fn len(&self) -> usize {
         self.z.len().min(self.inverse_sigma.len())
-    }
-
-    /// Whether there are none (the step has not been standardised).
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
     }
 }
 

@@ -105,9 +105,9 @@ impl IfProfile {
     }
 
     /// Adds consecutive steps as they enter the combination, in step order, standardised
-    /// ([`Step::standard`], reference-axion units). IF bins and RF bins are worked on in pieces in parallel;
-    /// within a piece the steps are taken in their order, so the sums and the kept samples do
-    /// not depend on the number of threads.
+    /// ([`Step::standard`], reference-axion units). IF bins and RF bins are worked on in
+    /// pieces in parallel; within a piece the steps are taken in their order, so the sums and
+    /// the kept samples do not depend on the number of threads.
     pub fn add_all(&mut self, steps: &[&Step]) {
         let n_if = self.steps.len();
         let (steps_k, weight, weighted_sum, weighted_sq_sum) = (&mut self.steps, &mut self.weight, &mut self.weighted_sum, &mut self.weighted_sq_sum);
