@@ -13,7 +13,8 @@ root="$(cd "$(dirname "$0")/.." && pwd)"
 work="${1:-/tmp/axsift-bench}"
 mkdir -p "$work"
 command -v /usr/bin/time >/dev/null || { apt-get update -qq && apt-get install -y -qq time; }
-python3 -c "import h5py, scipy" 2>/dev/null || pip install -q h5py scipy numpy
+bash "$root/scripts/setup.sh" checks
+python="$root/.venv/bin/python"
 (cd "$root" && cargo build --release -q)
 axsift="${CARGO_TARGET_DIR:-$root/target}/release/axsift"
 bins=32768
@@ -70,7 +71,7 @@ done
 
 night="$work/night3000.h5"
 for fit in fft savgol; do
-  read -r t kb < <(measure python3 "$root/scripts/baseline_numpy.py" --fit "$fit" "$night")
+  read -r t kb < <(measure "$python" "$root/scripts/baseline_numpy.py" --fit "$fit" "$night")
   python3 - "$fit" "$t" "$kb" "${hot[3000]}" <<'PY'
 import sys
 fit, t, kb, ours = sys.argv[1], float(sys.argv[2]), float(sys.argv[3]), float(sys.argv[4])

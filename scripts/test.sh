@@ -3,7 +3,7 @@
 # a demo run's outputs.
 set -euo pipefail
 cd "$(dirname "$0")/.."
-bash scripts/setup.sh
+bash scripts/setup.sh checks
 # HDF5 locks files with descriptors that child processes inherit; tests that start the
 # command line beside others in the same binary would see spurious "unable to lock" errors.
 export HDF5_USE_FILE_LOCKING=FALSE
@@ -13,8 +13,8 @@ export HDF5_USE_FILE_LOCKING=FALSE
 stop_slurm() { flock -n /run/axsift-slurm-local.lock bash scripts/slurm_local.sh stop >/dev/null 2>&1 || true; }
 trap stop_slurm EXIT
 cargo test --release
-python3 scripts/check_savgol.py
+.venv/bin/python scripts/check_savgol.py
 demo_out="$(mktemp -d)"
 trap 'rm -rf "$demo_out"; stop_slurm' EXIT
 ./target/release/axsift demo --quiet --out "$demo_out"
-python3 scripts/check_results.py "$demo_out"
+.venv/bin/python scripts/check_results.py "$demo_out"

@@ -10,11 +10,13 @@
 pub mod calib;
 pub mod config;
 pub mod dsp;
+pub mod fonts;
 pub mod inject;
 pub mod limits;
 pub mod output;
 pub mod physics;
 pub mod pipeline;
+pub mod progress;
 pub mod report;
 pub mod runfile;
 pub mod shard;
@@ -22,3 +24,4 @@ pub mod sim;
 mod simd;
 pub mod stage;
 pub mod state;
+pub mod stats;

@@ -1,7 +1,7 @@
 //! The axsift command line: a thin layer over the library.
 
 use anyhow::Context;
-use axsift::{calib, config, output, pipeline, runfile, sim};
+use axsift::{calib, config, output, pipeline, progress, runfile, sim};
 use clap::{Parser, Subcommand};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -360,7 +360,7 @@ fn write_simulation(sc: &sim::Scenario, out: &Path) -> Result<(), Failure> {
 fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: Option<&Path>, out: &Path, quiet: bool) -> Result<(), Failure> {
     let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
     let calibration = calibration.map(|path| calib::Calibration::load_for(path, &plan)).transpose().map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
-    let bar = output::progress::Bar::new(quiet, "reducing", "steps");
+    let bar = progress::Bar::new(quiet, "reducing", "steps");
     let (reduction, provenance) = with_provenance(config_text, runs, || {
         pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(|e| match e {
             pipeline::ReduceError::RunFile(_) => Failure::BadInput(e.into()),
@@ -456,7 +456,7 @@ fn campaign_spec(spec: Option<&Path>, seed: u64) -> Result<calib::CampaignSpec, 
 fn calibrate(config: &Path, out: &Path, scenario: Option<&Path>, spec: &calib::CampaignSpec, runs: &[PathBuf], quiet: bool) -> Result<(), Failure> {
     let text = read_text(config)?;
     let plan = config::load(&text, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
-    let bar = output::progress::Bar::new(quiet, "calibrating", "reductions");
+    let bar = progress::Bar::new(quiet, "calibrating", "reductions");
     let tick = |done, total| bar.update(done, total);
     let cal = match (scenario, runs.is_empty()) {
         (Some(path), true) => {
@@ -565,7 +565,7 @@ fn shard_plan(config: &Path, work: &Path, shards: usize, cpus: usize, nights: &[
 
 fn shard_run(plan: &Path, index: Option<usize>, quiet: bool) -> Result<(), Failure> {
     let index = axsift::shard::shard_index(index).map_err(shard_failure)?;
-    let bar = output::progress::Bar::new(quiet, "shard", "items");
+    let bar = progress::Bar::new(quiet, "shard", "items");
     let path = axsift::shard::run_shard(plan, index, &|done, total| bar.update(done, total)).map_err(shard_failure)?;
     bar.finish();
     tracing::info!("shard {index} written to {}", path.display());

@@ -451,7 +451,7 @@ fn reduce_realisation(plan: &Plan, noise: &NoiseSource, realisation: usize, inje
 
 fn null_spread(nulls: &[Reduction]) -> NullSpread {
     let all: Vec<f64> = nulls.iter().flat_map(|r| r.spectrum.grand.iter().copied().filter(|v| v.is_finite())).collect();
-    let (mean, std) = crate::output::mean_std(&all);
+    let (mean, std) = crate::stats::mean_std(&all);
     let thinned: Vec<f64> = nulls.iter().flat_map(|r| r.spectrum.grand.iter().copied().filter(|v| v.is_finite()).step_by(KS_THINNING_BINS)).collect();
     NullSpread { mean, std, correction: 1.0 / std, n_bins: all.len(), ks: ks_unit_normal(&thinned) }
 }
@@ -461,7 +461,7 @@ fn attenuation(records: &[InjectionRecord]) -> Result<Attenuation, CalibrationEr
     if ratios.is_empty() {
         return Err(CalibrationError::Unusable("no eta injection was recovered: give eta_realisations > 0".into()));
     }
-    let (eta, spread) = crate::output::mean_std(&ratios);
+    let (eta, spread) = crate::stats::mean_std(&ratios);
     Ok(Attenuation { eta, spread, standard_error: spread / (ratios.len() as f64).sqrt(), n: ratios.len() })
 }
 

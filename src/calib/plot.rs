@@ -7,7 +7,7 @@ use std::path::Path;
 
 /// Draws detection efficiency versus injected SNR beside Phi(SNR - Theta).
 pub fn efficiency(cal: &Calibration, png: &Path, svg: &Path) -> anyhow::Result<()> {
-    crate::output::register_fonts()?;
+    crate::fonts::register_fonts()?;
     draw(cal, BitMapBackend::new(png, (900, 560)).into_drawing_area())?;
     draw(cal, SVGBackend::new(svg, (900, 560)).into_drawing_area())?;
     Ok(())

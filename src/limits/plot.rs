@@ -12,7 +12,7 @@ const HEIGHT: u32 = 560;
 /// and an SVG. Many points are reduced to the largest (most conservative) limit per pixel
 /// column.
 pub fn exclusion_plot(points: &[(f64, f64)], title: &str, png: &Path, svg: &Path) -> anyhow::Result<()> {
-    crate::output::register_fonts()?;
+    crate::fonts::register_fonts()?;
     let columns = reduce_columns(points, WIDTH as usize);
     draw(&columns, title, BitMapBackend::new(png, (WIDTH, HEIGHT)).into_drawing_area())?;
     draw(&columns, title, SVGBackend::new(svg, (WIDTH, HEIGHT)).into_drawing_area())?;

@@ -5,21 +5,15 @@
 
 pub mod console;
 mod plot;
-pub mod progress;
 
 use crate::calib::Calibration;
 use crate::limits::Limits;
 use crate::pipeline::Reduction;
+use crate::stats::mean_std;
 use hdf5::types::VarLenUnicode;
 use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
 use std::str::FromStr;
-
-/// Makes the built-in DejaVu Sans the plots' "sans-serif" font (no system fonts needed).
-pub fn register_fonts() -> anyhow::Result<()> {
-    plotters::style::register_font("sans-serif", plotters::style::FontStyle::Normal, dejavu::sans::regular())
-        .map_err(|_| anyhow::anyhow!("cannot register the built-in font"))
-}
 
 /// Width of the blocks of the coarse limit summary, Hz.
 pub const LIMIT_BLOCK_HZ: f64 = 1e6;
@@ -152,15 +146,6 @@ pub fn implied_coupling(sp: &crate::stage::Spectrum, c: &crate::stage::Candidate
     let j = c.peak_bin;
     let rel = (sp.amplitude[j].max(0.0) / eta).sqrt();
     (rel, eta / (sp.sigma_a[j] * sp.predicted_spread[j]))
-}
-
-/// Mean and standard deviation of the finite values.
-pub fn mean_std(x: &[f64]) -> (f64, f64) {
-    let v: Vec<f64> = x.iter().copied().filter(|v| v.is_finite()).collect();
-    let n = v.len().max(1) as f64;
-    let mean = v.iter().sum::<f64>() / n;
-    let var = v.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / n;
-    (mean, var.sqrt())
 }
 
 impl Reduction {

@@ -9,7 +9,7 @@ const HEIGHT: u32 = 500;
 
 /// Draws the grand spectrum with the threshold and the candidates marked.
 pub fn grand_spectrum(sp: &Spectrum, png: &Path, svg: &Path) -> anyhow::Result<()> {
-    super::register_fonts()?;
+    crate::fonts::register_fonts()?;
     draw(sp, BitMapBackend::new(png, (WIDTH, HEIGHT)).into_drawing_area())?;
     draw(sp, SVGBackend::new(svg, (WIDTH, HEIGHT)).into_drawing_area())?;
     Ok(())

@@ -29,7 +29,7 @@ fn err(e: impl std::fmt::Display) -> anyhow::Error {
 /// Draws with `f` on a white `width` x `height` SVG and returns its text, scaled to the
 /// width of its container.
 fn svg(width: u32, height: u32, f: impl FnOnce(&Area) -> anyhow::Result<()>) -> anyhow::Result<String> {
-    crate::output::register_fonts()?;
+    crate::fonts::register_fonts()?;
     let mut text = String::new();
     {
         let area = SVGBackend::with_string(&mut text, (width, height)).into_drawing_area();
