@@ -360,23 +360,44 @@ fn write_simulation(sc: &sim::Scenario, out: &Path) -> Result<(), Failure> {
 fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: Option<&Path>, out: &Path, quiet: bool) -> Result<(), Failure> {
     let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
     let calibration = calibration.map(|path| calib::Calibration::load_for(path, &plan)).transpose().map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
+    let failure = |e: pipeline::ReduceError| match e {
+        pipeline::ReduceError::RunFile(_) => Failure::BadInput(e.into()),
+        pipeline::ReduceError::Night(_) => Failure::Run(e.into()),
+    };
     let bar = progress::Bar::new(quiet, "reducing", "steps");
-    let (reduction, provenance) = with_provenance(config_text, runs, || {
-        pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(|e| match e {
-            pipeline::ReduceError::RunFile(_) => Failure::BadInput(e.into()),
-            pipeline::ReduceError::Night(_) => Failure::Run(e.into()),
-        })
-    })?;
+    let Some(calibration) = calibration else {
+        // Without limits to compute, the outputs are written block by block as the RF grid
+        // is finished: memory stays bounded by the steps in flight, whatever the night's span.
+        let mut outputs = output::BlockOutputs::new(out)?;
+        let mut results = outputs.results_sink();
+        let (reduction, provenance) = with_provenance(config_text, runs, || {
+            pipeline::reduce_streamed(
+                &plan,
+                runs,
+                &|done, total| bar.update(done, total),
+                &mut |block| Ok(Some(outputs.take(&output::Bins::of_block(block)))),
+                &mut |values| results.write(values).map_err(|e| e.to_string()),
+            )
+            .map_err(failure)
+        })?;
+        bar.finish();
+        let (written, stats) = outputs.finish(&reduction, results, config_text, &provenance, None)?;
+        if !quiet {
+            let summary = reduction.summary_with(&stats, &provenance, None, None);
+            print!("{}", output::console::night_report(&reduction, &summary, None, &written));
+        }
+        return Ok(());
+    };
+    let (reduction, provenance) =
+        with_provenance(config_text, runs, || pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(failure))?;
     bar.finish();
-    let limits = calibration
-        .as_ref()
-        .map(|cal| axsift::limits::for_reduction(&plan, &reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))
-        .transpose()
+    let limits = axsift::limits::for_reduction(&plan, &reduction.spectrum, &calibration, axsift::limits::DEFAULT_CONFIDENCE)
         .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
-    let calibrated = calibration.as_ref().zip(limits.as_ref());
+    let calibrated = Some((&calibration, &limits));
     let written = reduction.write(out, config_text, &provenance, calibrated)?;
     if !quiet {
-        print!("{}", output::console::night_report(&reduction, &provenance, calibrated, &written));
+        let summary = reduction.summary(&provenance, Some(&calibration), Some(&limits));
+        print!("{}", output::console::night_report(&reduction, &summary, calibrated, &written));
     }
     Ok(())
 }
@@ -424,7 +445,8 @@ fn reduce_into_state(
     }
     st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
     if !quiet {
-        print!("{}", output::console::night_report(&update.reduction, &provenance, calibrated, &written));
+        let summary = update.reduction.summary(&provenance, calibrated.map(|c| c.0), calibrated.map(|c| c.1));
+        print!("{}", output::console::night_report(&update.reduction, &summary, calibrated, &written));
         print!("{}", output::console::state_report(&st, &update.changes));
     }
     Ok(())
@@ -578,7 +600,8 @@ fn shard_merge(t: &MergeTarget, quiet: bool) -> Result<(), Failure> {
         match merged {
             axsift::shard::Merged::Reduction { state, update, provenance, calibrated, written } => {
                 let calibrated = calibrated.as_ref().map(|(c, l)| (c.as_ref(), l.as_ref()));
-                print!("{}", output::console::night_report(&update.reduction, &provenance, calibrated, &written));
+                let summary = update.reduction.summary(&provenance, calibrated.map(|c| c.0), calibrated.map(|c| c.1));
+                print!("{}", output::console::night_report(&update.reduction, &summary, calibrated, &written));
                 print!("{}", output::console::state_report(&state, &update.changes));
             }
             axsift::shard::Merged::Campaign { calibration, written } => print!("{}", output::console::calibration_report(&calibration, &written)),

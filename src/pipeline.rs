@@ -14,6 +14,12 @@ use rayon::prelude::*;
 use std::path::PathBuf;
 use std::sync::mpsc;
 
+mod finisher;
+mod schedule;
+mod streamed;
+
+pub use streamed::reduce_streamed;
+
 /// Steps read and processed together per thread of the pool: a chunk holds this many times
 /// the number of threads (4 steps of 32768 bins on 2 cores: 0.5 MB as f32 on disk, 2 MB of
 /// step buffers as f64 values and f32 z and 1 / sigma in each of the two buffer sets). Small
@@ -173,6 +179,52 @@ pub fn reduce(plan: &Plan, paths: &[PathBuf], progress: &dyn Fn(usize, usize)) -
 
 /// As [`reduce`], with synthetic axions added to the raw spectra first (for calibration).
 pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Injection>, progress: &dyn Fn(usize, usize)) -> Result<Reduction, ReduceError> {
+    let mut buffers: [Vec<Step>; 2] = Default::default();
+    let Prepared { readers, night, step_stages, mut combiner, spectrum_stages, total } = prepare(plan, paths, injection, &mut buffers)?;
+    let mut cuts = Vec::new();
+    let mut used_steps = Vec::new();
+    let mut if_profile = crate::state::IfProfile::new(&night);
+    let mut done = 0;
+    stream_chunks::<()>(
+        &readers,
+        &night,
+        injection,
+        &mut buffers,
+        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, paths),
+        |kept, _| {
+            let (combined, ()) = rayon::join(|| combiner.add_all(kept).map_err(ReduceError::Night), || if_profile.add_all(kept));
+            used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
+            combined.map(|()| Vec::new())
+        },
+        |n| {
+            done += n;
+            progress(done, total);
+        },
+        None,
+    )?;
+    drop(buffers);
+    let mut spectrum = combiner.finish();
+    for stage in &spectrum_stages {
+        stage.apply(&mut spectrum, &used_steps).map_err(ReduceError::Night)?;
+    }
+    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: if_profile.finish() })
+}
+
+/// A night opened, its plan built and its survey passes made: ready for the main pass.
+struct Prepared {
+    readers: Vec<RunReader>,
+    night: NightInfo,
+    step_stages: Vec<(String, Box<dyn StepStage>)>,
+    combiner: Box<dyn Combiner>,
+    spectrum_stages: Vec<Box<dyn SpectrumStage>>,
+    /// Steps in all files.
+    total: usize,
+}
+
+/// Opens the night, builds the plan and runs the survey passes (each surveying stage sees
+/// the output of the stages before it), with `buffers` as step buffers. The survey passes'
+/// cuts are not kept: the main pass makes them again.
+fn prepare(plan: &Plan, paths: &[PathBuf], injection: Option<&Injection>, buffers: &mut [Vec<Step>; 2]) -> Result<Prepared, ReduceError> {
     let (readers, night) = open_night(paths)?;
     let mut step_stages: Vec<(String, Box<dyn StepStage>)> = Vec::new();
     let mut combiner: Option<Box<dyn Combiner>> = None;
@@ -184,13 +236,8 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
             Built::Spectrum(s) => spectrum_stages.push(s),
         }
     }
-    let mut combiner = combiner.ok_or_else(|| ReduceError::Night("the plan has no combine stage".into()))?;
+    let combiner = combiner.ok_or_else(|| ReduceError::Night("the plan has no combine stage".into()))?;
     let total: usize = readers.iter().map(|r| r.steps().len()).sum();
-    let mut cuts = Vec::new();
-    // Two sets of step buffers, refilled chunk after chunk.
-    let mut buffers: [Vec<Step>; 2] = Default::default();
-
-    // Survey passes: each surveying stage sees the output of the stages before it.
     for s in 0..step_stages.len() {
         if !step_stages[s].1.needs_survey() {
             continue;
@@ -198,46 +245,22 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
         let mut cut_here = Vec::new();
         let (before, rest) = step_stages.split_at_mut(s);
         let surveyor = &mut rest[0].1;
-        stream_chunks(
+        stream_chunks::<()>(
             &readers,
             &night,
             injection,
-            &mut buffers,
+            buffers,
             |chunk, fresh| run_stages(before, chunk, fresh, &night, &mut cut_here, paths),
-            |kept| {
+            |kept, _| {
                 surveyor.survey_all(kept);
-                Ok(())
+                Ok(Vec::new())
             },
             |_| {},
+            None,
         )?;
         step_stages[s].1.finish_survey().map_err(|e| ReduceError::Night(format!("stage \"{}\": {e}", step_stages[s].0)))?;
     }
-
-    let mut used_steps = Vec::new();
-    let mut if_profile = crate::state::IfProfile::new(&night);
-    let mut done = 0;
-    stream_chunks(
-        &readers,
-        &night,
-        injection,
-        &mut buffers,
-        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, paths),
-        |kept| {
-            let (combined, ()) = rayon::join(|| combiner.add_all(kept).map_err(ReduceError::Night), || if_profile.add_all(kept));
-            used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
-            combined
-        },
-        |n| {
-            done += n;
-            progress(done, total);
-        },
-    )?;
-    drop(buffers);
-    let mut spectrum = combiner.finish();
-    for stage in &spectrum_stages {
-        stage.apply(&mut spectrum, &used_steps).map_err(ReduceError::Night)?;
-    }
-    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: if_profile.finish() })
+    Ok(Prepared { readers, night, step_stages, combiner, spectrum_stages, total })
 }
 
 /// Loads each step of a chunk from `fresh` and applies `stages` to it, in parallel (loading
@@ -344,33 +367,45 @@ impl Fresh<'_> {
     }
 }
 
+/// Output work handed to the reading thread, so that every HDF5 call of a pass happens
+/// there: `write` is called with each job in the order they were made, between reads.
+type Writer<'a, J> = &'a mut (dyn FnMut(J) -> Result<(), String> + Send);
+
 /// Reads every file in chunks of rows ([`STEPS_PER_THREAD`] per thread of the pool) on one
 /// thread (every HDF5 call of the pass happens there) and streams them through two stages of
 /// work. Each chunk's steps (buffers reused, alternating between the two sets of `buffers`)
 /// get their metadata here and go to
 /// `process` with the rows they are to be loaded from ([`Fresh`]); `process` says which were
-/// kept. Meanwhile the previous chunk's kept steps, in step order, go to `absorb`: the two run
-/// side by side on the thread pool, so no core waits at the end of either. Every chunk reaches
-/// `absorb` in order, so whatever `absorb` accumulates does not depend on the thread count.
+/// kept. Meanwhile the previous chunk's kept steps, in step order, go to `absorb` with the
+/// global index of the chunk's last step: the two run side by side on the thread pool, so no
+/// core waits at the end of either. Every chunk reaches `absorb` in order, so whatever
+/// `absorb` accumulates does not depend on the thread count. The jobs `absorb` returns go
+/// to `write` on the reading thread (none may be returned without a `write`).
 /// `done` is told the number of steps of each chunk processed. Reading runs ahead of the
 /// computation by at most [`READ_AHEAD_CHUNKS`] chunks.
-fn stream_chunks(
+#[allow(clippy::too_many_arguments)]
+fn stream_chunks<J: Send>(
     readers: &[RunReader],
     night: &NightInfo,
     injection: Option<&Injection>,
     buffers: &mut [Vec<Step>; 2],
     mut process: impl FnMut(&mut [Step], &Fresh<'_>) -> Vec<bool> + Send,
-    mut absorb: impl FnMut(&[&Step]) -> Result<(), ReduceError> + Send,
+    mut absorb: impl FnMut(&[&Step], usize) -> Result<Vec<J>, ReduceError> + Send,
     mut done: impl FnMut(usize),
+    write: Option<Writer<'_, J>>,
 ) -> Result<(), ReduceError> {
     let chunk_steps = STEPS_PER_THREAD * rayon::current_num_threads();
     std::thread::scope(|scope| {
         let (sender, receiver) = mpsc::sync_channel::<Result<RawChunk, RunFileError>>(READ_AHEAD_CHUNKS);
-        scope.spawn(move || {
+        let (jobs, job_queue) = mpsc::channel::<J>();
+        let reading = scope.spawn(move || -> Result<(), String> {
+            let mut write = write;
+            let mut write_one = |job: J| write.as_mut().map_or(Ok(()), |w| w(job));
             let mut first_index = 0;
             for (file, reader) in readers.iter().enumerate() {
                 let n = reader.steps().len();
                 for first_row in (0..n).step_by(chunk_steps) {
+                    job_queue.try_iter().try_for_each(&mut write_one)?;
                     let rows = first_row..(first_row + chunk_steps).min(n);
                     let count = rows.len();
                     let read = match reader.read_rows_f32(rows.clone()) {
@@ -381,38 +416,59 @@ fn stream_chunks(
                     let failed = read.is_err();
                     // A closed channel means the consumer stopped on an error of its own.
                     if sender.send(read.map(|rows| RawChunk { file, first_row, first_index, rows })).is_err() || failed {
-                        return;
+                        return Ok(());
                     }
                     first_index += count;
                 }
             }
+            drop(sender);
+            // The jobs of the last chunks, until the computation is over.
+            job_queue.iter().try_for_each(&mut write_one)
         });
-        let [even, odd] = buffers;
-        // The previous chunk: its number of steps and which were kept.
-        let mut previous_chunk: Option<(usize, Vec<bool>)> = None;
-        let mut current_is_odd = false;
-        for raw in receiver {
-            let raw = raw?;
-            let n = raw.rows.len();
-            let (current, previous) = if current_is_odd { (&mut *odd, &*even) } else { (&mut *even, &*odd) };
-            place_steps(current, &raw, &readers[raw.file]);
-            let fresh = Fresh { raw: &raw, night, injection };
-            let (kept, absorbed) = rayon::join(|| process(&mut current[..n], &fresh), || absorb_kept(previous, previous_chunk.as_ref(), &mut absorb));
-            absorbed?;
-            done(n);
-            previous_chunk = Some((n, kept));
-            current_is_odd = !current_is_odd;
-        }
-        let last = if current_is_odd { &*even } else { &*odd };
-        absorb_kept(last, previous_chunk.as_ref(), &mut absorb)
+        // Moves `jobs` in, so the queue closes when the computation ends.
+        let computed = (move || -> Result<(), ReduceError> {
+            let [even, odd] = buffers;
+            // The previous chunk: its first global index, number of steps and which were kept.
+            let mut previous_chunk: Option<(usize, usize, Vec<bool>)> = None;
+            let mut current_is_odd = false;
+            let send = |made: Vec<J>| {
+                made.into_iter().for_each(|job| {
+                    // A closed queue means the writer stopped on an error, reported below.
+                    let _ = jobs.send(job);
+                })
+            };
+            for raw in receiver {
+                let raw = raw?;
+                let n = raw.rows.len();
+                let (current, previous) = if current_is_odd { (&mut *odd, &*even) } else { (&mut *even, &*odd) };
+                place_steps(current, &raw, &readers[raw.file]);
+                let fresh = Fresh { raw: &raw, night, injection };
+                let (kept, absorbed) = rayon::join(|| process(&mut current[..n], &fresh), || absorb_kept(previous, previous_chunk.as_ref(), &mut absorb));
+                send(absorbed?);
+                done(n);
+                previous_chunk = Some((raw.first_index, n, kept));
+                current_is_odd = !current_is_odd;
+            }
+            let last = if current_is_odd { &*even } else { &*odd };
+            send(absorb_kept(last, previous_chunk.as_ref(), &mut absorb)?);
+            Ok(())
+        })();
+        let written = reading.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        computed?;
+        written.map_err(|e| ReduceError::Night(format!("writing the outputs: {e}")))
     })
 }
 
-/// Hands the kept steps of a processed chunk (the first `n` of `steps`, `kept` saying which)
-/// to `absorb`, in step order; nothing if there is no such chunk.
-fn absorb_kept(steps: &[Step], chunk: Option<&(usize, Vec<bool>)>, absorb: &mut impl FnMut(&[&Step]) -> Result<(), ReduceError>) -> Result<(), ReduceError> {
-    let Some((n, kept)) = chunk else { return Ok(()) };
-    absorb(&steps[..*n].iter().zip(kept).filter(|(_, kept)| **kept).map(|(step, _)| step).collect::<Vec<_>>())
+/// Hands the kept steps of a processed chunk (the first `n` of `steps`, `kept` saying which,
+/// the first of them global step `first`) to `absorb`, in step order, with the chunk's last
+/// global index; nothing if there is no such chunk.
+fn absorb_kept<J>(
+    steps: &[Step],
+    chunk: Option<&(usize, usize, Vec<bool>)>,
+    absorb: &mut impl FnMut(&[&Step], usize) -> Result<Vec<J>, ReduceError>,
+) -> Result<Vec<J>, ReduceError> {
+    let Some((first, n, kept)) = chunk else { return Ok(Vec::new()) };
+    absorb(&steps[..*n].iter().zip(kept).filter(|(_, kept)| **kept).map(|(step, _)| step).collect::<Vec<_>>(), first + n - 1)
 }
 
 /// Sets index and metadata of the first rows of `steps` (grown if needed) for a chunk; the

@@ -1,6 +1,6 @@
 //! Human-readable summaries printed on the terminal.
 
-use super::{Provenance, Summary, implied_coupling};
+use super::{Summary, implied_coupling};
 use crate::calib::Calibration;
 use crate::limits::Limits;
 use crate::pipeline::Reduction;
@@ -15,10 +15,10 @@ const MAX_LISTED: usize = 15;
 pub const ADVISORY: &str = "Advice only: axsift reads data and suggests where to look again. It does not \
 control the magnet, cryostat or RF chain; retune and ramp only under the laboratory's own safety rules.";
 
-/// The morning summary of a reduction: steps, coverage, grand-spectrum statistics, candidates.
-pub fn night_report(r: &Reduction, provenance: &Provenance, calibrated: Option<(&Calibration, &Limits)>, written: &[PathBuf]) -> String {
+/// The morning summary of a reduction (`s` its summary): steps, coverage, grand-spectrum
+/// statistics, candidates.
+pub fn night_report(r: &Reduction, s: &Summary, calibrated: Option<(&Calibration, &Limits)>, written: &[PathBuf]) -> String {
     let calibration = calibrated.map(|c| c.0);
-    let s: Summary = r.summary(provenance, calibration, calibrated.map(|c| c.1));
     let mut out = String::new();
     let _ = writeln!(out, "Steps: {} read, {} used, {} cut", s.n_steps_in, s.n_steps_used, s.cuts.len());
     for c in s.cuts.iter().take(MAX_LISTED) {
@@ -73,8 +73,8 @@ pub fn night_report(r: &Reduction, provenance: &Provenance, calibrated: Option<(
             let implied = calibration.map(|cal| format!("  {:>14.3}", implied_coupling(&r.spectrum, c, cal.attenuation.eta).0));
             let _ = writeln!(out, "{}", implied.unwrap_or_default());
         }
-        if ranked.len() > MAX_LISTED {
-            let _ = writeln!(out, "  ... {} more in candidates.csv", ranked.len() - MAX_LISTED);
+        if s.n_candidates > MAX_LISTED {
+            let _ = writeln!(out, "  ... {} more in candidates.csv", s.n_candidates - MAX_LISTED);
         }
         let _ = writeln!(out, "\n{ADVISORY}");
     }

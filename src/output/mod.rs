@@ -3,17 +3,27 @@
 //! Every file is written under a temporary name in the output folder and renamed into
 //! place only after all of them were written, so a failed run never replaces good results.
 
+mod bins;
 pub mod console;
 mod plot;
+mod results_file;
+mod stats;
 
 use crate::calib::Calibration;
 use crate::limits::Limits;
 use crate::pipeline::Reduction;
-use crate::stats::mean_std;
-use hdf5::types::VarLenUnicode;
+use crate::stage::Candidate;
 use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
-use std::str::FromStr;
+
+pub use bins::Bins;
+pub use plot::Columns;
+pub use results_file::{CHUNK_BINS, ResultBlock, ResultsFile};
+pub use stats::{GrandStats, Moments};
+
+/// Candidates listed in `summary.json`: the strongest, by significance (all of them are in
+/// `candidates.csv` and `results.h5`).
+pub const SUMMARY_CANDIDATES: usize = 100;
 
 /// Width of the blocks of the coarse limit summary, Hz.
 pub const LIMIT_BLOCK_HZ: f64 = 1e6;
@@ -79,7 +89,8 @@ pub struct Summary<'a> {
     /// Bins above the threshold expected from noise alone, n_valid_bins * (1 - Phi(threshold)).
     pub expected_null_bins_above: f64,
     pub n_candidates: usize,
-    pub candidates: &'a [crate::stage::Candidate],
+    /// The [`SUMMARY_CANDIDATES`] most significant candidates, strongest first.
+    pub candidates: Vec<&'a Candidate>,
     pub cuts: &'a [crate::pipeline::CutStep],
     pub provenance: &'a Provenance,
     /// The calibration applied, if `reduce` was given one.
@@ -149,32 +160,43 @@ pub fn implied_coupling(sp: &crate::stage::Spectrum, c: &crate::stage::Candidate
 }
 
 impl Reduction {
-    /// Builds the summary of this reduction.
+    /// Builds the summary of this reduction from its in-memory spectrum.
     pub fn summary<'a>(&'a self, provenance: &'a Provenance, calibration: Option<&Calibration>, limits: Option<&Limits>) -> Summary<'a> {
+        self.summary_with(&GrandStats::of_spectrum(&self.spectrum), provenance, calibration, limits)
+    }
+
+    /// Builds the summary of this reduction with the grand-spectrum statistics `stats`
+    /// (gathered while a streamed reduction's blocks went by).
+    pub fn summary_with<'a>(
+        &'a self,
+        stats: &GrandStats,
+        provenance: &'a Provenance,
+        calibration: Option<&Calibration>,
+        limits: Option<&Limits>,
+    ) -> Summary<'a> {
         let sp = &self.spectrum;
-        let (grand_mean, grand_std) = mean_std(&sp.grand);
-        let raw: Vec<f64> = sp.amplitude.iter().zip(&sp.sigma_a).map(|(a, s)| a / s).collect();
-        let (_, measured_raw_spread) = mean_std(&raw);
-        let (predicted_raw_spread, _) = mean_std(&sp.predicted_spread);
         let threshold = sp.threshold.unwrap_or(f64::NAN);
-        let n_valid_bins = sp.grand.iter().filter(|v| v.is_finite()).count();
+        let n_valid_bins = stats.grand.count();
         let tail = 1.0 - statrs::distribution::ContinuousCDF::cdf(&statrs::distribution::Normal::standard(), threshold);
+        let mut strongest: Vec<&Candidate> = sp.candidates.iter().collect();
+        strongest.sort_by(|a, b| b.significance.total_cmp(&a.significance));
+        strongest.truncate(SUMMARY_CANDIDATES);
         Summary {
             n_steps_in: self.n_steps_in,
             n_steps_used: self.used_steps.len(),
-            n_rf_bins: sp.grand.len(),
+            n_rf_bins: stats.n_bins,
             rf_start_hz: sp.rf_start_hz,
-            rf_stop_hz: sp.freq_hz(sp.grand.len().saturating_sub(1)),
+            rf_stop_hz: sp.freq_hz(stats.n_bins.saturating_sub(1)),
             n_valid_bins,
-            grand_mean,
-            grand_std,
-            predicted_raw_spread,
-            measured_raw_spread,
+            grand_mean: stats.grand.mean(),
+            grand_std: stats.grand.std(),
+            predicted_raw_spread: stats.predicted_spread.mean(),
+            measured_raw_spread: stats.raw.std(),
             threshold,
-            n_bins_above_threshold: sp.grand.iter().filter(|&&v| v > threshold).count(),
+            n_bins_above_threshold: stats.n_above,
             expected_null_bins_above: n_valid_bins as f64 * tail,
             n_candidates: sp.candidates.len(),
-            candidates: &sp.candidates,
+            candidates: strongest,
             cuts: &self.cuts,
             provenance,
             calibration: calibration.map(CalibrationUse::from),
@@ -182,28 +204,120 @@ impl Reduction {
         }
     }
 
-    /// Writes all outputs into `dir` (created if needed). Returns the written paths.
+    /// Writes all outputs of this in-memory reduction into `dir` (created if needed).
+    /// Returns the written paths.
     pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance, calibrated: Option<(&Calibration, &Limits)>) -> anyhow::Result<Vec<PathBuf>> {
+        let mut outputs = BlockOutputs::new(dir)?;
+        let mut results = outputs.results_sink();
+        for bins in Bins::blocks_of(&self.spectrum) {
+            results.write(outputs.take(&bins))?;
+        }
+        outputs.finish(self, results, config_text, provenance, calibrated).map(|(written, _)| written)
+    }
+}
+
+/// Temporary name of output `name` in `dir` (the extension kept: the image encoder picks
+/// its format from it).
+fn staged(dir: &Path, name: &str) -> PathBuf {
+    dir.join(format!(".tmp.{name}"))
+}
+
+/// The outputs of a reduction gathered run of bins by run of bins (blocks in grid order):
+/// the summary's statistics and the plot's columns, kept here, and the values for
+/// `results.h5`, handed on to a [`ResultsSink`]. Every file is written under a temporary name
+/// in the output folder and renamed into place by [`BlockOutputs::finish`] only after all of
+/// them were written, so a failed run never replaces good results.
+pub struct BlockOutputs {
+    dir: PathBuf,
+    stats: GrandStats,
+    columns: Option<Columns>,
+}
+
+/// Where the per-bin values go: `results.h5` under its temporary name, made with the first
+/// run of bins. Removed if dropped before [`BlockOutputs::finish`] takes it.
+pub struct ResultsSink {
+    path: PathBuf,
+    file: Option<ResultsFile>,
+}
+
+impl ResultsSink {
+    /// Writes one run of bins (the first one makes the file).
+    pub fn write(&mut self, block: ResultBlock) -> hdf5::Result<()> {
+        match &self.file {
+            Some(file) => file.write(&block),
+            None => {
+                self.file = Some(ResultsFile::create(&self.path, &block)?);
+                Ok(())
+            }
+        }
+    }
+}
+
+impl Drop for ResultsSink {
+    fn drop(&mut self) {
+        if let Some(file) = self.file.take() {
+            drop(file);
+            let _ = std::fs::remove_file(&self.path);
+        }
+    }
+}
+
+impl BlockOutputs {
+    /// Outputs to be written into `dir` (created if needed).
+    pub fn new(dir: &Path) -> anyhow::Result<Self> {
         use anyhow::Context;
         std::fs::create_dir_all(dir).with_context(|| format!("cannot create output folder {}", dir.display()))?;
+        Ok(Self { dir: dir.to_path_buf(), stats: GrandStats::default(), columns: None })
+    }
+
+    /// The sink for `results.h5`.
+    pub fn results_sink(&self) -> ResultsSink {
+        ResultsSink { path: staged(&self.dir, "results.h5"), file: None }
+    }
+
+    /// Takes in one run of bins (in grid order): the statistics and plot columns here, and
+    /// the values for `results.h5`, returned.
+    pub fn take(&mut self, bins: &Bins<'_>) -> ResultBlock {
+        self.stats.add(bins);
+        self.columns.get_or_insert_with(|| Columns::new(bins.grid_bins)).add(bins);
+        ResultBlock::of(bins)
+    }
+
+    /// Writes the remaining outputs of `reduction` (whose bins all went through
+    /// [`BlockOutputs::take`], and into `results`) and renames every file into place.
+    /// Returns the written paths and the grand-spectrum statistics.
+    pub fn finish(
+        self,
+        reduction: &Reduction,
+        mut results: ResultsSink,
+        config_text: &str,
+        provenance: &Provenance,
+        calibrated: Option<(&Calibration, &Limits)>,
+    ) -> anyhow::Result<(Vec<PathBuf>, GrandStats)> {
+        use anyhow::Context;
+        let dir = &self.dir;
         let mut names = vec!["results.h5", "candidates.csv", "summary.json", "grand_spectrum.png", "grand_spectrum.svg"];
-        // Temporary names keep the extension: the image encoder picks its format from it.
-        let tmp = |n: &str| dir.join(format!(".tmp.{n}"));
+        let tmp = |n: &str| staged(dir, n);
         let calibration = calibrated.map(|c| c.0);
         let limits = calibrated.map(|c| c.1);
+        let sp = &reduction.spectrum;
+        let columns = self.columns.unwrap_or_else(|| Columns::new(0));
+        let facts = plot::PlotFacts { origin_hz: sp.rf_start_hz, bin_width_hz: sp.bin_width_hz, threshold: sp.threshold, candidates: &sp.candidates };
+        let file = results.file.take().context("writing results.h5: the reduction gave no RF bin")?;
         // Tables and plots are drawn side by side (the plots make no HDF5 call).
         let (tables, plots) = rayon::join(
             || -> anyhow::Result<()> {
-                self.write_hdf5(&tmp(names[0]), config_text, provenance, limits).context("writing results.h5")?;
-                self.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
-                std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&self.summary(provenance, calibration, limits))?).context("writing summary.json")?;
+                finish_hdf5(file, sp, config_text, provenance, limits).context("writing results.h5")?;
+                reduction.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
+                let summary = reduction.summary_with(&self.stats, provenance, calibration, limits);
+                std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&summary)?).context("writing summary.json")?;
                 if let Some(limits) = limits {
                     limits.write_tables(&tmp(LIMIT_OUTPUTS[0]), &tmp(LIMIT_OUTPUTS[1]), LIMIT_BLOCK_HZ).context("writing the limit tables")?;
                 }
                 Ok(())
             },
             || -> anyhow::Result<()> {
-                plot::grand_spectrum(&self.spectrum, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
+                plot::grand_spectrum(&columns, &facts, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
                 if let Some(limits) = limits {
                     let points: Vec<(f64, f64)> = limits.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev)).collect();
                     let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.assumptions.confidence, limits.assumptions.eta);
@@ -212,11 +326,11 @@ impl Reduction {
                 Ok(())
             },
         );
-        let staged = tables.and(plots);
+        let staged_all = tables.and(plots);
         if limits.is_some() {
             names.extend(LIMIT_OUTPUTS);
         }
-        if let Err(e) = staged {
+        if let Err(e) = staged_all {
             // Earlier results stay as they were; the partial temporary files go.
             for n in names.iter().chain(LIMIT_OUTPUTS.iter()) {
                 let _ = std::fs::remove_file(tmp(n));
@@ -241,9 +355,11 @@ impl Reduction {
                 }
             }
         }
-        Ok(written)
+        Ok((written, self.stats))
     }
+}
 
+impl Reduction {
     /// One row per candidate; with a calibration also the implied coupling |g|/g_ref and the
     /// SNR a reference axion has at that frequency (both use eta).
     fn write_csv(&self, path: &Path, calibration: Option<&Calibration>) -> anyhow::Result<()> {
@@ -271,60 +387,35 @@ impl Reduction {
         w.flush()?;
         Ok(())
     }
+}
 
-    fn write_hdf5(&self, path: &Path, config_text: &str, provenance: &Provenance, limits: Option<&Limits>) -> anyhow::Result<()> {
-        let sp = &self.spectrum;
-        let file = hdf5::File::create(path)?;
-        let text = |s: &str| VarLenUnicode::from_str(s).unwrap_or_default();
-        let freq: Vec<f64> = (0..sp.grand.len()).map(|j| sp.freq_hz(j)).collect();
-        let datasets: [(&str, &[f64], &str, &str); 7] = [
-            ("rf_freq_hz", &freq, "Hz", "bin-centre RF frequency"),
-            ("combined", &sp.combined, "reference-axion power", "maximum-likelihood combined excess power"),
-            ("combined_sigma", &sp.combined_sigma, "reference-axion power", "standard deviation of combined"),
-            ("amplitude", &sp.amplitude, "reference-axion power", "filtered amplitude A for a line starting at the bin's lower edge"),
-            ("sigma_a", &sp.sigma_a, "reference-axion power", "standard deviation of the filtered amplitude"),
-            ("predicted_spread", &sp.predicted_spread, "1", "predicted null spread of A/sigma_A"),
-            ("grand", &sp.grand, "1", "grand spectrum A / (sigma_A * predicted spread)"),
+/// Completes a results file whose per-bin datasets are written: the limit datasets (with a
+/// calibration), the candidates and the provenance; closes it.
+fn finish_hdf5(results: ResultsFile, sp: &crate::stage::Spectrum, config_text: &str, provenance: &Provenance, limits: Option<&Limits>) -> anyhow::Result<()> {
+    let file = results.file();
+    if let Some(l) = limits {
+        let column = |f: fn(&crate::limits::BinLimit) -> f64| l.bins.iter().map(f).collect::<Vec<f64>>();
+        let limit_sets: [(&str, Vec<f64>, &str, &str); 5] = [
+            ("mass_uev", column(|b| b.mass_uev), "ueV", "axion mass of the line starting at the bin's lower edge"),
+            ("limit_g_gamma", column(|b| b.g_gamma), "1", "upper limit on |g_gamma| (NaN: not excluded)"),
+            ("limit_g_agg_per_gev", column(|b| b.g_agg_per_gev.abs()), "GeV^-1", "upper limit on |g_agg| (NaN: not excluded)"),
+            ("limit_rel_ksvz", column(|b| b.rel_ksvz), "1", "limit on |g_gamma| relative to KSVZ"),
+            ("limit_rel_dfsz", column(|b| b.rel_dfsz), "1", "limit on |g_gamma| relative to DFSZ"),
         ];
-        for (name, data, units, description) in datasets {
-            let ds = file.new_dataset_builder().with_data(data).create(name)?;
-            ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
-            ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))?;
+        for (name, data, units, description) in limit_sets {
+            ResultsFile::described(file, name, &data, units, description)?;
         }
-        if let Some(l) = limits {
-            let column = |f: fn(&crate::limits::BinLimit) -> f64| l.bins.iter().map(f).collect::<Vec<f64>>();
-            let limit_sets: [(&str, Vec<f64>, &str, &str); 5] = [
-                ("mass_uev", column(|b| b.mass_uev), "ueV", "axion mass of the line starting at the bin's lower edge"),
-                ("limit_g_gamma", column(|b| b.g_gamma), "1", "upper limit on |g_gamma| (NaN: not excluded)"),
-                ("limit_g_agg_per_gev", column(|b| b.g_agg_per_gev.abs()), "GeV^-1", "upper limit on |g_agg| (NaN: not excluded)"),
-                ("limit_rel_ksvz", column(|b| b.rel_ksvz), "1", "limit on |g_gamma| relative to KSVZ"),
-                ("limit_rel_dfsz", column(|b| b.rel_dfsz), "1", "limit on |g_gamma| relative to DFSZ"),
-            ];
-            for (name, data, units, description) in limit_sets {
-                let ds = file.new_dataset_builder().with_data(&data).create(name)?;
-                ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
-                ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))?;
-            }
-            let assumptions = serde_json::to_string(&l.assumptions)?;
-            file.new_attr::<VarLenUnicode>().create("limit_assumptions")?.write_scalar(&text(&assumptions))?;
-        }
-        let cand_f: Vec<f64> = sp.candidates.iter().map(|c| c.frequency_hz).collect();
-        let cand_s: Vec<f64> = sp.candidates.iter().map(|c| c.significance).collect();
-        let g = file.create_group("candidates")?;
-        for (name, data, units, description) in [
-            ("frequency_hz", &cand_f, "Hz", "axion frequency hypothesis (line start) of each candidate's most significant bin"),
-            ("significance", &cand_s, "1", "grand-spectrum value of each candidate's most significant bin"),
-        ] {
-            let ds = g.new_dataset_builder().with_data(data).create(name)?;
-            ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
-            ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))?;
-        }
-        file.new_attr::<VarLenUnicode>().create("tool_version")?.write_scalar(&text(&provenance.tool_version))?;
-        file.new_attr::<VarLenUnicode>().create("config_sha256")?.write_scalar(&text(&provenance.config_sha256))?;
-        file.new_attr::<VarLenUnicode>().create("config_text")?.write_scalar(&text(config_text))?;
-        let inputs = serde_json::to_string(&provenance.inputs)?;
-        file.new_attr::<VarLenUnicode>().create("inputs")?.write_scalar(&text(&inputs))?;
-        file.close()?;
-        Ok(())
+        results.text_attr("limit_assumptions", &serde_json::to_string(&l.assumptions)?)?;
     }
+    let cand_f: Vec<f64> = sp.candidates.iter().map(|c| c.frequency_hz).collect();
+    let cand_s: Vec<f64> = sp.candidates.iter().map(|c| c.significance).collect();
+    let g = file.create_group("candidates")?;
+    ResultsFile::described(&g, "frequency_hz", &cand_f, "Hz", "axion frequency hypothesis (line start) of each candidate's most significant bin")?;
+    ResultsFile::described(&g, "significance", &cand_s, "1", "grand-spectrum value of each candidate's most significant bin")?;
+    results.text_attr("tool_version", &provenance.tool_version)?;
+    results.text_attr("config_sha256", &provenance.config_sha256)?;
+    results.text_attr("config_text", config_text)?;
+    results.text_attr("inputs", &serde_json::to_string(&provenance.inputs)?)?;
+    results.close()?;
+    Ok(())
 }

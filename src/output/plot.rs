@@ -1,37 +1,98 @@
 //! The grand-spectrum plot (PNG and SVG), reduced to min/max per pixel column.
+//!
+//! The extremes of each column are gathered as the bins go by ([`Columns`]), so a grid of
+//! any length is drawn from 2 x 1200 numbers, in memory and time independent of its size
+//! once the bins are read.
 
-use crate::stage::Spectrum;
+use super::Bins;
+use crate::stage::Candidate;
 use plotters::prelude::*;
+use rayon::prelude::*;
 use std::path::Path;
 
 const WIDTH: u32 = 1200;
+/// Bins one task of [`Columns::add`] scans.
+const PIECE_BINS: usize = 16384;
 const HEIGHT: u32 = 500;
 
+/// Minimum and maximum of the finite grand-spectrum values of each pixel column: bins
+/// `c * per .. (c + 1) * per` fall in column c.
+#[derive(Debug, Clone)]
+pub struct Columns {
+    n_bins: usize,
+    per: usize,
+    lo: Vec<f64>,
+    hi: Vec<f64>,
+}
+
+impl Columns {
+    /// Empty columns for a grid of `n_bins` bins.
+    pub fn new(n_bins: usize) -> Self {
+        let n = n_bins.max(1);
+        let per = n.div_ceil((WIDTH as usize).min(n));
+        let columns = n.div_ceil(per);
+        Self { n_bins: n, per, lo: vec![f64::INFINITY; columns], hi: vec![f64::NEG_INFINITY; columns] }
+    }
+
+    /// Takes in consecutive bins (pieces of them in parallel; min and max do not depend on
+    /// the order).
+    pub fn add(&mut self, bins: &Bins<'_>) {
+        let per = self.per;
+        let parts: Vec<Vec<(usize, f64, f64)>> = bins
+            .pieces(PIECE_BINS)
+            .collect::<Vec<_>>()
+            .par_iter()
+            .map(|piece| {
+                let mut found: Vec<(usize, f64, f64)> = Vec::new();
+                for (j, &v) in piece.grand.iter().enumerate().filter(|(_, v)| v.is_finite()) {
+                    let c = (piece.first_bin + j) / per;
+                    match found.last_mut() {
+                        Some(last) if last.0 == c => (last.1, last.2) = (last.1.min(v), last.2.max(v)),
+                        _ => found.push((c, v, v)),
+                    }
+                }
+                found
+            })
+            .collect();
+        for (c, lo, hi) in parts.into_iter().flatten() {
+            self.lo[c] = self.lo[c].min(lo);
+            self.hi[c] = self.hi[c].max(hi);
+        }
+    }
+}
+
+/// What the plot shows besides the columns.
+pub struct PlotFacts<'a> {
+    /// Bin-centre frequency of grid bin 0, Hz.
+    pub origin_hz: f64,
+    /// Bin width, Hz.
+    pub bin_width_hz: f64,
+    /// Threshold of the flag stage.
+    pub threshold: Option<f64>,
+    /// Every candidate.
+    pub candidates: &'a [Candidate],
+}
+
 /// Draws the grand spectrum with the threshold and the candidates marked.
-pub fn grand_spectrum(sp: &Spectrum, png: &Path, svg: &Path) -> anyhow::Result<()> {
+pub fn grand_spectrum(columns: &Columns, facts: &PlotFacts<'_>, png: &Path, svg: &Path) -> anyhow::Result<()> {
     crate::fonts::register_fonts()?;
-    draw(sp, BitMapBackend::new(png, (WIDTH, HEIGHT)).into_drawing_area())?;
-    draw(sp, SVGBackend::new(svg, (WIDTH, HEIGHT)).into_drawing_area())?;
+    draw(columns, facts, BitMapBackend::new(png, (WIDTH, HEIGHT)).into_drawing_area())?;
+    draw(columns, facts, SVGBackend::new(svg, (WIDTH, HEIGHT)).into_drawing_area())?;
     Ok(())
 }
 
-fn draw<DB: DrawingBackend>(sp: &Spectrum, area: DrawingArea<DB, plotters::coord::Shift>) -> anyhow::Result<()>
+fn draw<DB: DrawingBackend>(columns: &Columns, sp: &PlotFacts<'_>, area: DrawingArea<DB, plotters::coord::Shift>) -> anyhow::Result<()>
 where
     DB::ErrorType: 'static,
 {
     area.fill(&WHITE).map_err(|e| anyhow::anyhow!("{e}"))?;
-    let n = sp.grand.len().max(1);
-    let mhz = |j: usize| sp.freq_hz(j) / 1e6;
-    let columns = (WIDTH as usize).min(n);
-    let per = n.div_ceil(columns);
+    let n = columns.n_bins;
+    let mhz = |j: usize| (sp.origin_hz + j as f64 * sp.bin_width_hz) / 1e6;
     let mut lo_pts = Vec::new();
     let mut hi_pts = Vec::new();
-    for c in (0..n).step_by(per) {
-        let vals: Vec<f64> = sp.grand[c..(c + per).min(n)].iter().copied().filter(|v| v.is_finite()).collect();
-        if let (Some(lo), Some(hi)) = (vals.iter().copied().reduce(f64::min), vals.iter().copied().reduce(f64::max)) {
-            lo_pts.push((mhz(c), lo));
-            hi_pts.push((mhz(c), hi));
-        }
+    for (c, (&lo, &hi)) in columns.lo.iter().zip(&columns.hi).enumerate().filter(|(_, (lo, _))| lo.is_finite()) {
+        lo_pts.push((mhz(c * columns.per), lo));
+        hi_pts.push((mhz(c * columns.per), hi));
     }
     let ymax = hi_pts.iter().map(|p| p.1).fold(sp.threshold.unwrap_or(4.0) + 1.0, f64::max);
     let ymin = lo_pts.iter().map(|p| p.1).fold(-5.0, f64::min);

@@ -69,6 +69,8 @@ pub struct SummaryView {
     pub expected_null_bins_above: Option<f64>,
     /// Rescan candidates.
     pub candidates: Vec<CandidateView>,
+    /// All rescan candidates (`candidates` lists the strongest of them).
+    pub n_candidates: usize,
     /// Steps cut, with reasons.
     pub cuts: Vec<CutView>,
     /// Tool version, config hash, inputs.
@@ -213,8 +215,10 @@ impl ReportData {
             Ok(file.dataset(name).with_context(|| format!("{}: dataset `{name}`", results.display()))?.read_raw::<f64>()?)
         };
         let grand = read("grand")?;
-        let freq = read("rf_freq_hz")?;
-        let bin_width_hz = if freq.len() > 1 { (freq[freq.len() - 1] - freq[0]) / (freq.len() - 1) as f64 } else { 1.0 };
+        let axis = |name: &str| -> anyhow::Result<f64> {
+            file.attr(name).and_then(|a| a.read_scalar::<f64>()).with_context(|| format!("{}: attribute `{name}`", results.display()))
+        };
+        let (rf_start_hz, bin_width_hz) = (axis("rf_start_hz")?, axis("bin_width_hz")?);
         let config_text = file.attr("config_text").and_then(|a| a.read_scalar::<hdf5::types::VarLenUnicode>()).map(|s| s.to_string()).unwrap_or_default();
         let eta = summary.calibration.as_ref().map(|c| c.eta);
         let implied = match eta {
@@ -241,18 +245,6 @@ impl ReportData {
             None => plan.and_then(|plan| diagnostics::measure(&plan, &runs)),
         };
         let run_labels = runs.iter().filter_map(|p| crate::runfile::RunReader::open(p).ok()).map(|r| r.header().run_label.clone()).collect();
-        Ok(Self {
-            run_labels,
-            rf_start_hz: freq.first().copied().unwrap_or(summary.rf_start_hz),
-            bin_width_hz,
-            grand,
-            implied,
-            steps,
-            limits,
-            calibration,
-            config_text,
-            summary,
-            state: None,
-        })
+        Ok(Self { run_labels, rf_start_hz, bin_width_hz, grand, implied, steps, limits, calibration, config_text, summary, state: None })
     }
 }

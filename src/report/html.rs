@@ -137,7 +137,7 @@ pub fn render(d: &ReportData) -> anyhow::Result<String> {
         out,
         "<header><h1>Morning report</h1><p>{}</p><p>{} rescan candidate(s) &middot; {} of {} steps used &middot; {:.3} to {:.3} MHz</p></header><nav>",
         escape(&title),
-        s.candidates.len(),
+        s.n_candidates,
         s.n_steps_used,
         s.n_steps_in,
         s.rf_start_hz / 1e6,
@@ -209,7 +209,7 @@ fn glance(out: &mut String, d: &ReportData) {
         &format!("{} bins", s.n_bins_above_threshold),
         &format!("threshold {}; noise alone about {}", num(s.threshold, 3), num(s.expected_null_bins_above, 1)),
     );
-    card(out, "Rescan candidates", &s.candidates.len().to_string(), "adjacent bins above threshold merged");
+    card(out, "Rescan candidates", &s.n_candidates.to_string(), "adjacent bins above threshold merged");
     out.push_str("</div>");
 }
 
@@ -359,7 +359,11 @@ fn candidates(out: &mut String, d: &ReportData) {
         }
         out.push_str("</tr>");
     }
-    out.push_str("</table></div><p class=\"note\">Sorted by significance. The retune frequency is the line's mean frequency nu_a (1 + &lt;beta^2&gt;/2).</p>");
+    out.push_str("</table></div><p class=\"note\">Sorted by significance");
+    if s.n_candidates > s.candidates.len() {
+        let _ = write!(out, "; the strongest {} of {} (all of them are in candidates.csv)", s.candidates.len(), s.n_candidates);
+    }
+    out.push_str(". The retune frequency is the line's mean frequency nu_a (1 + &lt;beta^2&gt;/2).</p>");
 }
 
 /// The analysis state: nights, tracked candidates by class with evidence and rescan plan,

@@ -4,7 +4,8 @@
 //! A step whose start is not a whole number of bins from the grid origin (within
 //! `max_misalignment_bins`) is an error naming it: steps are never silently shifted.
 
-use super::{Combiner, NightInfo, Spectrum, Standardised, Step, written_zeros};
+use super::grid_sums::GridSums;
+use super::{BLOCK_BINS, Combiner, NightInfo, Spectrum, Standardised, Step};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::simd::per_bin_loop;
 use rayon::prelude::*;
@@ -42,9 +43,7 @@ impl StageConfig for CombineConfig {
             step_span_hz: (night.n_bins - 1) as f64 * night.bin_width_hz,
             origin_hz: lo,
             bin_width_hz: night.bin_width_hz,
-            weighted_sum: written_zeros(n),
-            weight: written_zeros(n),
-            coverage: written_zeros(n),
+            sums: GridSums::new(n),
         })))
     }
 }
@@ -54,9 +53,7 @@ struct MlCombiner {
     step_span_hz: f64,
     origin_hz: f64,
     bin_width_hz: f64,
-    weighted_sum: Vec<f64>,
-    weight: Vec<f64>,
-    coverage: Vec<u32>,
+    sums: GridSums,
 }
 
 /// RF bins one task of [`MlCombiner::add_all`] accumulates.
@@ -99,49 +96,79 @@ per_bin_loop! {
     }
 }
 
+per_bin_loop! {
+    /// The combined value sum / weight (NaN where weight = 0) and its sigma 1 / sqrt(weight)
+    /// (infinite there), per bin.
+    fn combine_values(weighted_sum: &[f64], weight: &[f64], combined: &mut [f64], sigma: &mut [f64]) {
+        for (((s, w), c), sd) in weighted_sum.iter().zip(weight).zip(combined.iter_mut()).zip(sigma.iter_mut()) {
+            (*c, *sd) = if *w > 0.0 { (s / w, w.sqrt().recip()) } else { (f64::NAN, f64::INFINITY) };
+        }
+    }
+}
+
 impl Combiner for MlCombiner {
     fn add(&mut self, step: &Step) -> Result<(), String> {
-        let first = self.first_bin(step)?;
-        let Standardised { z, inverse_sigma } = &step.standard;
-        let n = step.standard.len();
-        accumulate(&mut self.weighted_sum[first..first + n], &mut self.weight[first..first + n], &mut self.coverage[first..first + n], z, inverse_sigma);
-        Ok(())
+        self.add_all(&[step])
     }
-    /// Pieces of [`PIECE_BINS`] RF bins in parallel; within a piece the steps are added in
-    /// their order, so every bin sees the same additions in the same order as with
-    /// [`Combiner::add`], whatever the number of threads.
+    /// Pieces of at most [`PIECE_BINS`] RF bins in parallel; within a piece the steps are
+    /// added in their order, so every bin sees the same additions in the same order as with
+    /// [`Combiner::add`] on each step, whatever the number of threads.
     fn add_all(&mut self, steps: &[&Step]) -> Result<(), String> {
         let placed: Vec<(usize, &Step)> = steps.iter().map(|&step| Ok((self.first_bin(step)?, step))).collect::<Result<_, String>>()?;
         let Some(lo) = placed.iter().map(|&(first, _)| first).min() else { return Ok(()) };
         let hi = placed.iter().map(|&(first, step)| first + step.standard.len()).max().unwrap_or(lo);
-        let (sums, weights, coverage) = (&mut self.weighted_sum[lo..hi], &mut self.weight[lo..hi], &mut self.coverage[lo..hi]);
-        sums.par_chunks_mut(PIECE_BINS).zip(weights.par_chunks_mut(PIECE_BINS)).zip(coverage.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
-            |(piece, ((sums, weights), coverage))| {
-                // This piece holds RF bins a..b.
-                let a = lo + piece * PIECE_BINS;
-                let b = a + sums.len();
-                for &(first, step) in &placed {
-                    let Standardised { z, inverse_sigma } = &step.standard;
-                    let n = step.standard.len();
-                    let (from, to) = (first.max(a), (first + n).min(b));
-                    if from < to {
-                        let (here, there) = (from - a..to - a, from - first..to - first);
-                        accumulate(&mut sums[here.clone()], &mut weights[here.clone()], &mut coverage[here], &z[there.clone()], &inverse_sigma[there]);
-                    }
+        self.sums.pieces(lo, hi, PIECE_BINS).into_par_iter().for_each(|piece| {
+            // This piece holds RF bins a..b.
+            let a = piece.first_bin;
+            let b = a + piece.weight.len();
+            for &(first, step) in &placed {
+                let Standardised { z, inverse_sigma } = &step.standard;
+                let n = step.standard.len();
+                let (from, to) = (first.max(a), (first + n).min(b));
+                if from < to {
+                    let (here, there) = (from - a..to - a, from - first..to - first);
+                    accumulate(
+                        &mut piece.weighted_sum[here.clone()],
+                        &mut piece.weight[here.clone()],
+                        &mut piece.coverage[here],
+                        &z[there.clone()],
+                        &inverse_sigma[there],
+                    );
                 }
-            },
-        );
+            }
+        });
         Ok(())
     }
-    fn finish(self: Box<Self>) -> Spectrum {
-        let combined = self.weighted_sum.iter().zip(&self.weight).map(|(s, w)| if *w > 0.0 { s / w } else { f64::NAN }).collect();
-        let combined_sigma = self.weight.iter().map(|w| if *w > 0.0 { w.sqrt().recip() } else { f64::INFINITY }).collect();
+    fn grid_bins(&self) -> usize {
+        self.sums.grid_bins()
+    }
+    fn finish_block(&mut self, block: usize, combined: &mut Vec<f64>, sigma: &mut Vec<f64>, coverage: Option<&mut Vec<u32>>) {
+        self.sums.close(block, |sums| {
+            let (c0, s0, n) = (combined.len(), sigma.len(), sums.weight.len());
+            combined.resize(c0 + n, 0.0);
+            sigma.resize(s0 + n, 0.0);
+            // Element-wise, in parallel pieces.
+            combined[c0..].par_chunks_mut(PIECE_BINS).zip(sigma[s0..].par_chunks_mut(PIECE_BINS)).enumerate().for_each(|(p, (c, s))| {
+                let r = p * PIECE_BINS..p * PIECE_BINS + c.len();
+                combine_values(&sums.weighted_sum[r.clone()], &sums.weight[r], c, s);
+            });
+            if let Some(coverage) = coverage {
+                coverage.extend_from_slice(&sums.coverage);
+            }
+        });
+    }
+    fn finish(mut self: Box<Self>) -> Spectrum {
+        let n = self.grid_bins();
+        let (mut combined, mut combined_sigma, mut coverage) = (Vec::with_capacity(n), Vec::with_capacity(n), Vec::with_capacity(n));
+        for block in 0..n.div_ceil(BLOCK_BINS) {
+            self.finish_block(block, &mut combined, &mut combined_sigma, Some(&mut coverage));
+        }
         Spectrum {
             rf_start_hz: self.origin_hz,
             bin_width_hz: self.bin_width_hz,
             combined,
             combined_sigma,
-            coverage: self.coverage,
+            coverage,
             step_span_hz: self.step_span_hz,
             ..Spectrum::default()
         }

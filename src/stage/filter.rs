@@ -12,7 +12,7 @@
 //! slowly across the line, and the grand spectrum is A / (sigma_A * predicted spread).
 //! The night's own spread is reported beside it but never used.
 
-use super::{NightInfo, Spectrum, SpectrumStage};
+use super::{BLOCK_BINS, Block, NightInfo, SpectrumStage};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::correlate::{CorrelationScratch, Correlator};
 use crate::physics::lineshape::HaloModel;
@@ -156,7 +156,16 @@ struct OptimalFilter {
 }
 
 impl SpectrumStage for OptimalFilter {
-    fn apply(&self, sp: &mut Spectrum, _steps: &[(usize, StepMeta)]) -> Result<(), String> {
+    /// The longest kernel's reach past a bin.
+    fn lookahead_bins(&self) -> usize {
+        self.segments.iter().map(|seg| seg.line.kernel_len().max(seg.line_squared.kernel_len()) - 1).max().unwrap_or(0)
+    }
+    /// Pieces of [`PIECE_BINS`] grid bins, counted from the grid's bin 0 (blocks start at
+    /// multiples of it), each split where the kernel changes: every output comes from the
+    /// same correlation of the same inputs however the grid is cut into blocks.
+    fn apply_block(&self, sp: &mut Block, _steps: &[(usize, StepMeta)]) -> Result<(), String> {
+        debug_assert!(sp.first_bin % PIECE_BINS == 0 && BLOCK_BINS % PIECE_BINS == 0);
+        // The bins the block holds: its own and those read past its end.
         let n = sp.combined.len();
         let weights: Vec<f64> = sp.combined_sigma.iter().map(|s| if s.is_finite() { 1.0 / (s * s) } else { 0.0 }).collect();
         let data: Vec<f64> = sp.combined.iter().zip(&weights).map(|(r, w)| if *w > 0.0 { r * w } else { 0.0 }).collect();
@@ -168,20 +177,27 @@ impl SpectrumStage for OptimalFilter {
         for w in &weights {
             with_data.push(with_data.last().copied().unwrap_or(0) + u32::from(*w > 0.0));
         }
-        let mut amplitude = vec![0.0; n];
-        let mut sigma_a = vec![0.0; n];
-        let mut spread = vec![0.0; n];
+        let len = sp.len;
+        let mut amplitude = std::mem::take(&mut sp.amplitude);
+        let mut sigma_a = std::mem::take(&mut sp.sigma_a);
+        let mut spread = std::mem::take(&mut sp.predicted_spread);
+        for v in [&mut amplitude, &mut sigma_a, &mut spread] {
+            v.clear();
+            v.resize(len, 0.0);
+        }
+        let origin = sp.first_bin;
         // Fixed pieces, each computed alone: the result does not depend on the thread count.
         amplitude.par_chunks_mut(PIECE_BINS).zip(sigma_a.par_chunks_mut(PIECE_BINS)).zip(spread.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
             |(piece, ((num, den), spread))| {
                 let mut scratch = CorrelationScratch::default();
+                // Block-local bins start..end; grid bin = origin + local bin.
                 let start = piece * PIECE_BINS;
                 let end = start + num.len();
                 // Split the piece where the kernel changes.
                 let mut a = start;
                 while a < end {
-                    let seg = &self.segments[a / self.seg_bins];
-                    let b = ((a / self.seg_bins + 1) * self.seg_bins).min(end);
+                    let seg = &self.segments[(origin + a) / self.seg_bins];
+                    let b = (((origin + a) / self.seg_bins + 1) * self.seg_bins - origin).min(end);
                     let reach = (b + seg.line.kernel_len() - 1).min(n);
                     let (lo, hi) = (a - start, b - start);
                     seg.line.correlate_with(&data[a..reach], &mut num[lo..hi], &mut scratch);
@@ -197,7 +213,8 @@ impl SpectrumStage for OptimalFilter {
         );
         drop((weights, data, with_data));
         sp.mean_beta_sq = self.mean_beta_sq;
-        sp.grand = amplitude.iter().zip(&sigma_a).zip(&spread).map(|((a, s), r)| a / (s * r)).collect();
+        sp.grand.clear();
+        sp.grand.extend(amplitude.iter().zip(&sigma_a).zip(&spread).map(|((a, s), r)| a / (s * r)));
         sp.amplitude = amplitude;
         sp.sigma_a = sigma_a;
         sp.predicted_spread = spread;

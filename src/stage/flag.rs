@@ -5,7 +5,7 @@
 //! candidate, reported at its most significant bin, with the steps that covered it and the
 //! cavity frequency to tune to (the line's mean frequency nu_a (1 + <beta^2>/2)).
 
-use super::{Candidate, NightInfo, Spectrum, SpectrumStage};
+use super::{Block, Candidate, NightInfo, OpenRun, SpectrumStage};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::runfile::StepMeta;
 use serde::Deserialize;
@@ -60,37 +60,50 @@ struct Flag {
     threshold: f64,
 }
 
+impl Flag {
+    /// The candidate of a run of bins above threshold, `first..=last` with its peak.
+    fn candidate(sp: &Block, run: OpenRun, last_bin: usize, steps: &[(usize, StepMeta)]) -> Candidate {
+        let frequency_hz = sp.freq_hz(run.peak_bin) - sp.bin_width_hz / 2.0;
+        let covering_steps =
+            steps.iter().filter(|(_, m)| m.start_freq_hz <= frequency_hz && frequency_hz <= m.start_freq_hz + sp.step_span_hz).map(|(i, _)| *i).collect();
+        Candidate {
+            frequency_hz,
+            significance: run.peak_value,
+            peak_bin: run.peak_bin,
+            first_bin: run.first_bin,
+            last_bin,
+            revisit_cavity_hz: frequency_hz * (1.0 + sp.mean_beta_sq / 2.0),
+            covering_steps,
+        }
+    }
+}
+
 impl SpectrumStage for Flag {
-    fn apply(&self, sp: &mut Spectrum, steps: &[(usize, StepMeta)]) -> Result<(), String> {
+    /// A run reaching the block's end stays open and is continued by the next block; the
+    /// steps covering a candidate are all known by then, since a block is finished only
+    /// after every step touching it.
+    fn apply_block(&self, sp: &mut Block, steps: &[(usize, StepMeta)]) -> Result<(), String> {
         sp.threshold = Some(self.threshold);
-        let mean_beta_sq = sp.mean_beta_sq;
-        let mut j = 0;
-        let n = sp.grand.len();
-        while j < n {
-            if !(sp.grand[j] > self.threshold) {
-                j += 1;
-                continue;
-            }
-            let first = j;
-            let mut peak = j;
-            while j < n && sp.grand[j] > self.threshold {
-                if sp.grand[j] > sp.grand[peak] {
-                    peak = j;
+        let mut run = sp.open_run.take();
+        for j in 0..sp.len.min(sp.grand.len()) {
+            let (bin, value) = (sp.first_bin + j, sp.grand[j]);
+            if value > self.threshold {
+                match &mut run {
+                    // The first of equal maxima stays the peak.
+                    Some(open) if value > open.peak_value => (open.peak_bin, open.peak_value) = (bin, value),
+                    Some(_) => {}
+                    None => run = Some(OpenRun { first_bin: bin, peak_bin: bin, peak_value: value }),
                 }
-                j += 1;
+            } else if let Some(open) = run.take() {
+                let candidate = Self::candidate(sp, open, bin - 1, steps);
+                sp.candidates.push(candidate);
             }
-            let frequency_hz = sp.freq_hz(peak) - sp.bin_width_hz / 2.0;
-            let covering_steps =
-                steps.iter().filter(|(_, m)| m.start_freq_hz <= frequency_hz && frequency_hz <= m.start_freq_hz + sp.step_span_hz).map(|(i, _)| *i).collect();
-            sp.candidates.push(Candidate {
-                frequency_hz,
-                significance: sp.grand[peak],
-                peak_bin: peak,
-                first_bin: first,
-                last_bin: j - 1,
-                revisit_cavity_hz: frequency_hz * (1.0 + mean_beta_sq / 2.0),
-                covering_steps,
-            });
+        }
+        if let Some(open) = run.filter(|_| sp.is_last()) {
+            let candidate = Self::candidate(sp, open, sp.first_bin + sp.len - 1, steps);
+            sp.candidates.push(candidate);
+        } else {
+            sp.open_run = run;
         }
         Ok(())
     }

@@ -6,13 +6,16 @@
 //! consumes and produces, and the plan is checked against those when the config is loaded.
 
 pub mod baseline;
+pub mod block;
 pub mod combine;
 pub mod filter;
 pub mod flag;
+mod grid_sums;
 pub mod ingest;
 pub mod rescale;
 
 use crate::runfile::{RunHeader, StepMeta};
+pub use block::{BLOCK_BINS, Block, OpenRun};
 
 /// `x.is_finite()` written as a floating-point comparison. The standard form is compiled to
 /// integer tests on the bits, which keeps the per-bin loops of the stages from vectorising.
@@ -198,6 +201,10 @@ pub struct Candidate {
 }
 
 /// Maps steps onto one RF grid. Steps come standardised ([`Step::standard`] filled).
+///
+/// The grid is held in blocks of [`BLOCK_BINS`] bins, made when a step first touches them;
+/// [`Combiner::finish_block`] hands a block's combined values out and drops its sums, so a
+/// night whose steps move along the grid keeps only the blocks its current steps touch.
 pub trait Combiner: Send {
     /// Adds one step (called in step order, so the sums are reproducible).
     fn add(&mut self, step: &Step) -> Result<(), String>;
@@ -207,12 +214,31 @@ pub trait Combiner: Send {
     fn add_all(&mut self, steps: &[&Step]) -> Result<(), String> {
         steps.iter().try_for_each(|step| self.add(step))
     }
-    /// Returns the combined spectrum.
+    /// Bins of the whole grid.
+    fn grid_bins(&self) -> usize;
+    /// Appends the combined values of block `block` (bins `block * BLOCK_BINS ..`) to
+    /// `combined` (NaN = no data) and `sigma` (infinite = no data), and its step counts to
+    /// `coverage` if given, and drops its sums: no step may touch it afterwards.
+    fn finish_block(&mut self, block: usize, combined: &mut Vec<f64>, sigma: &mut Vec<f64>, coverage: Option<&mut Vec<u32>>);
+    /// Returns the combined spectrum (every block finished).
     fn finish(self: Box<Self>) -> Spectrum;
 }
 
-/// A stage on the combined spectrum.
+/// A stage on the combined spectrum, applied block by block in grid order.
 pub trait SpectrumStage: Send + Sync {
-    /// Transforms the spectrum in place.
-    fn apply(&self, spectrum: &mut Spectrum, steps: &[(usize, StepMeta)]) -> Result<(), String>;
+    /// Combined bins past a block's end the stage reads (0: none).
+    fn lookahead_bins(&self) -> usize {
+        0
+    }
+    /// Transforms one block in place. Blocks come in grid order, each with
+    /// [`SpectrumStage::lookahead_bins`] combined bins beyond its own (fewer at the grid's
+    /// end), and with what the previous block left open.
+    fn apply_block(&self, block: &mut Block, steps: &[(usize, StepMeta)]) -> Result<(), String>;
+    /// Transforms a whole spectrum in place, as one block.
+    fn apply(&self, spectrum: &mut Spectrum, steps: &[(usize, StepMeta)]) -> Result<(), String> {
+        let mut block = Block::whole(spectrum);
+        let applied = self.apply_block(&mut block, steps);
+        block.return_to(spectrum);
+        applied
+    }
 }

@@ -1,0 +1,125 @@
+//! `results.h5`, written block by block.
+//!
+//! Layout: root attributes `rf_start_hz` (bin-centre RF frequency of bin 0, Hz),
+//! `bin_width_hz` and `n_rf_bins` give the frequency axis, bin j at rf_start_hz + j *
+//! bin_width_hz (the combination puts every step on one regular grid, so no frequency
+//! dataset is needed); one single-precision dataset per per-bin quantity, in chunks of
+//! [`CHUNK_BINS`] bins, so a reader of one MHz reads one or two chunks. Single precision
+//! rounds each value by at most 2^-24 of itself: the grand spectrum moves by < 3e-7 of its
+//! null spread of 1 for |grand| < 5, and candidates are found before rounding
+//! (tests/fast_paths.rs). `predicted_spread` is constant over each filter segment and is
+//! stored compressed (deflate, level 1: 4 MB -> 10 kB per million bins on the test nights);
+//! the noise-like datasets do not compress (deflate saved 7-9 % at several times the
+//! write time, measured on the 3000-step night), so they are stored plain.
+
+use super::bins::Bins;
+use hdf5::types::VarLenUnicode;
+use rayon::prelude::*;
+use std::path::Path;
+use std::str::FromStr;
+
+/// Bins per chunk of every per-bin dataset (256 kB of f32; 6.6 MHz of 100 Hz bins).
+pub const CHUNK_BINS: usize = 1 << 16;
+
+/// The per-bin datasets: name, units, description, compressed.
+const DATASETS: [(&str, &str, &str, bool); 6] = [
+    ("combined", "reference-axion power", "maximum-likelihood combined excess power", false),
+    ("combined_sigma", "reference-axion power", "standard deviation of combined", false),
+    ("amplitude", "reference-axion power", "filtered amplitude A for a line starting at the bin's lower edge", false),
+    ("sigma_a", "reference-axion power", "standard deviation of the filtered amplitude", false),
+    ("predicted_spread", "1", "predicted null spread of A/sigma_A", true),
+    ("grand", "1", "grand spectrum A / (sigma_A * predicted spread)", false),
+];
+
+/// One run of bins of every per-bin dataset, narrowed to single precision for writing.
+#[derive(Debug, Clone)]
+pub struct ResultBlock {
+    first_bin: usize,
+    grid_bins: usize,
+    origin_hz: f64,
+    bin_width_hz: f64,
+    /// In the order of [`DATASETS`].
+    columns: [Vec<f32>; 6],
+}
+
+impl ResultBlock {
+    /// The bins' values in single precision (the datasets narrowed in parallel).
+    pub fn of(b: &Bins<'_>) -> Self {
+        let sources = [b.combined, b.combined_sigma, b.amplitude, b.sigma_a, b.predicted_spread, b.grand];
+        let mut columns: [Vec<f32>; 6] = Default::default();
+        columns.par_iter_mut().zip(sources).for_each(|(column, source)| column.extend(source.iter().map(|&v| v as f32)));
+        Self { first_bin: b.first_bin, grid_bins: b.grid_bins, origin_hz: b.origin_hz, bin_width_hz: b.bin_width_hz, columns }
+    }
+}
+
+fn text(s: &str) -> VarLenUnicode {
+    VarLenUnicode::from_str(s).unwrap_or_default()
+}
+
+fn describe(ds: &hdf5::Dataset, units: &str, description: &str) -> hdf5::Result<()> {
+    ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
+    ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))
+}
+
+/// An open results file: made with the first block, finished with the candidates and the
+/// provenance.
+pub struct ResultsFile {
+    file: hdf5::File,
+    datasets: Vec<hdf5::Dataset>,
+}
+
+impl ResultsFile {
+    /// Creates the file at `path` for the grid of `first` and writes `first`.
+    pub fn create(path: &Path, first: &ResultBlock) -> hdf5::Result<Self> {
+        let file = hdf5::File::create(path)?;
+        let n = first.grid_bins;
+        let chunk = CHUNK_BINS.min(n.max(1));
+        let datasets = DATASETS
+            .iter()
+            .map(|&(name, units, description, compressed)| {
+                let builder = file.new_dataset::<f32>().chunk(chunk);
+                let builder = if compressed { builder.deflate(1) } else { builder };
+                let ds = builder.shape(n).create(name)?;
+                describe(&ds, units, description)?;
+                Ok(ds)
+            })
+            .collect::<hdf5::Result<Vec<_>>>()?;
+        file.new_attr::<f64>().create("rf_start_hz")?.write_scalar(&first.origin_hz)?;
+        file.new_attr::<f64>().create("bin_width_hz")?.write_scalar(&first.bin_width_hz)?;
+        file.new_attr::<u64>().create("n_rf_bins")?.write_scalar(&(n as u64))?;
+        file.new_attr::<VarLenUnicode>().create("rf_axis")?.write_scalar(&text("bin j has bin-centre RF frequency rf_start_hz + j * bin_width_hz (Hz)"))?;
+        let results = Self { file, datasets };
+        results.write(first)?;
+        Ok(results)
+    }
+
+    /// Writes one run of bins.
+    pub fn write(&self, b: &ResultBlock) -> hdf5::Result<()> {
+        for (ds, column) in self.datasets.iter().zip(&b.columns) {
+            ds.write_slice(column.as_slice(), b.first_bin..b.first_bin + column.len())?;
+        }
+        Ok(())
+    }
+
+    /// The file's root group, for the datasets and attributes written last.
+    pub fn file(&self) -> &hdf5::File {
+        &self.file
+    }
+
+    /// Writes a dataset of `data` with its `units` and `description`, in `group`.
+    pub fn described<T: hdf5::H5Type>(group: &hdf5::Group, name: &str, data: &[T], units: &str, description: &str) -> hdf5::Result<()> {
+        let ds = group.new_dataset_builder().with_data(data).create(name)?;
+        describe(&ds, units, description)
+    }
+
+    /// Writes a string attribute of the root.
+    pub fn text_attr(&self, name: &str, value: &str) -> hdf5::Result<()> {
+        self.file.new_attr::<VarLenUnicode>().create(name)?.write_scalar(&text(value))
+    }
+
+    /// Closes the file.
+    pub fn close(self) -> hdf5::Result<()> {
+        drop(self.datasets);
+        self.file.close()
+    }
+}
