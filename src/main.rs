@@ -368,6 +368,7 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
         })
     })?;
     bar.finish();
+    warn_no_data(&reduction);
     let limits = calibration
         .as_ref()
         .map(|cal| axsift::limits::for_reduction(&plan, &reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))
@@ -379,6 +380,13 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
         print!("{}", output::console::night_report(&reduction, &provenance, calibrated, &written));
     }
     Ok(())
+}
+
+/// Warns, one line per run file, of bins without data that the file's mask does not mark.
+fn warn_no_data(reduction: &pipeline::Reduction) {
+    for line in reduction.no_data.warnings() {
+        tracing::warn!("{line}");
+    }
 }
 
 /// Runs `work` (a reduction of `runs`) while the run files are hashed for the provenance on
@@ -410,6 +418,7 @@ fn reduce_into_state(
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
     };
     let update = axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0);
+    warn_no_data(&update.reduction);
     // Adding the night hashed its files; the state holds those hashes.
     let provenance = output::Provenance::of_hashed(config_text, st.nights[update.night].inputs());
     let limits = calibration
@@ -574,6 +583,9 @@ fn shard_run(plan: &Path, index: Option<usize>, quiet: bool) -> Result<(), Failu
 
 fn shard_merge(t: &MergeTarget, quiet: bool) -> Result<(), Failure> {
     let merged = axsift::shard::merge(&t.plan, &t.out, t.state.as_deref(), t.calibration.as_deref()).map_err(shard_failure)?;
+    if let axsift::shard::Merged::Reduction { update, .. } = &merged {
+        warn_no_data(&update.reduction);
+    }
     if !quiet {
         match merged {
             axsift::shard::Merged::Reduction { state, update, provenance, calibrated, written } => {

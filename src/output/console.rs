@@ -24,6 +24,14 @@ pub fn night_report(r: &Reduction, provenance: &Provenance, calibrated: Option<(
     for c in s.cuts.iter().take(MAX_LISTED) {
         let _ = writeln!(out, "  cut step {} ({} row {}) by {}: {}", c.step, c.file.display(), c.row, c.stage, c.reason);
     }
+    let nd = s.no_data;
+    if nd.masked.bins + nd.non_finite.bins + nd.non_positive.bins > 0 {
+        let _ = writeln!(
+            out,
+            "No-data bins: {} masked ({} steps), {} non-finite ({} steps), {} non-positive ({} steps)",
+            nd.masked.bins, nd.masked.steps, nd.non_finite.bins, nd.non_finite.steps, nd.non_positive.bins, nd.non_positive.steps
+        );
+    }
     let _ = writeln!(out, "RF coverage: {:.6} - {:.6} MHz, {} bins of {} Hz", s.rf_start_hz / 1e6, s.rf_stop_hz / 1e6, s.n_rf_bins, r.spectrum.bin_width_hz);
     let _ = writeln!(
         out,

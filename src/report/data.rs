@@ -71,6 +71,8 @@ pub struct SummaryView {
     pub candidates: Vec<CandidateView>,
     /// Steps cut, with reasons.
     pub cuts: Vec<CutView>,
+    /// Bins without data, by cause.
+    pub no_data: crate::stage::no_data::NoDataTally,
     /// Tool version, config hash, inputs.
     pub provenance: ProvenanceView,
     /// The calibration figures the reduction applied.

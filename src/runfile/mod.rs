@@ -13,7 +13,7 @@ mod read;
 mod steps;
 mod write;
 
-pub use read::RunReader;
+pub use read::{RunReader, StoredPower, StoredRows};
 pub use write::RunWriter;
 
 use std::path::PathBuf;

@@ -130,30 +130,57 @@ impl RunReader {
         Ok(power)
     }
 
-    /// Reads raw power for `rows` (a hyperslab) without widening, when the file stores f32:
-    /// `Some` with the values as stored, masked bins NaN ("no data"); `None` when the file
-    /// stores f64 (then use [`Self::read_rows`]). Half the memory traffic of `read_rows` and
-    /// no conversion inside the HDF5 library.
-    pub fn read_rows_f32(&self, rows: Range<usize>) -> Result<Option<Array2<f32>>, RunFileError> {
+    /// Reads raw power for `rows` (a hyperslab) as stored, f32 or f64 (f32 is not widened:
+    /// half the memory traffic of [`Self::read_rows`] and no conversion inside the HDF5
+    /// library), masked bins NaN ("no data"), with the number of masked bins of each row.
+    pub fn read_stored_rows(&self, rows: Range<usize>) -> Result<StoredRows, RunFileError> {
         let what = format!("reading spectra of steps {}..{} (corrupted file?)", rows.start, rows.end);
         let hdf5_error = |what: String| {
             let path = self.path.clone();
             move |source| RunFileError::Hdf5 { path, what, source }
         };
-        if self.spectra.dtype().map_err(hdf5_error(what.clone()))?.size() != 4 {
-            return Ok(None);
-        }
-        let mut power: Array2<f32> = self.spectra.read_slice_2d((rows.clone(), ..)).map_err(hdf5_error(what.clone()))?;
-        if let Some(mask) = &self.mask {
-            let flags: Array2<u8> = mask.read_slice_2d((rows, ..)).map_err(hdf5_error(format!("{what} of mask")))?;
-            ndarray::Zip::from(&mut power).and(&flags).for_each(|p, &m| {
-                if m != 0 {
-                    *p = f32::NAN;
-                }
-            });
-        }
-        Ok(Some(power))
+        let n_rows = rows.len();
+        let flags: Option<Array2<u8>> = match &self.mask {
+            Some(mask) => Some(mask.read_slice_2d((rows.clone(), ..)).map_err(hdf5_error(format!("{what} of mask")))?),
+            None => None,
+        };
+        let masked_per_row = match &flags {
+            Some(f) => f.outer_iter().map(|row| row.iter().map(|&m| usize::from(m != 0)).sum()).collect(),
+            None => vec![0; n_rows],
+        };
+        let power = if self.spectra.dtype().map_err(hdf5_error(what.clone()))?.size() == 4 {
+            let mut power: Array2<f32> = self.spectra.read_slice_2d((rows, ..)).map_err(hdf5_error(what))?;
+            if let Some(f) = &flags {
+                ndarray::Zip::from(&mut power).and(f).for_each(|p, &m| *p = if m != 0 { f32::NAN } else { *p });
+            }
+            StoredPower::F32(power)
+        } else {
+            let mut power: Array2<f64> = self.spectra.read_slice_2d((rows, ..)).map_err(hdf5_error(what))?;
+            if let Some(f) = &flags {
+                ndarray::Zip::from(&mut power).and(f).for_each(|p, &m| *p = if m != 0 { f64::NAN } else { *p });
+            }
+            StoredPower::F64(power)
+        };
+        Ok(StoredRows { power, masked_per_row })
     }
+}
+
+/// Raw power of consecutive rows in the precision the file stores.
+#[derive(Debug)]
+pub enum StoredPower {
+    /// Stored as f32.
+    F32(Array2<f32>),
+    /// Stored as f64.
+    F64(Array2<f64>),
+}
+
+/// Rows read by [`RunReader::read_stored_rows`].
+#[derive(Debug)]
+pub struct StoredRows {
+    /// Raw power per row and bin (masked bins NaN).
+    pub power: StoredPower,
+    /// Bins the mask marks in each row.
+    pub masked_per_row: Vec<usize>,
 }
 
 /// Refuses a `spectra` dataset whose declared size the file does not hold: an uncompressed
