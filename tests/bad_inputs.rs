@@ -564,7 +564,7 @@ fn no_data_bins_are_counted_by_cause_and_warned_of_per_file() {
     assert_eq!((nd.files[0].steps, nd.files[0].bins, nd.files[0].worst.clone()), (2, 304, vec![(0, 300), (5, 4)]));
     let warnings = nd.warnings();
     assert_eq!(warnings.len(), 1, "one line per file: {warnings:?}");
-    assert_names(&warnings[0], &["counted.h5", "2 step(s)", "304 bin(s)", "mask does not mark", "step 0 (300 bins)", "step 5 (4 bins)"]);
+    assert_names(&warnings[0], &["counted.h5", "2 steps hold 304 bins", "mask does not mark", "step 0 (300 bins)", "step 5 (4 bins)"]);
 
     // summary.json carries the same counts.
     let prov = axsift::output::Provenance::new(PIPELINE, std::slice::from_ref(&path)).unwrap();

@@ -5,6 +5,7 @@ use crate::calib::Calibration;
 use crate::limits::Limits;
 use crate::pipeline::Reduction;
 use crate::runfile::RunReader;
+use crate::stage::no_data::count;
 use std::fmt::Write;
 use std::path::PathBuf;
 
@@ -28,8 +29,13 @@ pub fn night_report(r: &Reduction, provenance: &Provenance, calibrated: Option<(
     if nd.masked.bins + nd.non_finite.bins + nd.non_positive.bins > 0 {
         let _ = writeln!(
             out,
-            "No-data bins: {} masked ({} steps), {} non-finite ({} steps), {} non-positive ({} steps)",
-            nd.masked.bins, nd.masked.steps, nd.non_finite.bins, nd.non_finite.steps, nd.non_positive.bins, nd.non_positive.steps
+            "No-data bins: {} masked ({}), {} non-finite ({}), {} non-positive ({})",
+            nd.masked.bins,
+            count(nd.masked.steps, "step"),
+            nd.non_finite.bins,
+            count(nd.non_finite.steps, "step"),
+            nd.non_positive.bins,
+            count(nd.non_positive.steps, "step")
         );
     }
     let _ = writeln!(out, "RF coverage: {:.6} - {:.6} MHz, {} bins of {} Hz", s.rf_start_hz / 1e6, s.rf_stop_hz / 1e6, s.n_rf_bins, r.spectrum.bin_width_hz);

@@ -258,13 +258,13 @@ fn no_data(out: &mut String, nd: &crate::stage::no_data::NoDataTally) {
     out.push_str("</table>");
     for f in &nd.files {
         let file = f.file.file_name().map_or_else(|| f.file.display().to_string(), |n| n.to_string_lossy().into_owned());
-        let worst: Vec<String> = f.worst.iter().map(|(row, bins)| format!("row {row} ({bins})")).collect();
+        let worst: Vec<String> = f.worst.iter().map(|&(row, bins)| format!("row {row} ({})", crate::stage::no_data::count(bins, "bin"))).collect();
         let _ = write!(
             out,
-            "<p class=\"bad\">{}: {} step(s) hold {} unmasked no-data bin(s), reduced as gaps; worst {}.</p>",
+            "<p class=\"bad\">{}: {} with {} of NaN, infinite, zero or negative power that the mask does not mark, reduced as gaps; worst: {}.</p>",
             escape(&file),
-            f.steps,
-            f.bins,
+            crate::stage::no_data::count(f.steps, "step"),
+            crate::stage::no_data::count(f.bins, "bin"),
             escape(&worst.join(", "))
         );
     }

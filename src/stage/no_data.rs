@@ -108,17 +108,22 @@ impl NoDataTally {
         self.files
             .iter()
             .map(|f| {
-                let worst: Vec<String> = f.worst.iter().map(|(row, bins)| format!("step {row} ({bins} bins)")).collect();
+                let worst: Vec<String> = f.worst.iter().map(|&(row, bins)| format!("step {row} ({})", count(bins, "bin"))).collect();
                 format!(
-                    "{}: {} step(s) hold {} bin(s) of NaN, infinite, zero or negative power that the mask does not mark; reduced as gaps; worst: {}",
+                    "{}: {} {} of NaN, infinite, zero or negative power that the mask does not mark; reduced as gaps; worst: {}",
                     f.file.display(),
-                    f.steps,
-                    f.bins,
+                    count(f.steps, "step"),
+                    if f.steps == 1 { format!("holds {}", count(f.bins, "bin")) } else { format!("hold {}", count(f.bins, "bin")) },
                     worst.join(", ")
                 )
             })
             .collect()
     }
+}
+
+/// "1 bin", "2 bins".
+pub fn count(n: usize, noun: &str) -> String {
+    if n == 1 { format!("1 {noun}") } else { format!("{n} {noun}s") }
 }
 
 #[cfg(test)]
@@ -146,7 +151,8 @@ mod tests {
         assert_eq!(t.files[0].worst, vec![(3, 7), (1, 3), (4, 3)]);
         let lines = t.warnings();
         assert_eq!(lines.len(), 2);
-        assert!(lines[0].starts_with("a.h5: 4 step(s) hold 14 bin(s)"), "{}", lines[0]);
+        assert!(lines[0].starts_with("a.h5: 4 steps hold 14 bins"), "{}", lines[0]);
+        assert!(lines[1].starts_with("b.h5: 1 step holds 5 bins"), "{}", lines[1]);
         assert!(lines[0].ends_with("worst: step 3 (7 bins), step 1 (3 bins), step 4 (3 bins)"), "{}", lines[0]);
     }
 }
