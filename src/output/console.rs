@@ -181,13 +181,13 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
     use crate::state::Class;
     let mut out = String::new();
     let files: usize = st.nights.iter().map(|n| n.files.len()).sum();
-    let covered = st.coverage.iter().filter(|&&c| c > 0).count();
+    let covered = st.covered_bins();
     let _ = writeln!(out, "\nAnalysis state: {} night(s), {} run file(s), generation {}", st.nights.len(), files, st.generation);
     let _ = writeln!(
         out,
         "  RF {:.6} - {:.6} MHz, {:.3} MHz covered",
-        st.rf_origin_hz / 1e6,
-        (st.rf_origin_hz + st.coverage.len().saturating_sub(1) as f64 * st.bin_width_hz) / 1e6,
+        st.rf_span_hz().map_or(f64::NAN, |s| s.0) / 1e6,
+        st.rf_span_hz().map_or(f64::NAN, |s| s.1) / 1e6,
         covered as f64 * st.bin_width_hz / 1e6
     );
     for c in changes {
