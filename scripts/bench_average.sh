@@ -3,9 +3,9 @@
 # segments at 409.6 kHz) and averages them into run files with `axsift average --fft-bins
 # 4096` (Hann, no overlap): complex samples per second end to end (capture in, run file out,
 # hot page cache) and peak RSS, the median and best of several runs, for
-#   short:  16 steps x 4 M samples (268 M samples, 0.27 GB)
-#   night:  64 steps x 4 M samples (268 M samples x 4, 1.07 GB)
-#   long:   32 steps x 8 M samples (1.07 GB in longer steps)
+#   short:  16 steps x 4 M samples (67 M samples, 0.27 GB)
+#   night:  64 steps x 4 M samples (268 M samples, 1.07 GB)
+#   long:   32 steps x 8 M samples (268 M samples, 1.07 GB in longer steps)
 # so the memory can be seen not to grow with the capture. Then the numpy/scipy reference
 # (scripts/bench_average_ref.py: scipy.signal.welch per step) on the night capture in the same
 # run, its speed and memory, the ratio of the medians, and the largest difference per bin.
