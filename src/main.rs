@@ -39,6 +39,34 @@ enum Command {
         /// Run file to write.
         #[arg(long)]
         out: PathBuf,
+        /// Write the night as an IQ capture (int16, one segment of n_bins samples per average)
+        /// instead of a run file: `axsift average --fft-bins <n_bins>` turns it into spectra.
+        #[arg(long)]
+        capture: bool,
+    },
+    /// Average IQ captures into a run file of power spectra: per step, the mean periodogram
+    /// of windowed segments (Welch), bins in increasing frequency.
+    /// Example: axsift average --fft-bins 4096 --out night.h5 capture.h5
+    Average {
+        /// Samples per segment, and bins per spectrum before --keep-fraction (even).
+        #[arg(long)]
+        fft_bins: usize,
+        /// Window of each segment.
+        #[arg(long, value_enum, default_value = "hann")]
+        window: axsift::iq::welch::Window,
+        /// Fraction of each segment shared with the next, 0 <= overlap < 1; n_averages then
+        /// holds the effective number of independent averages (Welch 1967).
+        #[arg(long, default_value_t = 0.0)]
+        overlap: f64,
+        /// Central fraction of the bins kept (0 < f <= 1), dropping the anti-alias roll-off.
+        #[arg(long, default_value_t = 1.0)]
+        keep_fraction: f64,
+        /// Run file to write.
+        #[arg(long)]
+        out: PathBuf,
+        /// IQ captures (format "axsift-iq"), in acquisition order.
+        #[arg(required = true)]
+        captures: Vec<PathBuf>,
     },
     /// Reduce run files into the grand spectrum and rescan candidates.
     /// Example: axsift reduce --config pipeline.toml --out results/ night.h5
@@ -253,7 +281,10 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     init_logging(cli.verbose, cli.quiet);
     let result = match cli.command {
-        Command::Simulate { scenario, out } => simulate(&scenario, &out),
+        Command::Simulate { scenario, out, capture } => simulate(&scenario, &out, capture),
+        Command::Average { fft_bins, window, overlap, keep_fraction, out, captures } => {
+            average(&captures, &out, &axsift::iq::average::AverageOptions { fft_bins, window, overlap, keep_fraction }, cli.quiet)
+        }
         Command::Reduce { config, out, calibration, state, runs, report } => read_text(&config)
             .and_then(|text| match &state {
                 Some(state) => reduce_into_state(&text, &config.display().to_string(), &runs, calibration.as_deref(), state, &out, cli.quiet),
@@ -342,10 +373,38 @@ fn read_text(path: &Path) -> Result<String, Failure> {
     std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display())).map_err(Failure::BadInput)
 }
 
-fn simulate(scenario: &Path, out: &Path) -> Result<(), Failure> {
+fn simulate(scenario: &Path, out: &Path, capture: bool) -> Result<(), Failure> {
     let text = read_text(scenario)?;
     let sc = sim::Scenario::from_toml(&text).map_err(|e| Failure::BadInput(anyhow::anyhow!("{}: {e}", scenario.display())))?;
-    write_simulation(&sc, out)
+    if !capture {
+        return write_simulation(&sc, out);
+    }
+    create_parent(out)?;
+    sim::capture::simulate_capture(&sc, out).map_err(|e| Failure::BadInput(e.into()))?;
+    tracing::info!("wrote {} ({} steps x {} samples)", out.display(), sc.scan.n_steps, sc.scan.n_averages as usize * sc.scan.n_bins);
+    Ok(())
+}
+
+/// Creates the folder `path` is to be written in, if it has one.
+fn create_parent(path: &Path) -> Result<(), Failure> {
+    match path.parent().filter(|d| !d.as_os_str().is_empty()) {
+        Some(dir) => std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display())).map_err(Failure::Run),
+        None => Ok(()),
+    }
+}
+
+fn average(captures: &[PathBuf], out: &Path, opts: &axsift::iq::average::AverageOptions, quiet: bool) -> Result<(), Failure> {
+    use axsift::iq::average::AverageError;
+    create_parent(out)?;
+    let bar = progress::Bar::new(quiet, "averaging", "steps");
+    let done = axsift::iq::average::average(captures, out, opts, &|done, total| bar.update(done, total)).map_err(|e| match e {
+        AverageError::Options(_) | AverageError::Input(_) => Failure::BadInput(e.into()),
+        AverageError::Output(_) => Failure::Run(e.into()),
+    })?;
+    bar.finish();
+    let per_file: Vec<String> = done.per_file.iter().map(|(k, n)| format!("{k} segments, n_averages {n}")).collect();
+    tracing::info!("wrote {} ({} steps x {} bins; {})", out.display(), done.n_steps, done.n_bins, per_file.join("; "));
+    Ok(())
 }
 
 fn write_simulation(sc: &sim::Scenario, out: &Path) -> Result<(), Failure> {

@@ -106,6 +106,14 @@ impl RunWriter {
         Ok(())
     }
 
+    /// Gives up: closes and removes the temporary file, leaving any file at the final path as
+    /// it was.
+    pub fn abandon(self) {
+        let tmp_path = self.tmp_path.clone();
+        drop(self);
+        let _ = std::fs::remove_file(tmp_path);
+    }
+
     /// Writes the `steps` group and renames the file into place.
     pub fn finish(self) -> Result<(), RunFileError> {
         let err = |what: &str| {
@@ -130,14 +138,19 @@ impl RunWriter {
             .map_err(err(name))?;
             describe(&ds, units, description).map_err(err(name))?;
         }
-        self.file.close().map_err(err("close"))?;
-        std::fs::rename(&self.tmp_path, &self.final_path).map_err(|e| RunFileError::Invalid {
-            path: self.final_path.clone(),
-            field: "file".into(),
-            step: None,
-            message: format!("cannot rename into place: {e}"),
-        })
+        close_and_rename(self.file, &self.tmp_path, &self.final_path)
     }
+}
+
+/// Closes a file written at `tmp_path` and renames it to `final_path`.
+pub(crate) fn close_and_rename(file: hdf5::File, tmp_path: &Path, final_path: &Path) -> Result<(), RunFileError> {
+    file.close().map_err(|source| RunFileError::Hdf5 { path: final_path.to_path_buf(), what: "close".into(), source })?;
+    std::fs::rename(tmp_path, final_path).map_err(|e| RunFileError::Invalid {
+        path: final_path.to_path_buf(),
+        field: "file".into(),
+        step: None,
+        message: format!("cannot rename into place: {e}"),
+    })
 }
 
 #[cfg(test)]
