@@ -168,6 +168,21 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Write the whole campaign's grand spectrum of an analysis state to one HDF5 file,
+    /// computed block by block (the output folder of a nightly update holds only the span
+    /// that night changed).
+    /// Example: axsift export --config pipeline.toml --state state/ --out campaign.h5
+    Export {
+        /// The state's pipeline TOML.
+        #[arg(long)]
+        config: PathBuf,
+        /// Analysis state folder.
+        #[arg(long)]
+        state: PathBuf,
+        /// HDF5 file to write (replaced only when complete).
+        #[arg(long)]
+        out: PathBuf,
+    },
     /// Validate a run file and summarise it. Example: axsift inspect night.h5
     Inspect {
         /// The run file.
@@ -292,6 +307,7 @@ fn main() -> ExitCode {
             })
             .and_then(|()| if report { write_report(&out, calibration.as_deref(), state.as_deref(), cli.quiet) } else { Ok(()) }),
         Command::Status { state, json } => status(&state, json),
+        Command::Export { config, state, out } => export(&config, &state, &out, cli.quiet),
         Command::Calibrate { config, out, scenario, seed, spec, runs } => {
             campaign_spec(spec.as_deref(), seed).and_then(|spec| calibrate(&config, &out, scenario.as_deref(), &spec, &runs, cli.quiet))
         }
@@ -509,6 +525,22 @@ fn status(state_dir: &Path, json: bool) -> Result<(), Failure> {
     print!("{}", output::console::state_report(&st, &[]));
     if st.limit.is_none() {
         println!("  limit: none recorded (no update of this state was made with --calibration)");
+    }
+    Ok(())
+}
+
+fn export(config: &Path, state_dir: &Path, out: &Path, quiet: bool) -> Result<(), Failure> {
+    let plan = config::load(&read_text(config)?, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
+    let st = axsift::state::State::load(state_dir)
+        .map_err(|e| Failure::BadInput(e.into()))?
+        .ok_or_else(|| Failure::BadInput(anyhow::anyhow!("{}: no state.json here", state_dir.display())))?;
+    // A file of the state folder that cannot be read is bad input; failing to write is not.
+    let bins = axsift::state::export_grand(&st, &plan, out).map_err(|e| match &e {
+        axsift::state::StateError::Io { path, .. } if !path.starts_with(state_dir) => Failure::Run(e.into()),
+        _ => Failure::BadInput(e.into()),
+    })?;
+    if !quiet {
+        println!("{}: grand spectrum of {bins} RF bins", out.display());
     }
     Ok(())
 }

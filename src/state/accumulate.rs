@@ -86,7 +86,7 @@ fn reduce_hashed(plan: &Plan, paths: &[PathBuf], inputs: Vec<(String, String)>) 
     Ok(ReducedNight { inputs, n_steps, reduction })
 }
 
-fn check_config(state: &State, plan: &Plan) -> Result<(), StateError> {
+pub(super) fn check_config(state: &State, plan: &Plan) -> Result<(), StateError> {
     let hash = plan_hash(plan);
     if state.config_hash != hash {
         return Err(refused(format!(
@@ -149,7 +149,15 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) ->
         let k = first_bin + j as i64 - night_bins.start;
         k >= 0 && night_cov.get(k as usize).is_some_and(|&c| c > 0)
     };
-    let integration = |j: usize| rescan_integration_s(&spectrum, &night_red, &plan_info, j);
+    // A candidate that only the spectrum without the IF-line samples shows (a negative line
+    // sample hid it) has no positive amplitude in the full one: its amplitude there counts.
+    let integration = |j: usize| {
+        let t = rescan_integration_s(&spectrum, &night_red, &plan_info, j);
+        match &without {
+            Some(w) if !t.is_finite() => rescan_integration_s(w, &night_red, &plan_info, j),
+            _ => t,
+        }
+    };
     let match_hz = spectrum.freq_hz(0) * plan_info.halo.mean_beta_sq();
     let reach = (match_hz / spectrum.bin_width_hz).ceil() as i64;
     let mut tracked = std::mem::take(&mut state.candidates);

@@ -42,6 +42,7 @@
 
 mod accumulate;
 mod block_file;
+mod export;
 pub mod interference;
 mod profile_file;
 mod rescan;
@@ -51,6 +52,7 @@ mod sums;
 mod tiles;
 
 pub use accumulate::{RESCAN_TARGET_SNR, ReducedNight, Update, add_nights, add_reduced_night, plan_hash, reduce_night};
+pub use export::export_grand;
 pub use interference::{IF_LINE_SIGMA, IfLine, IfProfile, IfScan};
 pub use profile_file::IfProfileRecord;
 pub use rescan::{Class, InterferenceEvidence, LineSource, TrackedCandidate};
