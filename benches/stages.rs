@@ -51,7 +51,7 @@ fn raw_step(i: usize, rng: &mut StdRng) -> Step {
             (1.0 + 0.05 * (k as f64 / 1500.0).sin()) * (1.0 + noise * z)
         })
         .collect();
-    Step { index: i, file: 0, index_in_file: i, meta, values, standard: Default::default() }
+    Step { index: i, file: 0, index_in_file: i, meta, values, standard: Default::default(), no_data: Default::default() }
 }
 
 fn step_stage(config: &dyn StageConfig, night: &NightInfo) -> Box<dyn StepStage> {
@@ -65,7 +65,10 @@ fn stages(c: &mut Criterion) {
     let night = night();
     let mut rng = StdRng::seed_from_u64(7);
     let raw: Vec<Step> = (0..BATCH_STEPS).map(|i| raw_step(i, &mut rng)).collect();
-    let ingest = step_stage(&IngestConfig { noise_temp_k_range: [0.05, 20.0], loaded_q_range: [1e3, 1e6], coupling_beta_range: [0.1, 10.0] }, &night);
+    let ingest = step_stage(
+        &IngestConfig { noise_temp_k_range: [0.05, 20.0], loaded_q_range: [1e3, 1e6], coupling_beta_range: [0.1, 10.0], max_no_data_fraction: 0.5 },
+        &night,
+    );
     let mut baseline = step_stage(&BaselineConfig { window_bins: 401, order: 4, max_spread_deviation: 0.2 }, &night);
     let rescale = step_stage(&RescaleConfig { reference: Reference::Model("ksvz".into()), dm_density_gev_per_cm3: 0.45 }, &night);
     baseline.survey_all(&raw.iter().collect::<Vec<_>>());

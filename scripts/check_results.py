@@ -10,6 +10,8 @@ Usage: check_results.py OUTPUT_FOLDER   (written by `axsift demo` or `axsift red
   and a 1 MHz slice touches at most two chunks;
 - the candidates listed in summary.json are the strongest of those in results.h5 (frequencies
   and significances), and their count is n_candidates;
+- summary.json's `no_data` holds bins and steps for each cause (masked, non_finite,
+  non_positive): non-negative integers, zero together, at most n_steps_in steps;
 - the grand spectrum's mean and spread, the bins above the threshold and the valid bins
   recomputed from results.h5 agree with summary.json, within what the single precision of
   results.h5 allows: each value rounded by at most 2^-24 of the largest |value|, so the mean
@@ -62,6 +64,16 @@ def main(folder: Path) -> int:
         ("grand_std", finite.std(), summary["grand_std"], rounding + 1e-12),
         ("n_bins_above_threshold", int((finite > summary["threshold"]).sum()), summary["n_bins_above_threshold"], 0),
     ]
+    no_data = summary.get("no_data")
+    if not isinstance(no_data, dict):
+        problems.append("summary.json: `no_data` missing")
+    else:
+        for cause in ("masked", "non_finite", "non_positive"):
+            c = no_data.get(cause)
+            if not isinstance(c, dict) or not all(isinstance(c.get(k), int) and c[k] >= 0 for k in ("bins", "steps")):
+                problems.append(f"no_data.{cause}: {c!r}, expected non-negative bins and steps")
+            elif c["steps"] > summary["n_steps_in"] or (c["bins"] == 0) != (c["steps"] == 0):
+                problems.append(f"no_data.{cause}: {c['bins']} bins in {c['steps']} steps of {summary['n_steps_in']}")
     for key, got, want, tol in checks:
         if want is None or abs(got - want) > tol:
             problems.append(f"{key}: {got} from results.h5, {want} in summary.json")

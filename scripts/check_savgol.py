@@ -10,10 +10,21 @@ fixtures/savgol_scipy_w101_d4.txt (W = 101). One value per line, printed with
 Python's repr so that every float round-trips exactly.
 
 Without --write the script recomputes everything and compares it with the
-committed files, exiting with status 1 on any mismatch. It also reports how far
-scipy's interior weights (savgol_coeffs) lie from the exact least-squares
-weights computed in rational arithmetic; that error bounds how closely the
-interior of a scipy fixture can agree with an exact smoother.
+committed files, exiting with status 1 on any mismatch.
+
+How close a fresh scipy run must be to the committed files: savgol_filter is a
+linear map y = M x. Its rows are least-squares weights that scipy computes in
+floating point (savgol_coeffs for the interior, a polynomial fit for the edge
+bins of mode='interp'), so they differ from the exact weights by an amount that
+depends on the scipy release and the machine's LAPACK/BLAS kernels. The script
+measures that error on the installed scipy: it applies savgol_filter to the
+identity matrix (M, column by column) and subtracts the exact weights computed
+in rational arithmetic (interior and edges). Row i of the output is then within
+e_i = ||M_scipy[i] - M_exact[i]||_1 * max|x| of the exact smoother, plus the
+rounding of a W-term dot product, W * eps * sum_k |M[i,k] x_k|. The committed
+files came from a scipy run of the same kind, so a fresh run may differ from them
+by twice the largest such bound; a real change of the smoother (window, order,
+edge mode, input) moves the output by the noise level, ~1e-2, far above it.
 """
 
 import argparse
@@ -29,9 +40,8 @@ SEED = 20240611
 N_SAMPLES = 2000
 ORDER = 4
 WINDOWS = (31, 101)
-# Relative tolerance for the scipy outputs: allows for BLAS/LAPACK differences
-# between installations, far below the 1e-10 the Rust test demands.
-RTOL = 1e-13
+# Largest relative error of a double-precision product (numpy.finfo(float).eps / 2).
+UNIT_ROUNDOFF = np.finfo(float).eps / 2
 
 FIXTURES = pathlib.Path(__file__).resolve().parent.parent / "fixtures"
 INPUT_FILE = FIXTURES / "savgol_input.txt"
@@ -48,9 +58,11 @@ def make_input():
     return curve + 0.05 * rng.standard_normal(N_SAMPLES)
 
 
-def exact_interior_weights(window, order):
-    """Centre-value least-squares weights, exact: row 0 of (AᵀA)⁻¹Aᵀ for the
-    Vandermonde matrix A on abscissae -(W-1)/2 .. (W-1)/2."""
+def exact_weights(window, order):
+    """Least-squares weights in rational arithmetic, one row per evaluation point
+    s = -(W-1)/2 .. (W-1)/2 of a window on abscissae -(W-1)/2 .. (W-1)/2: row
+    (W-1)/2 is the centre (interior) weight set, the rows before and after it are
+    the left and right edge bins of mode='interp'. Returns W x W Fractions."""
     half = window // 2
     xs = range(-half, half + 1)
     n = order + 1
@@ -64,8 +76,40 @@ def exact_interior_weights(window, order):
             if r != c and aug[r][c] != 0:
                 f = aug[r][c]
                 aug[r] = [a - f * b for a, b in zip(aug[r], aug[c])]
-    first_row = aug[0][n:]
-    return np.array([float(sum(first_row[k] * x ** k for k in range(n))) for x in xs])
+    inverse = [row[n:] for row in aug]
+    rows = []
+    for s in xs:
+        # coefficient of x^b in the fitted value at s: sum_a s^a (A^T A)^-1_ab
+        c = [sum(Fraction(s) ** a * inverse[a][b] for a in range(n)) for b in range(n)]
+        rows.append([sum(c[b] * Fraction(x) ** b for b in range(n)) for x in xs])
+    return rows
+
+
+def exact_matrix(n_samples, window, order):
+    """The exact smoother of savgol_filter(x, window, order) (mode='interp') as an
+    n_samples x n_samples float matrix built from the rational weights."""
+    half = window // 2
+    rows = np.array([[float(w) for w in row] for row in exact_weights(window, order)])
+    m = np.zeros((n_samples, n_samples))
+    for i in range(n_samples):
+        if i < half:
+            m[i, :window] = rows[i]
+        elif i >= n_samples - half:
+            m[i, n_samples - window:] = rows[i - (n_samples - window)]
+        else:
+            m[i, i - half:i + half + 1] = rows[half]
+    return m
+
+
+def scipy_error_bound(x, window, order):
+    """Per output bin, how far the installed scipy's savgol_filter(x) can lie from
+    the exact smoother: weight error times the input's size plus the dot-product
+    rounding (see the module docstring). Also returns the largest weight error."""
+    m_scipy = savgol_filter(np.eye(x.size), window, order, axis=0)
+    m_exact = exact_matrix(x.size, window, order)
+    weight_err = np.abs(m_scipy - m_exact)
+    bound = weight_err.sum(axis=1) * np.max(np.abs(x)) + window * UNIT_ROUNDOFF * (np.abs(m_exact) @ np.abs(x))
+    return bound, weight_err.max()
 
 
 def write_values(path, values):
@@ -76,14 +120,18 @@ def read_values(path):
     return np.array([float(line) for line in path.read_text().split()])
 
 
-def compare(name, committed, expected, rtol):
+def compare(name, committed, expected, allowed):
+    """Checks |committed - expected| <= allowed in every bin (allowed: array or scalar)."""
     if committed.shape != expected.shape:
         print(f"MISMATCH {name}: {committed.size} values, expected {expected.size}")
         return False
-    scale = np.max(np.abs(expected))
-    err = np.max(np.abs(committed - expected)) / scale
-    ok = err <= rtol
-    print(f"{'ok' if ok else 'MISMATCH'} {name}: max |diff| / max|ref| = {err:.3e} (limit {rtol:.0e})")
+    diff = np.abs(committed - expected)
+    allowed = np.broadcast_to(allowed, diff.shape)
+    ok = bool(np.all(diff <= allowed))
+    worst = int(np.argmax(diff - allowed))
+    print(f"{'ok' if ok else 'MISMATCH'} {name}: max |diff| = {diff.max():.3e}, "
+          f"largest share of the allowed difference {diff[worst] / allowed[worst] if allowed[worst] > 0 else float(diff[worst] > 0):.3g} "
+          f"(bin {worst}: {diff[worst]:.3e} allowed {allowed[worst]:.3e})")
     return ok
 
 
@@ -106,10 +154,12 @@ def main():
     committed_input = read_values(INPUT_FILE)
     ok = compare(INPUT_FILE.name, committed_input, x, 0.0)
     for window in WINDOWS:
-        weight_err = np.max(np.abs(savgol_coeffs(window, ORDER) - exact_interior_weights(window, ORDER)))
-        print(f"info W={window}: max |scipy weight - exact weight| = {weight_err:.2e}")
+        bound, weight_err = scipy_error_bound(committed_input, window, ORDER)
+        interior_err = np.max(np.abs(savgol_coeffs(window, ORDER) - np.array([float(w) for w in exact_weights(window, ORDER)[window // 2]])))
+        print(f"info W={window}: max |scipy weight - exact weight| = {weight_err:.2e} ({interior_err:.2e} in the interior); "
+              f"scipy within {bound.max():.2e} of the exact smoother")
         ok &= compare(output_file(window).name, read_values(output_file(window)),
-                      savgol_filter(committed_input, window, ORDER), RTOL)
+                      savgol_filter(committed_input, window, ORDER), 2.0 * bound.max())
     return 0 if ok else 1
 
 

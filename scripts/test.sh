@@ -14,6 +14,7 @@ stop_slurm() { flock -n /run/axsift-slurm-local.lock bash scripts/slurm_local.sh
 trap stop_slurm EXIT
 cargo test --release
 .venv/bin/python scripts/check_savgol.py
+.venv/bin/python scripts/check_average.py target/release/axsift
 demo_out="$(mktemp -d)"
 trap 'rm -rf "$demo_out"; stop_slurm' EXIT
 ./target/release/axsift demo --quiet --out "$demo_out"

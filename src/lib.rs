@@ -12,6 +12,7 @@ pub mod config;
 pub mod dsp;
 pub mod fonts;
 pub mod inject;
+pub mod iq;
 pub mod limits;
 pub mod output;
 pub mod physics;

@@ -39,6 +39,34 @@ enum Command {
         /// Run file to write.
         #[arg(long)]
         out: PathBuf,
+        /// Write the night as an IQ capture (int16, one segment of n_bins samples per average)
+        /// instead of a run file: `axsift average --fft-bins <n_bins>` turns it into spectra.
+        #[arg(long)]
+        capture: bool,
+    },
+    /// Average IQ captures into a run file of power spectra: per step, the mean periodogram
+    /// of windowed segments (Welch), bins in increasing frequency.
+    /// Example: axsift average --fft-bins 4096 --out night.h5 capture.h5
+    Average {
+        /// Samples per segment, and bins per spectrum before --keep-fraction (even).
+        #[arg(long)]
+        fft_bins: usize,
+        /// Window of each segment.
+        #[arg(long, value_enum, default_value = "hann")]
+        window: axsift::iq::welch::Window,
+        /// Fraction of each segment shared with the next, 0 <= overlap < 1; n_averages then
+        /// holds the effective number of independent averages (Welch 1967).
+        #[arg(long, default_value_t = 0.0)]
+        overlap: f64,
+        /// Central fraction of the bins kept (0 < f <= 1), dropping the anti-alias roll-off.
+        #[arg(long, default_value_t = 1.0)]
+        keep_fraction: f64,
+        /// Run file to write.
+        #[arg(long)]
+        out: PathBuf,
+        /// IQ captures (format "axsift-iq"), in acquisition order.
+        #[arg(required = true)]
+        captures: Vec<PathBuf>,
     },
     /// Reduce run files into the grand spectrum and rescan candidates.
     /// Example: axsift reduce --config pipeline.toml --out results/ night.h5
@@ -139,6 +167,21 @@ enum Command {
         /// Print machine-readable JSON instead of text.
         #[arg(long)]
         json: bool,
+    },
+    /// Write the whole campaign's grand spectrum of an analysis state to one HDF5 file,
+    /// computed block by block (the output folder of a nightly update holds only the span
+    /// that night changed).
+    /// Example: axsift export --config pipeline.toml --state state/ --out campaign.h5
+    Export {
+        /// The state's pipeline TOML.
+        #[arg(long)]
+        config: PathBuf,
+        /// Analysis state folder.
+        #[arg(long)]
+        state: PathBuf,
+        /// HDF5 file to write (replaced only when complete).
+        #[arg(long)]
+        out: PathBuf,
     },
     /// Validate a run file and summarise it. Example: axsift inspect night.h5
     Inspect {
@@ -253,7 +296,10 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     init_logging(cli.verbose, cli.quiet);
     let result = match cli.command {
-        Command::Simulate { scenario, out } => simulate(&scenario, &out),
+        Command::Simulate { scenario, out, capture } => simulate(&scenario, &out, capture),
+        Command::Average { fft_bins, window, overlap, keep_fraction, out, captures } => {
+            average(&captures, &out, &axsift::iq::average::AverageOptions { fft_bins, window, overlap, keep_fraction }, cli.quiet)
+        }
         Command::Reduce { config, out, calibration, state, runs, report } => read_text(&config)
             .and_then(|text| match &state {
                 Some(state) => reduce_into_state(&text, &config.display().to_string(), &runs, calibration.as_deref(), state, &out, cli.quiet),
@@ -261,6 +307,7 @@ fn main() -> ExitCode {
             })
             .and_then(|()| if report { write_report(&out, calibration.as_deref(), state.as_deref(), cli.quiet) } else { Ok(()) }),
         Command::Status { state, json } => status(&state, json),
+        Command::Export { config, state, out } => export(&config, &state, &out, cli.quiet),
         Command::Calibrate { config, out, scenario, seed, spec, runs } => {
             campaign_spec(spec.as_deref(), seed).and_then(|spec| calibrate(&config, &out, scenario.as_deref(), &spec, &runs, cli.quiet))
         }
@@ -342,10 +389,38 @@ fn read_text(path: &Path) -> Result<String, Failure> {
     std::fs::read_to_string(path).with_context(|| format!("cannot read {}", path.display())).map_err(Failure::BadInput)
 }
 
-fn simulate(scenario: &Path, out: &Path) -> Result<(), Failure> {
+fn simulate(scenario: &Path, out: &Path, capture: bool) -> Result<(), Failure> {
     let text = read_text(scenario)?;
     let sc = sim::Scenario::from_toml(&text).map_err(|e| Failure::BadInput(anyhow::anyhow!("{}: {e}", scenario.display())))?;
-    write_simulation(&sc, out)
+    if !capture {
+        return write_simulation(&sc, out);
+    }
+    create_parent(out)?;
+    sim::capture::simulate_capture(&sc, out).map_err(|e| Failure::BadInput(e.into()))?;
+    tracing::info!("wrote {} ({} steps x {} samples)", out.display(), sc.scan.n_steps, sc.scan.n_averages as usize * sc.scan.n_bins);
+    Ok(())
+}
+
+/// Creates the folder `path` is to be written in, if it has one.
+fn create_parent(path: &Path) -> Result<(), Failure> {
+    match path.parent().filter(|d| !d.as_os_str().is_empty()) {
+        Some(dir) => std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display())).map_err(Failure::Run),
+        None => Ok(()),
+    }
+}
+
+fn average(captures: &[PathBuf], out: &Path, opts: &axsift::iq::average::AverageOptions, quiet: bool) -> Result<(), Failure> {
+    use axsift::iq::average::AverageError;
+    create_parent(out)?;
+    let bar = progress::Bar::new(quiet, "averaging", "steps");
+    let done = axsift::iq::average::average(captures, out, opts, &|done, total| bar.update(done, total)).map_err(|e| match e {
+        AverageError::Options(_) | AverageError::Input(_) => Failure::BadInput(e.into()),
+        AverageError::Output(_) => Failure::Run(e.into()),
+    })?;
+    bar.finish();
+    let per_file: Vec<String> = done.per_file.iter().map(|(k, n)| format!("{k} segments, n_averages {n}")).collect();
+    tracing::info!("wrote {} ({} steps x {} bins; {})", out.display(), done.n_steps, done.n_bins, per_file.join("; "));
+    Ok(())
 }
 
 fn write_simulation(sc: &sim::Scenario, out: &Path) -> Result<(), Failure> {
@@ -381,6 +456,7 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
             .map_err(failure)
         })?;
         bar.finish();
+        warn_no_data(&reduction);
         let (written, stats) = outputs.finish(&reduction, results, config_text, &provenance, None)?;
         if !quiet {
             let summary = reduction.summary_with(&stats, &provenance, None, None);
@@ -391,6 +467,7 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
     let (reduction, provenance) =
         with_provenance(config_text, runs, || pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(failure))?;
     bar.finish();
+    warn_no_data(&reduction);
     let limits = axsift::limits::for_reduction(&plan, &reduction.spectrum, &calibration, axsift::limits::DEFAULT_CONFIDENCE)
         .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
     let calibrated = Some((&calibration, &limits));
@@ -400,6 +477,13 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
         print!("{}", output::console::night_report(&reduction, &summary, calibrated, &written));
     }
     Ok(())
+}
+
+/// Warns, one line per run file, of bins without data that the file's mask does not mark.
+fn warn_no_data(reduction: &pipeline::Reduction) {
+    for line in reduction.no_data.warnings() {
+        tracing::warn!("{line}");
+    }
 }
 
 /// Runs `work` (a reduction of `runs`) while the run files are hashed for the provenance on
@@ -431,6 +515,7 @@ fn reduce_into_state(
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
     };
     let update = axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0);
+    warn_no_data(&update.reduction);
     // Adding the night hashed its files; the state holds those hashes.
     let provenance = output::Provenance::of_hashed(config_text, st.nights[update.night].inputs());
     let limits = calibration
@@ -463,6 +548,22 @@ fn status(state_dir: &Path, json: bool) -> Result<(), Failure> {
     print!("{}", output::console::state_report(&st, &[]));
     if st.limit.is_none() {
         println!("  limit: none recorded (no update of this state was made with --calibration)");
+    }
+    Ok(())
+}
+
+fn export(config: &Path, state_dir: &Path, out: &Path, quiet: bool) -> Result<(), Failure> {
+    let plan = config::load(&read_text(config)?, &config.display().to_string()).map_err(|e| Failure::BadInput(e.into()))?;
+    let st = axsift::state::State::load(state_dir)
+        .map_err(|e| Failure::BadInput(e.into()))?
+        .ok_or_else(|| Failure::BadInput(anyhow::anyhow!("{}: no state.json here", state_dir.display())))?;
+    // A file of the state folder that cannot be read is bad input; failing to write is not.
+    let bins = axsift::state::export_grand(&st, &plan, out).map_err(|e| match &e {
+        axsift::state::StateError::Io { path, .. } if !path.starts_with(state_dir) => Failure::Run(e.into()),
+        _ => Failure::BadInput(e.into()),
+    })?;
+    if !quiet {
+        println!("{}: grand spectrum of {bins} RF bins", out.display());
     }
     Ok(())
 }
@@ -596,6 +697,9 @@ fn shard_run(plan: &Path, index: Option<usize>, quiet: bool) -> Result<(), Failu
 
 fn shard_merge(t: &MergeTarget, quiet: bool) -> Result<(), Failure> {
     let merged = axsift::shard::merge(&t.plan, &t.out, t.state.as_deref(), t.calibration.as_deref()).map_err(shard_failure)?;
+    if let axsift::shard::Merged::Reduction { update, .. } = &merged {
+        warn_no_data(&update.reduction);
+    }
     if !quiet {
         match merged {
             axsift::shard::Merged::Reduction { state, update, provenance, calibrated, written } => {

@@ -6,10 +6,10 @@ use crate::config::{Built, Plan};
 use crate::inject::{SignalModel, SyntheticAxion};
 use crate::physics::constants::BOLTZMANN_J_PER_K;
 use crate::physics::signal::{CavityState, Haloscope};
-use crate::runfile::{RunFileError, RunReader, StepMeta};
+use crate::runfile::{RunFileError, RunReader, StepMeta, StoredPower, StoredRows};
 use crate::simd::per_bin_loop;
+use crate::stage::no_data::{NoDataBins, NoDataTally};
 use crate::stage::{Combiner, NightInfo, Spectrum, SpectrumStage, Step, StepStage, Verdict};
-use ndarray::Array2;
 use rayon::prelude::*;
 use std::path::PathBuf;
 use std::sync::mpsc;
@@ -62,6 +62,8 @@ pub struct Reduction {
     pub night: NightInfo,
     /// The night's IF profile (interference fixed in IF) over the combined steps.
     pub if_scan: crate::state::IfScan,
+    /// Bins without data in the steps read, by cause.
+    pub no_data: NoDataTally,
 }
 
 /// Errors of a reduction run.
@@ -183,6 +185,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     let Prepared { readers, night, step_stages, mut combiner, spectrum_stages, total } = prepare(plan, paths, injection, &mut buffers)?;
     let mut cuts = Vec::new();
     let mut used_steps = Vec::new();
+    let mut no_data = NoDataTally::default();
     let mut if_profile = crate::state::IfProfile::new(&night);
     let mut done = 0;
     stream_chunks::<()>(
@@ -190,7 +193,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
         &night,
         injection,
         &mut buffers,
-        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, paths),
+        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, &mut no_data, paths),
         |kept, _| {
             let (combined, ()) = rayon::join(|| combiner.add_all(kept).map_err(ReduceError::Night), || if_profile.add_all(kept));
             used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
@@ -207,7 +210,7 @@ pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Inject
     for stage in &spectrum_stages {
         stage.apply(&mut spectrum, &used_steps).map_err(ReduceError::Night)?;
     }
-    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: if_profile.finish() })
+    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: if_profile.finish(), no_data })
 }
 
 /// A night opened, its plan built and its survey passes made: ready for the main pass.
@@ -243,6 +246,8 @@ fn prepare(plan: &Plan, paths: &[PathBuf], injection: Option<&Injection>, buffer
             continue;
         }
         let mut cut_here = Vec::new();
+        // The main pass below counts the no-data bins; the survey's count is not kept.
+        let mut no_data_here = NoDataTally::default();
         let (before, rest) = step_stages.split_at_mut(s);
         let surveyor = &mut rest[0].1;
         stream_chunks::<()>(
@@ -250,7 +255,7 @@ fn prepare(plan: &Plan, paths: &[PathBuf], injection: Option<&Injection>, buffer
             &night,
             injection,
             buffers,
-            |chunk, fresh| run_stages(before, chunk, fresh, &night, &mut cut_here, paths),
+            |chunk, fresh| run_stages(before, chunk, fresh, &night, &mut cut_here, &mut no_data_here, paths),
             |kept, _| {
                 surveyor.survey_all(kept);
                 Ok(Vec::new())
@@ -265,13 +270,14 @@ fn prepare(plan: &Plan, paths: &[PathBuf], injection: Option<&Injection>, buffer
 
 /// Loads each step of a chunk from `fresh` and applies `stages` to it, in parallel (loading
 /// and stages in one task per step, so the step's bins are still in that core's cache);
-/// returns which steps were kept and records cuts.
+/// returns which steps were kept and records cuts and, in step order, no-data bins.
 fn run_stages(
     stages: &[(String, Box<dyn StepStage>)],
     chunk: &mut [Step],
     fresh: &Fresh<'_>,
     night: &NightInfo,
     cuts: &mut Vec<CutStep>,
+    no_data: &mut NoDataTally,
     paths: &[PathBuf],
 ) -> Vec<bool> {
     let verdicts: Vec<Option<(String, String)>> = chunk
@@ -288,6 +294,7 @@ fn run_stages(
     let mut kept = Vec::with_capacity(chunk.len());
     for (step, verdict) in chunk.iter().zip(verdicts) {
         kept.push(verdict.is_none());
+        no_data.add(&paths[step.file], step.index_in_file, step.no_data);
         match verdict {
             None => {}
             Some((stage, reason)) => {
@@ -300,34 +307,20 @@ fn run_stages(
     kept
 }
 
-/// Spectra of consecutive rows of one file, as stored (f32 kept narrow until widened into a
-/// step, which halves what waits in the read-ahead queue).
-enum Rows {
-    F32(Array2<f32>),
-    F64(Array2<f64>),
-}
-
-impl Rows {
-    fn len(&self) -> usize {
-        match self {
-            Rows::F32(a) => a.nrows(),
-            Rows::F64(a) => a.nrows(),
-        }
-    }
-    /// Replaces `out` with row `r`, as f64.
-    fn widen_into(&self, r: usize, out: &mut Vec<f64>) {
-        out.clear();
-        // Rows of a freshly read array are contiguous; the slice form lets the loop vectorise.
-        match self {
-            Rows::F32(a) => match a.row(r).as_slice() {
-                Some(row) => widen(row, out),
-                None => out.extend(a.row(r).iter().map(|&p| f64::from(p))),
-            },
-            Rows::F64(a) => match a.row(r).as_slice() {
-                Some(row) => out.extend_from_slice(row),
-                None => out.extend(a.row(r).iter().copied()),
-            },
-        }
+/// Replaces `out` with row `r` of `power`, as f64 (f32 rows stay narrow until widened into
+/// a step, which halves what waits in the read-ahead queue).
+fn widen_row_into(power: &StoredPower, r: usize, out: &mut Vec<f64>) {
+    out.clear();
+    // Rows of a freshly read array are contiguous; the slice form lets the loop vectorise.
+    match power {
+        StoredPower::F32(a) => match a.row(r).as_slice() {
+            Some(row) => widen(row, out),
+            None => out.extend(a.row(r).iter().map(|&p| f64::from(p))),
+        },
+        StoredPower::F64(a) => match a.row(r).as_slice() {
+            Some(row) => out.extend_from_slice(row),
+            None => out.extend(a.row(r).iter().copied()),
+        },
     }
 }
 
@@ -346,7 +339,7 @@ struct RawChunk {
     first_row: usize,
     /// Global index of the chunk's first step.
     first_index: usize,
-    rows: Rows,
+    rows: StoredRows,
 }
 
 /// The stored rows of a chunk, and how to turn row `r` into the values of a fresh step.
@@ -360,7 +353,8 @@ impl Fresh<'_> {
     /// Replaces the values of `step` (row `r` of the chunk, its metadata already set) with the
     /// stored row widened to f64, and adds the injection if any.
     fn load(&self, r: usize, step: &mut Step) {
-        self.raw.rows.widen_into(r, &mut step.values);
+        widen_row_into(&self.raw.rows.power, r, &mut step.values);
+        step.no_data = NoDataBins { masked: self.raw.rows.masked_per_row[r], ..NoDataBins::default() };
         if let Some(injection) = self.injection {
             injection.apply(step, self.night);
         }
@@ -408,11 +402,7 @@ fn stream_chunks<J: Send>(
                     job_queue.try_iter().try_for_each(&mut write_one)?;
                     let rows = first_row..(first_row + chunk_steps).min(n);
                     let count = rows.len();
-                    let read = match reader.read_rows_f32(rows.clone()) {
-                        Ok(Some(narrow)) => Ok(Rows::F32(narrow)),
-                        Ok(None) => reader.read_rows(rows).map(Rows::F64),
-                        Err(e) => Err(e),
-                    };
+                    let read = reader.read_stored_rows(rows);
                     let failed = read.is_err();
                     // A closed channel means the consumer stopped on an error of its own.
                     if sender.send(read.map(|rows| RawChunk { file, first_row, first_index, rows })).is_err() || failed {
@@ -439,7 +429,7 @@ fn stream_chunks<J: Send>(
             };
             for raw in receiver {
                 let raw = raw?;
-                let n = raw.rows.len();
+                let n = raw.rows.masked_per_row.len();
                 let (current, previous) = if current_is_odd { (&mut *odd, &*even) } else { (&mut *even, &*odd) };
                 place_steps(current, &raw, &readers[raw.file]);
                 let fresh = Fresh { raw: &raw, night, injection };
@@ -474,10 +464,18 @@ fn absorb_kept<J>(
 /// Sets index and metadata of the first rows of `steps` (grown if needed) for a chunk; the
 /// values are loaded later, by [`Fresh::load`].
 fn place_steps(steps: &mut Vec<Step>, raw: &RawChunk, reader: &RunReader) {
-    let n = raw.rows.len();
+    let n = raw.rows.masked_per_row.len();
     let meta = &reader.steps()[raw.first_row..raw.first_row + n];
     if steps.len() < n {
-        steps.resize_with(n, || Step { index: 0, file: 0, index_in_file: 0, meta: meta[0], values: Vec::new(), standard: Default::default() });
+        steps.resize_with(n, || Step {
+            index: 0,
+            file: 0,
+            index_in_file: 0,
+            meta: meta[0],
+            values: Vec::new(),
+            standard: Default::default(),
+            no_data: Default::default(),
+        });
     }
     for (r, (step, meta)) in steps[..n].iter_mut().zip(meta).enumerate() {
         step.index = raw.first_index + r;

@@ -499,20 +499,33 @@ fn lo_step_off_the_bin_grid() {
 // ---------------------------------------------------------------------------------------
 // "No data" bins: weight 0, coverage gaps, never zeros
 
-#[test]
-fn nan_negative_and_masked_bins_become_coverage_gaps() {
-    let _files = files();
-    let (_dir, path) = good_file("gaps.h5");
+/// A night with no-data bins of every cause: step 0 holds 100 negative and 200 NaN bins,
+/// step 5 two infinite values and two zeros, step 23 has its top 200 bins masked.
+fn night_with_gaps(name: &str) -> (tempfile::TempDir, PathBuf) {
+    let (dir, path) = good_file(name);
     patch(&path, |f| {
         let spectra = f.dataset("spectra")?;
         let mut first: ndarray::Array1<f32> = spectra.read_slice_1d((0, ..))?;
         first.slice_mut(ndarray::s![0..100]).fill(-1.0);
         first.slice_mut(ndarray::s![100..300]).fill(f32::NAN);
         spectra.write_slice(&first, (0, ..))?;
+        let mut sixth: ndarray::Array1<f32> = spectra.read_slice_1d((5, ..))?;
+        sixth[10] = f32::INFINITY;
+        sixth[11] = f32::NEG_INFINITY;
+        sixth[500] = 0.0;
+        sixth[501] = -0.0;
+        spectra.write_slice(&sixth, (5, ..))?;
         let mut mask = ndarray::Array2::<u8>::zeros((24, 1024));
         mask.slice_mut(ndarray::s![23, 824..]).fill(1);
         f.new_dataset_builder().with_data(&mask).create("mask").map(|_| ())
     });
+    (dir, path)
+}
+
+#[test]
+fn nan_negative_and_masked_bins_become_coverage_gaps() {
+    let _files = files();
+    let (_dir, path) = night_with_gaps("gaps.h5");
     let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
     let r = pipeline::reduce(&plan, &[path], &|_, _| {}).expect("a night with gaps reduces");
     let sp = &r.spectrum;
@@ -534,6 +547,46 @@ fn nan_negative_and_masked_bins_become_coverage_gaps() {
     assert!(sp.grand[300..n - 300].iter().all(|g| g.is_finite()));
     let valid = sp.grand.iter().filter(|g| g.is_finite()).count();
     assert!(valid <= n - 200, "{valid} of {n} bins hold a value");
+}
+
+#[test]
+fn no_data_bins_are_counted_by_cause_and_warned_of_per_file() {
+    use axsift::stage::no_data::CauseCount;
+    let _files = files();
+    let (_dir, path) = night_with_gaps("counted.h5");
+    let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
+    let r = pipeline::reduce(&plan, std::slice::from_ref(&path), &|_, _| {}).expect("a night with gaps reduces");
+    let nd = &r.no_data;
+    assert_eq!(nd.masked, CauseCount { bins: 200, steps: 1 });
+    assert_eq!(nd.non_finite, CauseCount { bins: 202, steps: 2 });
+    assert_eq!(nd.non_positive, CauseCount { bins: 102, steps: 2 });
+    assert_eq!(nd.files.len(), 1);
+    assert_eq!((nd.files[0].steps, nd.files[0].bins, nd.files[0].worst.clone()), (2, 304, vec![(0, 300), (5, 4)]));
+    let warnings = nd.warnings();
+    assert_eq!(warnings.len(), 1, "one line per file: {warnings:?}");
+    assert_names(&warnings[0], &["counted.h5", "2 steps hold 304 bins", "mask does not mark", "step 0 (300 bins)", "step 5 (4 bins)"]);
+
+    // summary.json carries the same counts.
+    let prov = axsift::output::Provenance::new(PIPELINE, std::slice::from_ref(&path)).unwrap();
+    let json: serde_json::Value = serde_json::to_value(r.summary(&prov, None, None)).unwrap();
+    assert_eq!(json["no_data"]["masked"]["bins"], 200);
+    assert_eq!(json["no_data"]["non_finite"]["steps"], 2);
+    assert_eq!(json["no_data"]["non_positive"]["bins"], 102);
+
+    // The same file with a stricter ingest limit: step 0 (300 of 1024 bins, 29 %) is cut.
+    let strict = config::load(&pipeline_with("max_no_data_fraction = 0.5", "max_no_data_fraction = 0.25"), "strict.toml").unwrap();
+    let r = pipeline::reduce(&strict, &[path], &|_, _| {}).expect("reduces");
+    assert_eq!(r.cuts.iter().map(|c| c.step).collect::<Vec<_>>(), vec![0], "{:?}", r.cuts);
+    assert_eq!(r.cuts[0].stage, "ingest");
+    assert_names(&r.cuts[0].reason, &["300 of 1024 bins hold no data", "100 non-positive", "200 non-finite", "max_no_data_fraction = 0.25"]);
+    // Every step is still counted, the cut one included.
+    assert_eq!(r.no_data.non_finite, CauseCount { bins: 202, steps: 2 });
+}
+
+#[test]
+fn no_data_fraction_outside_zero_to_one_is_refused() {
+    let problems = config_error(&pipeline_with("max_no_data_fraction = 0.5", "max_no_data_fraction = 1.5"));
+    assert!(problems.iter().any(|p| p.contains("max_no_data_fraction") && p.contains("[0, 1]")), "{problems:?}");
 }
 
 // ---------------------------------------------------------------------------------------

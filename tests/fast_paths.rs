@@ -145,8 +145,17 @@ fn baseline_stage_matches_its_formula_with_gaps() {
         }
         v
     };
-    let steps: Vec<Step> =
-        (0..4).map(|i| Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values: raw(&mut rng), standard: Default::default() }).collect();
+    let steps: Vec<Step> = (0..4)
+        .map(|i| Step {
+            index: i,
+            file: 0,
+            index_in_file: i,
+            meta: meta(5.2e9, n),
+            values: raw(&mut rng),
+            standard: Default::default(),
+            no_data: Default::default(),
+        })
+        .collect();
     for s in &steps {
         stage.survey(s);
     }
@@ -207,7 +216,7 @@ fn rescale_stage_matches_signal_power_per_bin() {
     let mut rng = StdRng::seed_from_u64(4);
     let delta: Vec<f64> =
         (0..n).map(|k| if k == 77 { f64::NAN } else { 0.007 * <StandardNormal as Distribution<f64>>::sample(&StandardNormal, &mut rng) }).collect();
-    let mut step = Step { index: 0, file: 0, index_in_file: 0, meta: m, values: delta.clone(), standard: Default::default() };
+    let mut step = Step { index: 0, file: 0, index_in_file: 0, meta: m, values: delta.clone(), standard: Default::default(), no_data: Default::default() };
     assert_eq!(stage.apply(&mut step, &night), Verdict::Keep);
     let h = &night.headers[0];
     let scope = Haloscope { magnet_field_t: h.magnet_field_t, cavity_volume_m3: h.cavity_volume_m3, form_factor: h.form_factor };
@@ -321,7 +330,7 @@ fn combine_add_all_equals_steps_added_one_by_one() {
                 .zip(&sigma)
                 .map(|(&r, &s)| if r.is_finite() && s.is_finite() && s > 0.0 { ((r / s) as f32, (1.0 / s) as f32) } else { (0.0, 0.0) })
                 .unzip();
-            (Step { index: i, file: 0, index_in_file: i, meta, values, standard: Standardised { z, inverse_sigma } }, sigma)
+            (Step { index: i, file: 0, index_in_file: i, meta, values, standard: Standardised { z, inverse_sigma }, no_data: Default::default() }, sigma)
         })
         .collect();
     let mut one_by_one = combiner();
@@ -388,7 +397,7 @@ fn baseline_survey_all_equals_steps_surveyed_one_by_one() {
             for k in (i..n).step_by(331) {
                 values[k] = f64::NAN;
             }
-            Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values, standard: Default::default() }
+            Step { index: i, file: 0, index_in_file: i, meta: meta(5.2e9, n), values, standard: Default::default(), no_data: Default::default() }
         })
         .collect();
     let (mut one_by_one, mut batched) = (build(), build());

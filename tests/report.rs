@@ -8,6 +8,7 @@
 #[allow(dead_code)]
 mod common;
 
+use axsift::output::SUMMARY_CANDIDATES;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 
@@ -149,7 +150,8 @@ fn demo_report_renders_in_chromium() {
 }
 
 /// A night with no candidate and one with about a hundred both render; the first says so,
-/// the second lists every candidate.
+/// the second lists the strongest [`SUMMARY_CANDIDATES`] (those of summary.json) and says
+/// how many there are in all.
 #[test]
 fn reports_with_none_and_a_hundred_candidates_render() {
     let dir = tempfile::tempdir().unwrap();
@@ -168,7 +170,11 @@ fn reports_with_none_and_a_hundred_candidates_render() {
         } else {
             assert!((80..=200).contains(&n), "{n} candidates at threshold {threshold}");
             let section = &html[html.find("<h2>Rescan candidates</h2>").unwrap()..html.find("<h2>Provenance</h2>").unwrap()];
-            assert_eq!(section.matches("<tr>").count(), n + 1, "one row per candidate and a header");
+            let listed = n.min(SUMMARY_CANDIDATES);
+            assert_eq!(section.matches("<tr>").count(), listed + 1, "one row per listed candidate and a header");
+            if n > listed {
+                assert!(section.contains(&format!("the strongest {listed} of {n}")), "the note on the unlisted candidates is missing");
+            }
         }
         assert_not_blank(&out.join("report.html"));
     }

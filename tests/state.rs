@@ -26,6 +26,11 @@ fn bits(v: &[f64]) -> Vec<u64> {
     v.iter().map(|x| x.to_bits()).collect()
 }
 
+/// The sums over the state's whole grid.
+fn whole(st: &State) -> state::Sums {
+    st.sums(st.grid_bins.map_or(0..0, |(lo, hi)| lo..hi)).unwrap()
+}
+
 /// Acceptance: three nights (overlapping, shifted bands) added one morning at a time, with
 /// the state saved and reloaded in between, give bit-identical sums, grand spectrum and
 /// candidates to adding all three in one call.
@@ -44,15 +49,17 @@ fn incremental_equals_batch_over_three_nights() {
     let incremental = State::load(&state_dir).unwrap().unwrap();
     let mut batch = State::new(state::plan_hash(&plan));
     let updates = state::add_nights(&mut batch, &plan, &nights.iter().map(|n| vec![n.clone()]).collect::<Vec<_>>()).unwrap();
-    assert_eq!(bits(&incremental.weight), bits(&batch.weight));
-    assert_eq!(bits(&incremental.weighted_sum), bits(&batch.weighted_sum));
-    assert_eq!(incremental.rf_origin_hz, batch.rf_origin_hz);
+    let (inc, bat) = (whole(&incremental), whole(&batch));
+    assert_eq!(bits(&inc.weight), bits(&bat.weight));
+    assert_eq!(bits(&inc.weighted_sum), bits(&bat.weighted_sum));
+    assert_eq!((&inc.coverage, &inc.line_steps), (&bat.coverage, &bat.line_steps));
+    assert_eq!((incremental.rf_origin_hz, incremental.grid_bins), (batch.rf_origin_hz, batch.grid_bins));
     let (a, b) = (&last.unwrap().reduction.spectrum, &updates[2].reduction.spectrum);
     assert_eq!(bits(&a.grand), bits(&b.grand));
     assert_eq!(incremental.candidates, batch.candidates);
     assert_eq!(incremental.nights.len(), 3);
     // The third night extends the grid below the first one's origin.
-    assert!(incremental.rf_origin_hz < 5.2e9 - 2048.0 * 100.0);
+    assert!(incremental.grid_bins.unwrap().0 < 0);
 }
 
 /// Acceptance: a rescan of the same band clears the noise candidates of the first night and
@@ -100,6 +107,11 @@ fn refusals_are_clear() {
     std::fs::write(&index, text).unwrap();
     let err = State::load(&state_dir).unwrap_err().to_string();
     assert!(err.contains("state.json") && err.contains("schema_version") && err.contains('7'), "{err}");
+    // A state of the previous layout (one sums file, version 2) is refused the same way.
+    let text = std::fs::read_to_string(&index).unwrap().replace("\"schema_version\": 7", "\"schema_version\": 2");
+    std::fs::write(&index, text).unwrap();
+    let err = State::load(&state_dir).unwrap_err().to_string();
+    assert!(err.contains("schema_version` is 2") && err.contains("start a new state folder"), "{err}");
 }
 
 /// Acceptance: `axsift reduce --state` killed with SIGKILL at several moments leaves a state
@@ -120,7 +132,7 @@ fn a_killed_update_leaves_a_usable_state() {
     assert!(run(&reference, &second).status.success());
     let expected = State::load(&reference).unwrap().unwrap();
 
-    for (i, delay_ms) in [0u64, 30, 80, 150, 250, 400].into_iter().enumerate() {
+    for (i, delay_ms) in [0u64, 30, 80, 150, 250, 400, 600, 900].into_iter().enumerate() {
         let state_dir = dir.path().join(format!("killed-{i}"));
         assert!(run(&state_dir, &first).status.success());
         let mut child = Command::new(exe)
@@ -141,9 +153,111 @@ fn a_killed_update_leaves_a_usable_state() {
             assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
         }
         let done = State::load(&state_dir).unwrap().unwrap();
-        assert_eq!(bits(&done.weighted_sum), bits(&expected.weighted_sum), "kill after {delay_ms} ms");
+        assert_eq!(bits(&whole(&done).weighted_sum), bits(&whole(&expected).weighted_sum), "kill after {delay_ms} ms");
         assert_eq!(done.candidates, expected.candidates);
+        // What the killed run left behind is gone once an update has committed.
+        assert_eq!(files_in(&state_dir.join("blocks")), named_blocks(&done), "kill after {delay_ms} ms");
+        assert_eq!(files_in(&state_dir.join("nights")), vec!["night-0.h5".to_string(), "night-1.h5".to_string()]);
     }
+}
+
+/// The names of the files in a folder, sorted.
+fn files_in(dir: &Path) -> Vec<String> {
+    let mut names: Vec<String> = std::fs::read_dir(dir).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into_owned()).collect();
+    names.sort();
+    names
+}
+
+/// The block files a state's index names, sorted.
+fn named_blocks(st: &State) -> Vec<String> {
+    let mut names: Vec<String> = st.blocks.iter().map(|b| format!("b{}-g{}.h5", b.index, b.generation)).collect();
+    names.sort();
+    names
+}
+
+/// Grid bin of a spectrum's first bin.
+fn first_bin(st: &State, sp: &axsift::stage::Spectrum) -> i64 {
+    ((sp.rf_start_hz - st.rf_origin_hz) / st.bin_width_hz).round() as i64
+}
+
+/// Acceptance: with blocks of 4096 bins (a night spans 11), every update recomputes only the
+/// span its night changed, and the values it writes there equal, bit for bit, the whole
+/// campaign's grand spectrum recomputed from the stored blocks by `axsift export`, block
+/// edges included: the bins a later update did not recompute keep the values of the update
+/// that last did. Blocks that a night does not reach keep the generation that wrote them,
+/// and every run of bins above threshold in the whole campaign's grand spectrum is a tracked
+/// candidate.
+#[test]
+fn span_updates_agree_with_the_whole_campaign_at_block_edges() {
+    let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let state_dir = dir.path().join("state");
+    // The second night overlaps the first; the third lies 6 MHz above, past a gap.
+    let nights: Vec<PathBuf> = [(71, 5.2e9), (72, 5.2015e9), (73, 5.206e9)].iter().map(|&(s, f)| night(s, f, dir.path(), false)).collect();
+    let mut latest: std::collections::HashMap<i64, u64> = std::collections::HashMap::new();
+    let mut st = State::with_block_bins(state::plan_hash(&plan), 4096);
+    let mut match_hz = 0.0;
+    for (i, n) in nights.iter().enumerate() {
+        let update = state::add_nights(&mut st, &plan, &[vec![n.clone()]]).unwrap().remove(0);
+        st.save(&state_dir).unwrap();
+        let sp = &update.reduction.spectrum;
+        let first = first_bin(&st, sp);
+        assert_eq!(first.rem_euclid(4096), 0, "a span starts at a block edge");
+        for (k, g) in sp.grand.iter().enumerate() {
+            latest.insert(first + k as i64, g.to_bits());
+        }
+        let (lo, hi) = st.grid_bins.unwrap();
+        if i == 2 {
+            // The third night's span leaves out the first night's band: its own 44 096 bins
+            // cover at most 12 blocks, and the span adds one tile on each side.
+            assert!(first > lo + 44_000 && sp.grand.len() <= 14 * 4096, "span {first}+{} of grid {lo}..{hi}", sp.grand.len());
+            let untouched: Vec<_> = st.blocks.iter().filter(|b| b.index < st.block_of(first) - 1).collect();
+            assert!(!untouched.is_empty() && untouched.iter().all(|b| b.generation <= 2), "{untouched:?}");
+        }
+        match_hz = update.match_hz;
+        st = State::load(&state_dir).unwrap().unwrap();
+    }
+
+    let out = dir.path().join("campaign.h5");
+    let exe = env!("CARGO_BIN_EXE_axsift");
+    let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    let run = Command::new(exe).args(["-q", "export", "--config", pipeline, "--state"]).arg(&state_dir).arg("--out").arg(&out).output().unwrap();
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let file = hdf5::File::open(&out).unwrap();
+    let grand: Vec<f64> = file.dataset("grand").unwrap().read_raw().unwrap();
+    let first: i64 = file.attr("first_bin").unwrap().read_scalar().unwrap();
+    let (lo, hi) = st.grid_bins.unwrap();
+    assert_eq!((first, grand.len()), (lo, (hi - lo) as usize));
+    let mut compared = 0;
+    for (k, g) in grand.iter().enumerate() {
+        if let Some(&b) = latest.get(&(first + k as i64)) {
+            assert_eq!(b, g.to_bits(), "grid bin {}: update wrote {}, the whole campaign gives {g}", first + k as i64, f64::from_bits(b));
+            compared += 1;
+        }
+    }
+    assert_eq!(compared, grand.len(), "every bin of the grid was written by some update");
+
+    let threshold = 3.355;
+    let mut j = 0;
+    while j < grand.len() {
+        if !(grand[j] > threshold) {
+            j += 1;
+            continue;
+        }
+        let mut peak = j;
+        while j < grand.len() && grand[j] > threshold {
+            peak = if grand[j] > grand[peak] { j } else { peak };
+            j += 1;
+        }
+        let f = st.freq_hz(first + peak as i64) - st.bin_width_hz / 2.0;
+        assert!(st.candidates.iter().any(|c| (c.frequency_hz - f).abs() <= 2.0 * match_hz), "run at {f} Hz (grand {}) is not tracked", grand[peak]);
+    }
+
+    let other = dir.path().join("other.toml");
+    std::fs::write(&other, PIPELINE.replace("order = 4", "order = 3")).unwrap();
+    let refused = Command::new(exe).args(["-q", "export", "--config"]).arg(&other).arg("--state").arg(&state_dir).arg("--out").arg(&out).output().unwrap();
+    assert_eq!(refused.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&refused.stderr).contains("another pipeline"));
 }
 
 /// IF bins of the simulated receiver line of the interference tests: 30 bins (3 kHz) wide,
@@ -213,7 +327,8 @@ fn an_if_fixed_line_is_interference_and_the_axion_persists() {
     st.save(&state_dir).unwrap();
     let mut st = State::load(&state_dir).unwrap().unwrap();
     assert_eq!(st.candidates.iter().filter(|c| c.class == Class::Interference).count(), n_interference);
-    assert!(st.nights[0].if_profile_sigma.len() == 4096 && st.nights[0].if_steps.iter().all(|&n| n <= 200));
+    let profile = st.if_profile(0).unwrap();
+    assert!(profile.if_profile_sigma.len() == 4096 && profile.if_steps.iter().all(|&n| n <= 200));
 
     state::add_nights(&mut st, &plan, &[vec![night(42, 5.2e9, dir.path(), true)]]).unwrap();
     assert!(st.nights[1].if_lines.iter().all(|l| !BURST_IF_BINS.contains(&l.if_bin)), "{:?}", st.nights[1].if_lines);
@@ -282,8 +397,8 @@ fn status_reports_text_and_json() {
     assert_eq!(v["nights"][0]["n_steps"], 200);
     assert!(v["nights"][0]["if_line_bins"].as_array().unwrap().iter().any(|k| BURST_IF_BINS.contains(&(k.as_u64().unwrap() as usize))));
     assert_eq!(v["bin_width_hz"], 100.0);
-    assert_eq!(v["rf_span_hz"][0].as_f64().unwrap(), st.rf_origin_hz);
-    let covered = st.coverage.iter().filter(|&&c| c > 0).count() as f64 * 100.0;
+    assert_eq!(v["rf_span_hz"][0].as_f64().unwrap(), st.rf_span_hz().unwrap().0);
+    let covered = whole(&st).coverage.iter().filter(|&&c| c > 0).count() as f64 * 100.0;
     assert_eq!(v["covered_hz"].as_f64().unwrap(), covered);
     for (key, class) in [("new", Class::New), ("persists", Class::Persists), ("cleared", Class::Cleared), ("interference", Class::Interference)] {
         assert_eq!(v["candidates_by_class"][key].as_u64().unwrap() as usize, count(class), "{key}");

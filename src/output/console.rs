@@ -5,6 +5,7 @@ use crate::calib::Calibration;
 use crate::limits::Limits;
 use crate::pipeline::Reduction;
 use crate::runfile::RunReader;
+use crate::stage::no_data::count;
 use std::fmt::Write;
 use std::path::PathBuf;
 
@@ -23,6 +24,19 @@ pub fn night_report(r: &Reduction, s: &Summary, calibrated: Option<(&Calibration
     let _ = writeln!(out, "Steps: {} read, {} used, {} cut", s.n_steps_in, s.n_steps_used, s.cuts.len());
     for c in s.cuts.iter().take(MAX_LISTED) {
         let _ = writeln!(out, "  cut step {} ({} row {}) by {}: {}", c.step, c.file.display(), c.row, c.stage, c.reason);
+    }
+    let nd = s.no_data;
+    if nd.masked.bins + nd.non_finite.bins + nd.non_positive.bins > 0 {
+        let _ = writeln!(
+            out,
+            "No-data bins: {} masked ({}), {} non-finite ({}), {} non-positive ({})",
+            nd.masked.bins,
+            count(nd.masked.steps, "step"),
+            nd.non_finite.bins,
+            count(nd.non_finite.steps, "step"),
+            nd.non_positive.bins,
+            count(nd.non_positive.steps, "step")
+        );
     }
     let _ = writeln!(out, "RF coverage: {:.6} - {:.6} MHz, {} bins of {} Hz", s.rf_start_hz / 1e6, s.rf_stop_hz / 1e6, s.n_rf_bins, r.spectrum.bin_width_hz);
     let _ = writeln!(
@@ -167,13 +181,13 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
     use crate::state::Class;
     let mut out = String::new();
     let files: usize = st.nights.iter().map(|n| n.files.len()).sum();
-    let covered = st.coverage.iter().filter(|&&c| c > 0).count();
+    let covered = st.covered_bins();
     let _ = writeln!(out, "\nAnalysis state: {} night(s), {} run file(s), generation {}", st.nights.len(), files, st.generation);
     let _ = writeln!(
         out,
         "  RF {:.6} - {:.6} MHz, {:.3} MHz covered",
-        st.rf_origin_hz / 1e6,
-        (st.rf_origin_hz + st.coverage.len().saturating_sub(1) as f64 * st.bin_width_hz) / 1e6,
+        st.rf_span_hz().map_or(f64::NAN, |s| s.0) / 1e6,
+        st.rf_span_hz().map_or(f64::NAN, |s| s.1) / 1e6,
         covered as f64 * st.bin_width_hz / 1e6
     );
     for c in changes {

@@ -92,6 +92,9 @@ pub struct Summary<'a> {
     /// The [`SUMMARY_CANDIDATES`] most significant candidates, strongest first.
     pub candidates: Vec<&'a Candidate>,
     pub cuts: &'a [crate::pipeline::CutStep],
+    /// Bins without data in the steps read, by cause (masked, non-finite, non-positive; bins
+    /// and steps), and the files holding unmasked ones with their worst steps.
+    pub no_data: &'a crate::stage::no_data::NoDataTally,
     pub provenance: &'a Provenance,
     /// The calibration applied, if `reduce` was given one.
     pub calibration: Option<CalibrationUse>,
@@ -198,6 +201,7 @@ impl Reduction {
             n_candidates: sp.candidates.len(),
             candidates: strongest,
             cuts: &self.cuts,
+            no_data: &self.no_data,
             provenance,
             calibration: calibration.map(CalibrationUse::from),
             limits: limits.map(LimitRange::from),

@@ -4,6 +4,7 @@ use super::finisher::Finisher;
 use super::schedule::Schedule;
 use super::{Prepared, ReduceError, Reduction, Writer, prepare, run_stages, stream_chunks};
 use crate::config::Plan;
+use crate::stage::no_data::NoDataTally;
 use crate::stage::{Block, Spectrum, Step};
 use std::path::PathBuf;
 
@@ -30,6 +31,7 @@ pub fn reduce_streamed<J: Send>(
     let schedule = Schedule::new(&readers, &night, combiner.grid_bins());
     let mut finisher = Finisher::new(schedule, &spectrum_stages, &*combiner, &night).map_err(ReduceError::Night)?;
     let (mut cuts, mut used_steps, mut candidates) = (Vec::new(), Vec::new(), Vec::new());
+    let mut no_data = NoDataTally::default();
     let mut done = 0;
     let mut complete = false;
     stream_chunks(
@@ -37,7 +39,7 @@ pub fn reduce_streamed<J: Send>(
         &night,
         None,
         &mut buffers,
-        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, paths),
+        |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, &mut no_data, paths),
         |kept, through| {
             combiner.add_all(kept).map_err(ReduceError::Night)?;
             used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
@@ -71,5 +73,5 @@ pub fn reduce_streamed<J: Send>(
         candidates,
         ..Spectrum::default()
     };
-    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: Default::default() })
+    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: Default::default(), no_data })
 }

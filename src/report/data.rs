@@ -73,6 +73,8 @@ pub struct SummaryView {
     pub n_candidates: usize,
     /// Steps cut, with reasons.
     pub cuts: Vec<CutView>,
+    /// Bins without data, by cause.
+    pub no_data: crate::stage::no_data::NoDataTally,
     /// Tool version, config hash, inputs.
     pub provenance: ProvenanceView,
     /// The calibration figures the reduction applied.

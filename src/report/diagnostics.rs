@@ -117,6 +117,7 @@ fn for_each_chunk(readers: &[crate::runfile::RunReader], f: &mut dyn FnMut(&mut 
                     meta: reader.steps()[start + r],
                     values: row.to_vec(),
                     standard: Default::default(),
+                    no_data: Default::default(),
                 })
                 .collect();
             index += end - start;

@@ -214,6 +214,7 @@ fn glance(out: &mut String, d: &ReportData) {
 }
 
 fn cuts(out: &mut String, d: &ReportData) {
+    no_data(out, &d.summary.no_data);
     let c = &d.summary.cuts;
     if c.is_empty() {
         out.push_str("<p class=\"good\">No step was cut: every step passed the ingest ranges and the residual-spread check.</p>");
@@ -244,6 +245,29 @@ fn cuts(out: &mut String, d: &ReportData) {
         );
     }
     out.push_str("</table></div>");
+}
+
+/// The bins without data by cause, and the files with bins the mask did not mark.
+fn no_data(out: &mut String, nd: &crate::stage::no_data::NoDataTally) {
+    out.push_str("<table><tr><th>no-data bins</th><th class=\"n\">bins</th><th class=\"n\">steps</th></tr>");
+    for (cause, c) in
+        [("masked by the acquisition", nd.masked), ("non-finite power (NaN, infinite)", nd.non_finite), ("zero or negative power", nd.non_positive)]
+    {
+        let _ = write!(out, "<tr><td>{cause}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>", c.bins, c.steps);
+    }
+    out.push_str("</table>");
+    for f in &nd.files {
+        let file = f.file.file_name().map_or_else(|| f.file.display().to_string(), |n| n.to_string_lossy().into_owned());
+        let worst: Vec<String> = f.worst.iter().map(|&(row, bins)| format!("row {row} ({})", crate::stage::no_data::count(bins, "bin"))).collect();
+        let _ = write!(
+            out,
+            "<p class=\"bad\">{}: {} with {} of NaN, infinite, zero or negative power that the mask does not mark, reduced as gaps; worst: {}.</p>",
+            escape(&file),
+            crate::stage::no_data::count(f.steps, "step"),
+            crate::stage::no_data::count(f.bins, "bin"),
+            escape(&worst.join(", "))
+        );
+    }
 }
 
 fn steps(out: &mut String, d: &ReportData, cut: &HashSet<usize>) -> anyhow::Result<()> {

@@ -7,13 +7,14 @@
 //! with 1-D datasets `start_freq_hz`, `cavity_freq_hz`, `loaded_q`, `coupling_beta`,
 //! `noise_temp_k`, `n_averages`, `timestamp_s`; optional `mask` `[n_steps, n_bins]` u8.
 
-mod attrs;
-mod probe;
+pub(crate) mod attrs;
+pub(crate) mod header;
+pub(crate) mod probe;
 mod read;
-mod steps;
-mod write;
+pub(crate) mod steps;
+pub(crate) mod write;
 
-pub use read::RunReader;
+pub use read::{RunReader, StoredPower, StoredRows};
 pub use write::RunWriter;
 
 use std::path::PathBuf;

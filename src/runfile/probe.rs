@@ -10,14 +10,16 @@ use std::path::Path;
 const SIGNATURE: [u8; 8] = [0x89, b'H', b'D', b'F', b'\r', b'\n', 0x1a, b'\n'];
 
 /// Checks `path` is a readable, non-empty file with an HDF5 signature; returns its size.
-pub fn check_file(path: &Path) -> Result<u64, RunFileError> {
+/// `kind` names the file in messages ("run file", "IQ capture"), `format_name` is the root
+/// `format` attribute of its format.
+pub fn check_file(path: &Path, kind: &str, format_name: &str) -> Result<u64, RunFileError> {
     let fail = |message: String| RunFileError::File { path: path.to_path_buf(), message };
     let meta = std::fs::metadata(path).map_err(|e| match e.kind() {
         std::io::ErrorKind::NotFound => fail("file does not exist".into()),
         _ => fail(format!("cannot read file: {e}")),
     })?;
     if meta.is_dir() {
-        return Err(fail("is a directory, not a run file".into()));
+        return Err(fail(format!("is a directory, not a {kind}")));
     }
     let size = meta.len();
     if size == 0 {
@@ -33,25 +35,28 @@ pub fn check_file(path: &Path) -> Result<u64, RunFileError> {
         }
         offset = if offset == 0 { 512 } else { offset * 2 };
     }
-    Err(fail(format!("is not an HDF5 file (no HDF5 signature in its {size} bytes); run files are HDF5, format \"{}\"", super::FORMAT_NAME)))
+    Err(fail(format!("is not an HDF5 file (no HDF5 signature in its {size} bytes); {kind}s are HDF5, format \"{format_name}\"")))
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::runfile::FORMAT_NAME as FORMAT;
+
+    const RUN: &str = "run file";
 
     #[test]
     fn refuses_missing_empty_and_foreign_files() {
         let dir = tempfile::tempdir().unwrap();
-        let missing = check_file(&dir.path().join("none.h5")).unwrap_err().to_string();
+        let missing = check_file(&dir.path().join("none.h5"), RUN, FORMAT).unwrap_err().to_string();
         assert!(missing.contains("none.h5") && missing.contains("does not exist"), "{missing}");
         let empty = dir.path().join("empty.h5");
         std::fs::write(&empty, b"").unwrap();
-        assert!(check_file(&empty).unwrap_err().to_string().contains("empty"));
+        assert!(check_file(&empty, RUN, FORMAT).unwrap_err().to_string().contains("empty"));
         let text = dir.path().join("notes.h5");
         std::fs::write(&text, vec![b'x'; 5000]).unwrap();
-        assert!(check_file(&text).unwrap_err().to_string().contains("not an HDF5 file"));
-        assert!(check_file(dir.path()).unwrap_err().to_string().contains("directory"));
+        assert!(check_file(&text, RUN, FORMAT).unwrap_err().to_string().contains("not an HDF5 file"));
+        assert!(check_file(dir.path(), RUN, FORMAT).unwrap_err().to_string().contains("directory"));
     }
 
     #[test]
@@ -61,6 +66,6 @@ mod tests {
         let mut bytes = vec![0u8; 1024];
         bytes.extend_from_slice(&SIGNATURE);
         std::fs::write(&p, &bytes).unwrap();
-        assert_eq!(check_file(&p).unwrap(), 1032);
+        assert_eq!(check_file(&p, RUN, FORMAT).unwrap(), 1032);
     }
 }

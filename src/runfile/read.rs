@@ -1,7 +1,7 @@
 //! Reading and validating run files, step rows by hyperslab.
 
 use super::{FORMAT_NAME, FORMAT_VERSION, MAX_BINS_PER_STEP, MAX_STEPS_PER_FILE, MIN_BINS_PER_STEP};
-use super::{RunFileError, RunHeader, StepMeta, attrs, probe, steps};
+use super::{RunFileError, RunHeader, StepMeta, attrs, header, steps};
 use hdf5::types::TypeDescriptor;
 use ndarray::Array2;
 use std::ops::Range;
@@ -25,39 +25,16 @@ impl RunReader {
     pub fn open(path: &Path) -> Result<Self, RunFileError> {
         let p = path.to_path_buf();
         let invalid = |field: &str, step: Option<usize>, message: String| RunFileError::Invalid { path: p.clone(), field: field.to_string(), step, message };
-        probe::check_file(path)?;
-        // No raw-data chunk cache: every read takes whole chunks (one step row each), which the
-        // library then reads straight into the caller's buffer instead of through the cache.
-        let file = hdf5::File::with_options().with_fapl(|fapl| fapl.chunk_cache(1, 0, 1.0)).open(path).map_err(|source| {
-            let what = if source.to_string().contains("unable to lock file") {
-                "is locked by another program (still being written?)"
-            } else {
-                "cannot open as HDF5 (truncated or corrupted file?)"
-            };
-            RunFileError::Hdf5 { path: p.clone(), what: what.into(), source }
-        })?;
-        let format = attrs::read_string(&file, "format").map_err(|m| invalid("format", None, m))?;
-        if format != FORMAT_NAME {
-            return Err(invalid("format", None, format!("is {format:?}, expected {FORMAT_NAME:?}")));
-        }
-        let version = attrs::read_f64(&file, "format_version").map_err(|m| invalid("format_version", None, m))?;
-        if version != f64::from(FORMAT_VERSION) {
-            return Err(invalid("format_version", None, format!("is {version}, this build reads {FORMAT_VERSION}")));
-        }
-        let positive = |name: &str| -> Result<f64, RunFileError> {
-            let v = attrs::read_f64(&file, name).map_err(|m| invalid(name, None, m))?;
-            if v.is_finite() && v > 0.0 { Ok(v) } else { Err(invalid(name, None, format!("is {v}, must be finite and > 0"))) }
-        };
+        // No raw-data chunk cache: every read takes whole chunks (one step row each).
+        let file = header::open_format(path, "run file", FORMAT_NAME, FORMAT_VERSION, true)?;
+        let facility = header::read_facility(&file, path)?;
         let header = RunHeader {
-            bin_width_hz: positive("bin_width_hz")?,
-            magnet_field_t: positive("magnet_field_t")?,
-            cavity_volume_m3: positive("cavity_volume_m3")?,
-            form_factor: positive("form_factor")?,
-            run_label: attrs::read_string(&file, "run_label").map_err(|m| invalid("run_label", None, m))?,
+            bin_width_hz: header::read_positive(&file, path, "bin_width_hz")?,
+            magnet_field_t: facility.magnet_field_t,
+            cavity_volume_m3: facility.cavity_volume_m3,
+            form_factor: facility.form_factor,
+            run_label: facility.run_label,
         };
-        if header.form_factor > 1.0 {
-            return Err(invalid("form_factor", None, format!("is {}, must be at most 1", header.form_factor)));
-        }
         let spectra = file.dataset("spectra").map_err(|_| invalid("spectra", None, "dataset is missing".into()))?;
         let shape = spectra.shape();
         if shape.len() != 2 {
@@ -130,30 +107,57 @@ impl RunReader {
         Ok(power)
     }
 
-    /// Reads raw power for `rows` (a hyperslab) without widening, when the file stores f32:
-    /// `Some` with the values as stored, masked bins NaN ("no data"); `None` when the file
-    /// stores f64 (then use [`Self::read_rows`]). Half the memory traffic of `read_rows` and
-    /// no conversion inside the HDF5 library.
-    pub fn read_rows_f32(&self, rows: Range<usize>) -> Result<Option<Array2<f32>>, RunFileError> {
+    /// Reads raw power for `rows` (a hyperslab) as stored, f32 or f64 (f32 is not widened:
+    /// half the memory traffic of [`Self::read_rows`] and no conversion inside the HDF5
+    /// library), masked bins NaN ("no data"), with the number of masked bins of each row.
+    pub fn read_stored_rows(&self, rows: Range<usize>) -> Result<StoredRows, RunFileError> {
         let what = format!("reading spectra of steps {}..{} (corrupted file?)", rows.start, rows.end);
         let hdf5_error = |what: String| {
             let path = self.path.clone();
             move |source| RunFileError::Hdf5 { path, what, source }
         };
-        if self.spectra.dtype().map_err(hdf5_error(what.clone()))?.size() != 4 {
-            return Ok(None);
-        }
-        let mut power: Array2<f32> = self.spectra.read_slice_2d((rows.clone(), ..)).map_err(hdf5_error(what.clone()))?;
-        if let Some(mask) = &self.mask {
-            let flags: Array2<u8> = mask.read_slice_2d((rows, ..)).map_err(hdf5_error(format!("{what} of mask")))?;
-            ndarray::Zip::from(&mut power).and(&flags).for_each(|p, &m| {
-                if m != 0 {
-                    *p = f32::NAN;
-                }
-            });
-        }
-        Ok(Some(power))
+        let n_rows = rows.len();
+        let flags: Option<Array2<u8>> = match &self.mask {
+            Some(mask) => Some(mask.read_slice_2d((rows.clone(), ..)).map_err(hdf5_error(format!("{what} of mask")))?),
+            None => None,
+        };
+        let masked_per_row = match &flags {
+            Some(f) => f.outer_iter().map(|row| row.iter().map(|&m| usize::from(m != 0)).sum()).collect(),
+            None => vec![0; n_rows],
+        };
+        let power = if self.spectra.dtype().map_err(hdf5_error(what.clone()))?.size() == 4 {
+            let mut power: Array2<f32> = self.spectra.read_slice_2d((rows, ..)).map_err(hdf5_error(what))?;
+            if let Some(f) = &flags {
+                ndarray::Zip::from(&mut power).and(f).for_each(|p, &m| *p = if m != 0 { f32::NAN } else { *p });
+            }
+            StoredPower::F32(power)
+        } else {
+            let mut power: Array2<f64> = self.spectra.read_slice_2d((rows, ..)).map_err(hdf5_error(what))?;
+            if let Some(f) = &flags {
+                ndarray::Zip::from(&mut power).and(f).for_each(|p, &m| *p = if m != 0 { f64::NAN } else { *p });
+            }
+            StoredPower::F64(power)
+        };
+        Ok(StoredRows { power, masked_per_row })
     }
+}
+
+/// Raw power of consecutive rows in the precision the file stores.
+#[derive(Debug)]
+pub enum StoredPower {
+    /// Stored as f32.
+    F32(Array2<f32>),
+    /// Stored as f64.
+    F64(Array2<f64>),
+}
+
+/// Rows read by [`RunReader::read_stored_rows`].
+#[derive(Debug)]
+pub struct StoredRows {
+    /// Raw power per row and bin (masked bins NaN).
+    pub power: StoredPower,
+    /// Bins the mask marks in each row.
+    pub masked_per_row: Vec<usize>,
 }
 
 /// Refuses a `spectra` dataset whose declared size the file does not hold: an uncompressed

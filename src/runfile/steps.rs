@@ -19,7 +19,7 @@ pub type FieldProblem = (String, Option<usize>, String);
 pub fn read_steps(group: &hdf5::Group, n_steps: usize) -> Result<Vec<StepMeta>, FieldProblem> {
     let mut cols = Vec::with_capacity(COLUMNS.len());
     for name in COLUMNS {
-        cols.push(read_column(group, name, n_steps)?);
+        cols.push(read_column(group, name, n_steps, "spectra")?);
     }
     let mut steps = Vec::with_capacity(n_steps);
     for i in 0..n_steps {
@@ -38,13 +38,15 @@ pub fn read_steps(group: &hdf5::Group, n_steps: usize) -> Result<Vec<StepMeta>, 
     Ok(steps)
 }
 
-fn read_column(group: &hdf5::Group, name: &str, n_steps: usize) -> Result<Vec<f64>, FieldProblem> {
+/// Reads the 1-D numeric column `name` of `group`, which must hold one value per step (row) of
+/// the dataset `rows_of`.
+pub(crate) fn read_column(group: &hdf5::Group, name: &str, n_steps: usize, rows_of: &str) -> Result<Vec<f64>, FieldProblem> {
     let field = format!("steps/{name}");
     let fail = |m: String| (field.clone(), None, m);
     let ds = group.dataset(name).map_err(|_| fail("dataset is missing".into()))?;
     let shape = ds.shape();
     if shape != [n_steps] {
-        return Err(fail(format!("has shape {shape:?}, expected [{n_steps}] (one value per step of `spectra`)")));
+        return Err(fail(format!("has shape {shape:?}, expected [{n_steps}] (one value per step of `{rows_of}`)")));
     }
     let t = ds.dtype().and_then(|d| d.to_descriptor()).map_err(|e| fail(format!("type cannot be read: {e}")))?;
     if !is_number(&t) {

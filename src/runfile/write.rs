@@ -13,10 +13,34 @@ const MAX_TEXT_BYTES: usize = super::attrs::MAX_FIXED_STRING_BYTES;
 /// strings live in the attribute's own (checksummed) object header; a variable-length string
 /// would live in the global heap, which carries no checksum and which the HDF5 library follows
 /// without checks when the file is corrupted.
-fn write_text(file: &hdf5::File, name: &str, value: &str) -> hdf5::Result<()> {
+fn write_text(object: &hdf5::Location, name: &str, value: &str) -> hdf5::Result<()> {
     let buffer = FixedUnicode::<MAX_TEXT_BYTES>::from_str(value).map_err(|e| hdf5::Error::from(e.to_string()))?;
-    file.new_attr_builder().empty_as(TypeDescriptor::FixedUnicode(value.len().max(1))).create(name)?.write_scalar(&buffer)
+    object.new_attr_builder().empty_as(TypeDescriptor::FixedUnicode(value.len().max(1))).create(name)?.write_scalar(&buffer)
 }
+
+/// Gives a dataset the `units` and `description` attributes every axsift output carries (the
+/// reader does not require them: files from an acquisition system may lack them).
+fn describe(ds: &hdf5::Dataset, units: &str, description: &str) -> hdf5::Result<()> {
+    write_text(ds, "units", units)?;
+    write_text(ds, "description", description)
+}
+
+/// How a column of the `steps` group is taken from the step metadata.
+enum Column {
+    Float(fn(&StepMeta) -> f64),
+    Count(fn(&StepMeta) -> u64),
+}
+
+/// The columns of the `steps` group: name, values, units, description.
+const STEP_COLUMNS: [(&str, Column, &str, &str); 7] = [
+    ("start_freq_hz", Column::Float(|s| s.start_freq_hz), "Hz", "RF frequency of the centre of the step's bin 0"),
+    ("cavity_freq_hz", Column::Float(|s| s.cavity_freq_hz), "Hz", "resonance frequency of the cavity mode during the step"),
+    ("loaded_q", Column::Float(|s| s.loaded_q), "1", "loaded quality factor Q_L of the cavity mode"),
+    ("coupling_beta", Column::Float(|s| s.coupling_beta), "1", "antenna coupling beta of the cavity mode (1 = critical coupling)"),
+    ("noise_temp_k", Column::Float(|s| s.noise_temp_k), "K", "system noise temperature referred to the cavity output"),
+    ("timestamp_s", Column::Float(|s| s.timestamp_s), "s", "start of the step, Unix time"),
+    ("n_averages", Column::Count(|s| s.n_averages), "1", "number of power spectra averaged into the step's spectrum"),
+];
 
 /// Writes a run file row by row to a temporary path, renamed into place by [`RunWriter::finish`].
 pub struct RunWriter {
@@ -61,6 +85,12 @@ impl RunWriter {
         }
         write_text(&file, "run_label", &header.run_label).map_err(err("run_label"))?;
         let spectra = file.new_dataset::<f32>().shape((n_steps, n_bins)).chunk((1, n_bins)).create("spectra").map_err(err("spectra"))?;
+        describe(
+            &spectra,
+            "arbitrary (linear power per bin, receiver gain included)",
+            "raw averaged power spectrum of each tuning step: row = step, column = bin, bin k at start_freq_hz + k * bin_width_hz",
+        )
+        .map_err(err("spectra"))?;
         Ok(Self { final_path: path.to_path_buf(), tmp_path, file, spectra, steps: Vec::with_capacity(n_steps), n_steps })
     }
 
@@ -74,6 +104,14 @@ impl RunWriter {
         })?;
         self.steps.push(meta);
         Ok(())
+    }
+
+    /// Gives up: closes and removes the temporary file, leaving any file at the final path as
+    /// it was.
+    pub fn abandon(self) {
+        let tmp_path = self.tmp_path.clone();
+        drop(self);
+        let _ = std::fs::remove_file(tmp_path);
     }
 
     /// Writes the `steps` group and renames the file into place.
@@ -91,28 +129,28 @@ impl RunWriter {
             });
         }
         let group = self.file.create_group("steps").map_err(err("steps"))?;
-        let columns: [(&str, fn(&StepMeta) -> f64); 6] = [
-            ("start_freq_hz", |s| s.start_freq_hz),
-            ("cavity_freq_hz", |s| s.cavity_freq_hz),
-            ("loaded_q", |s| s.loaded_q),
-            ("coupling_beta", |s| s.coupling_beta),
-            ("noise_temp_k", |s| s.noise_temp_k),
-            ("timestamp_s", |s| s.timestamp_s),
-        ];
-        for (name, get) in columns {
-            let values: Vec<f64> = self.steps.iter().map(get).collect();
-            group.new_dataset_builder().with_data(&values).create(name).map_err(err(name))?;
+        for (name, column, units, description) in STEP_COLUMNS {
+            let builder = group.new_dataset_builder();
+            let ds = match column {
+                Column::Float(get) => builder.with_data(&self.steps.iter().map(get).collect::<Vec<f64>>()).create(name),
+                Column::Count(get) => builder.with_data(&self.steps.iter().map(get).collect::<Vec<u64>>()).create(name),
+            }
+            .map_err(err(name))?;
+            describe(&ds, units, description).map_err(err(name))?;
         }
-        let n_avg: Vec<u64> = self.steps.iter().map(|s| s.n_averages).collect();
-        group.new_dataset_builder().with_data(&n_avg).create("n_averages").map_err(err("n_averages"))?;
-        self.file.close().map_err(err("close"))?;
-        std::fs::rename(&self.tmp_path, &self.final_path).map_err(|e| RunFileError::Invalid {
-            path: self.final_path.clone(),
-            field: "file".into(),
-            step: None,
-            message: format!("cannot rename into place: {e}"),
-        })
+        close_and_rename(self.file, &self.tmp_path, &self.final_path)
     }
+}
+
+/// Closes a file written at `tmp_path` and renames it to `final_path`.
+pub(crate) fn close_and_rename(file: hdf5::File, tmp_path: &Path, final_path: &Path) -> Result<(), RunFileError> {
+    file.close().map_err(|source| RunFileError::Hdf5 { path: final_path.to_path_buf(), what: "close".into(), source })?;
+    std::fs::rename(tmp_path, final_path).map_err(|e| RunFileError::Invalid {
+        path: final_path.to_path_buf(),
+        field: "file".into(),
+        step: None,
+        message: format!("cannot rename into place: {e}"),
+    })
 }
 
 #[cfg(test)]
@@ -155,6 +193,28 @@ mod tests {
         assert_eq!(std::fs::read(&path).unwrap()[8], 3);
         let r = RunReader::open(&path).unwrap();
         assert_eq!(r.header().run_label, "night 2, cavity ½ tuned");
+    }
+
+    #[test]
+    fn every_dataset_carries_units_and_a_description() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("described.h5");
+        write(&path, "described").unwrap();
+        let file = hdf5::File::open(&path).unwrap();
+        let text = |ds: &hdf5::Dataset, name: &str| -> String {
+            let attr = ds.attr(name).unwrap_or_else(|e| panic!("{}: no `{name}`: {e}", ds.name()));
+            match attr.dtype().unwrap().to_descriptor().unwrap() {
+                TypeDescriptor::FixedUnicode(_) => attr.read_scalar::<FixedUnicode<MAX_TEXT_BYTES>>().unwrap().as_str().to_string(),
+                other => panic!("{}: `{name}` is {other:?}", ds.name()),
+            }
+        };
+        let mut datasets = vec![file.dataset("spectra").unwrap()];
+        datasets.extend(file.group("steps").unwrap().datasets().unwrap());
+        assert_eq!(datasets.len(), 1 + STEP_COLUMNS.len());
+        for ds in &datasets {
+            assert!(!text(ds, "units").is_empty() && !text(ds, "description").is_empty(), "{}", ds.name());
+        }
+        assert_eq!(text(&file.dataset("steps/noise_temp_k").unwrap(), "units"), "K");
     }
 
     #[test]

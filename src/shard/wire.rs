@@ -4,6 +4,7 @@
 
 use crate::pipeline::{CutStep, Reduction};
 use crate::runfile::{RunHeader, StepMeta};
+use crate::stage::no_data::NoDataTally;
 use crate::stage::{NightInfo, Spectrum};
 use crate::state::{IfLine, IfScan, ReducedNight};
 use serde::{Deserialize, Serialize};
@@ -33,6 +34,7 @@ pub struct NightWire {
     rf_span_hz: Vec<f64>,
     headers: Vec<HeaderWire>,
     if_scan: IfScanWire,
+    no_data: NoDataTally,
 }
 
 #[derive(Debug, Serialize, Deserialize)]
@@ -116,6 +118,7 @@ impl NightWire {
                 removed_weighted_sum: r.if_scan.removed_weighted_sum.clone(),
                 removed_if_bin: r.if_scan.removed_if_bin.clone(),
             },
+            no_data: r.no_data.clone(),
         }
     }
 
@@ -169,7 +172,7 @@ impl NightWire {
             removed_weighted_sum: w.removed_weighted_sum,
             removed_if_bin: w.removed_if_bin,
         };
-        let reduction = Reduction { spectrum, n_steps_in: self.n_steps_in, used_steps, cuts, night, if_scan };
+        let reduction = Reduction { spectrum, n_steps_in: self.n_steps_in, used_steps, cuts, night, if_scan, no_data: self.no_data };
         Ok(ReducedNight { inputs: self.inputs, n_steps: self.n_steps, reduction })
     }
 }

@@ -5,7 +5,10 @@
 //! Gaussian noise, S_k injected axion power (signal power formula times the lineshape
 //! integrated over the bin) and I_k narrowband interference fixed in IF or RF (IF lines also as
 //! bursts, on for a range of steps only). Step i uses a random stream seeded by (seed, i), so
-//! files are reproducible whatever the thread count.
+//! files are reproducible whatever the thread count. [`capture`] writes the same night as an IQ
+//! capture instead.
+
+pub mod capture;
 
 use crate::inject::{SignalModel, SyntheticAxion};
 use crate::physics::constants::{BOLTZMANN_J_PER_K, DEFAULT_DM_DENSITY_GEV_PER_CM3, G_GAMMA_KSVZ};

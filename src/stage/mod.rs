@@ -12,6 +12,7 @@ pub mod filter;
 pub mod flag;
 mod grid_sums;
 pub mod ingest;
+pub mod no_data;
 pub mod rescale;
 
 use crate::runfile::{RunHeader, StepMeta};
@@ -82,6 +83,9 @@ pub struct Step {
     /// The bins in the [`Form::Rescaled`] form, the one the accumulations take (filled by
     /// the rescaling stage from `values`).
     pub standard: Standardised,
+    /// Its bins without data, by cause: `masked` set when the step is loaded, the others by
+    /// the ingest stage.
+    pub no_data: no_data::NoDataBins,
 }
 
 /// A step's bins as the accumulations take them: per bin the significance z = r / sigma and

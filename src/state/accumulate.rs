@@ -1,17 +1,22 @@
-//! Adding nights to the state: per-night combination, accumulation on the state's RF grid,
-//! the spectrum stages on the accumulated spectrum, and candidate tracking.
+//! Adding nights to the state: per-night combination, accumulation into the blocks of the
+//! state's RF grid that the night covers, the spectrum stages on the span that changed, and
+//! candidate tracking there.
 
 use super::interference::IfScan;
+use super::profile_file::IfProfileRecord;
 use super::rescan;
 use super::store::{FileRecord, NightRecord, State, StateError};
+use super::sums::Sums;
+use super::tiles::Stages;
 use crate::calib::PlanInfo;
-use crate::config::{Built, Plan, load};
+use crate::config::{Plan, load};
 use crate::output::Provenance;
 use crate::physics::constants::BOLTZMANN_J_PER_K;
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
 use crate::pipeline::{Reduction, reduce};
-use crate::stage::{NightInfo, Spectrum};
+use crate::stage::Spectrum;
 use sha2::{Digest, Sha256};
+use std::ops::Range;
 use std::path::PathBuf;
 
 /// Target SNR of a rescan step.
@@ -20,7 +25,8 @@ pub const RESCAN_TARGET_SNR: f64 = 5.0;
 /// The outcome of adding one night.
 #[derive(Debug)]
 pub struct Update {
-    /// The accumulated spectrum (all nights so far) with this night's steps and cuts.
+    /// The accumulated spectrum (all nights so far) over the span the update recomputed,
+    /// with this night's steps and cuts.
     pub reduction: Reduction,
     /// Index of the night just added.
     pub night: usize,
@@ -80,7 +86,7 @@ fn reduce_hashed(plan: &Plan, paths: &[PathBuf], inputs: Vec<(String, String)>) 
     Ok(ReducedNight { inputs, n_steps, reduction })
 }
 
-fn check_config(state: &State, plan: &Plan) -> Result<(), StateError> {
+pub(super) fn check_config(state: &State, plan: &Plan) -> Result<(), StateError> {
     let hash = plan_hash(plan);
     if state.config_hash != hash {
         return Err(refused(format!(
@@ -111,53 +117,82 @@ fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update
 /// Adds a night reduced by [`reduce_night`] to the state: the same operations, in the same
 /// order, as adding it from its run files, so the sums and the grand spectrum are
 /// bit-identical whichever way (or on whichever machine) the night was reduced.
+///
+/// The work is proportional to the RF span the night covers: its bins are added to the
+/// blocks they fall in, the grand spectrum is recomputed on the tiles whose input those
+/// blocks are ([`tiles`](super::tiles)), one more tile on each side (so a candidate at the
+/// edge of the changed tiles is seen whole), and further out while a run of bins above
+/// threshold reaches the edge; candidates are tracked on that span. Everywhere else the
+/// grand spectrum and the candidates are unchanged, because their data are.
 pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) -> Result<Update, StateError> {
     check_config(state, plan)?;
     check_new(state, &night.inputs)?;
     let ReducedNight { inputs, n_steps, reduction: night_red } = night;
     let night_index = state.nights.len();
-    let offset = merge(state, &night_red.spectrum, &night_red.if_scan, night_index)?;
-
-    let mut spectrum = accumulated(state, night_red.spectrum.step_span_hz, false);
-    let info = NightInfo { rf_span_hz: (spectrum.freq_hz(0), spectrum.freq_hz(spectrum.combined.len() - 1)), ..night_red.night.clone() };
-    // The whole plan is built for the accumulated grid (so the filter sees the baseline
-    // kernel for its spread prediction); only its spectrum stages are applied.
-    let stages: Vec<_> =
-        plan.build(&info).map_err(refused)?.into_iter().filter_map(|b| if let Built::Spectrum(stage) = b { Some(stage) } else { None }).collect();
-    for stage in &stages {
-        stage.apply(&mut spectrum, &night_red.used_steps).map_err(refused)?;
-    }
-    // The same stages on the spectrum without the IF-line samples, if there are any.
-    let without = if state.line_steps.iter().any(|&n| n > 0) {
-        let mut without = accumulated(state, night_red.spectrum.step_span_hz, true);
-        for stage in &stages {
-            stage.apply(&mut without, &night_red.used_steps).map_err(refused)?;
-        }
-        Some(without)
-    } else {
-        None
-    };
+    let stages = Stages::new(plan).map_err(refused)?;
+    let night_bins = merge(state, &night_red.spectrum, &night_red.if_scan, night_index)?;
+    let (spectrum, without, sums) = span_of_update(state, &stages, &night_red, night_bins.clone())?;
     state.nights.push(NightRecord {
         index: night_index,
         files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
         n_steps_used: night_red.used_steps.len(),
         if_lines: night_red.if_scan.lines.clone(),
-        if_profile_sigma: night_red.if_scan.if_profile_sigma.clone(),
-        if_steps: night_red.if_scan.if_steps.clone(),
     });
+    let profile = IfProfileRecord { if_profile_sigma: night_red.if_scan.if_profile_sigma.clone(), if_steps: night_red.if_scan.if_steps.clone() };
+    state.put_profile(night_index, profile);
 
     let plan_info = PlanInfo::from_plan(plan).map_err(refused)?;
+    // Grid bin of the span's first bin.
+    let first_bin = ((spectrum.rf_start_hz - state.rf_origin_hz) / state.bin_width_hz).round() as i64;
     let night_cov = &night_red.spectrum.coverage;
-    let covered = |j: usize| j >= offset && night_cov.get(j - offset).is_some_and(|&c| c > 0);
-    let integration = |j: usize| rescan_integration_s(&spectrum, &night_red, &plan_info, j);
+    let covered = |j: usize| {
+        let k = first_bin + j as i64 - night_bins.start;
+        k >= 0 && night_cov.get(k as usize).is_some_and(|&c| c > 0)
+    };
+    // A candidate that only the spectrum without the IF-line samples shows (a negative line
+    // sample hid it) has no positive amplitude in the full one: its amplitude there counts.
+    let integration = |j: usize| {
+        let t = rescan_integration_s(&spectrum, &night_red, &plan_info, j);
+        match &without {
+            Some(w) if !t.is_finite() => rescan_integration_s(w, &night_red, &plan_info, j),
+            _ => t,
+        }
+    };
     let match_hz = spectrum.freq_hz(0) * plan_info.halo.mean_beta_sq();
+    let reach = (match_hz / spectrum.bin_width_hz).ceil() as i64;
     let mut tracked = std::mem::take(&mut state.candidates);
-    let explain = |j: usize| line_sources(state, j, (match_hz / spectrum.bin_width_hz).ceil() as usize);
+    let explain = |j: usize| line_sources(&sums, first_bin + j as i64, reach, state.bin_width_hz);
     let view = without.as_ref().map(|without| rescan::LineView { without, explain: &explain });
     let changes = rescan::update(&mut tracked, &spectrum, view.as_ref(), night_index, match_hz, &covered, &integration);
     state.candidates = tracked;
     let reduction = Reduction { spectrum, ..night_red };
     Ok(Update { reduction, night: night_index, changes, match_hz })
+}
+
+/// The grand spectrum an update recomputes (see [`add_reduced_night`]), the same without
+/// the IF-line samples if the span holds any, and the sums the tiles read.
+fn span_of_update(state: &State, stages: &Stages, night: &Reduction, night_bins: Range<i64>) -> Result<(Spectrum, Option<Spectrum>, Sums), StateError> {
+    let grid = state.grid_bins.map(|(a, b)| state.block_of(a)..=state.block_of(b - 1)).ok_or_else(|| refused("the state's grid is empty".into()))?;
+    let changed = stages.tiles_reading(state, night_bins);
+    let mut tiles = (*changed.start() - 1).max(*grid.start())..=(*changed.end() + 1).min(*grid.end());
+    loop {
+        let sums = state.sums(stages.input_of(state, &tiles))?;
+        let step_span_hz = night.spectrum.step_span_hz;
+        let spectrum = stages.grand(state, &tiles, &sums, false, &night.used_steps, step_span_hz).map_err(refused)?;
+        let without = if sums.line_steps.iter().any(|&n| n > 0) {
+            Some(stages.grand(state, &tiles, &sums, true, &night.used_steps, step_span_hz).map_err(refused)?)
+        } else {
+            None
+        };
+        let n = spectrum.grand.len();
+        let runs = spectrum.candidates.iter().chain(without.iter().flat_map(|w| &w.candidates));
+        let (low, high) = runs.fold((false, false), |(low, high), c| (low || c.first_bin == 0, high || c.last_bin + 1 == n));
+        let (low, high) = (low && tiles.start() > grid.start(), high && tiles.end() < grid.end());
+        if !low && !high {
+            return Ok((spectrum, without, sums));
+        }
+        tiles = (*tiles.start() - i64::from(low))..=(*tiles.end() + i64::from(high));
+    }
 }
 
 /// The plan up to and including the combine stage.
@@ -168,37 +203,37 @@ fn up_to_combine(plan: &Plan) -> Result<Plan, StateError> {
     Ok(front)
 }
 
-/// The IF lines with samples in the filter window of an axion line starting at RF bin `j`,
-/// and the number of steps those samples came from (the latest night's, where nights
-/// overlap). The window runs from `reach` bins (the line's mean width)
-/// below to six times that above: a Maxwellian line keeps 99.9 % of its power within 5.4
-/// times its mean (chi-square quantile with 3 degrees of freedom, 16.27 / 3, computed).
-fn line_sources(state: &State, j: usize, reach: usize) -> Option<(Vec<rescan::LineSource>, u32)> {
-    let window = j.saturating_sub(reach)..(j + 6 * reach + 1).min(state.line_steps.len());
+/// The IF lines with samples in the filter window of an axion line starting at grid bin
+/// `bin`, and the number of steps those samples came from (the latest night's, where nights
+/// overlap). The window runs from `reach` bins (the line's mean width) below to six times
+/// that above, within the bins `sums` holds: a Maxwellian line keeps 99.9 % of its power
+/// within 5.4 times its mean (chi-square quantile with 3 degrees of freedom, 16.27 / 3,
+/// computed).
+fn line_sources(sums: &Sums, bin: i64, reach: i64, bin_width_hz: f64) -> Option<(Vec<rescan::LineSource>, u32)> {
     let mut sources: Vec<rescan::LineSource> = Vec::new();
-    // A step is known by its night and first RF bin (the sample's RF bin less its IF bin).
-    let mut steps: Vec<(usize, usize)> = Vec::new();
-    for b in window {
-        if state.line_steps[b] == 0 {
+    // A step is known by its night and first grid bin (the sample's bin less its IF bin).
+    let mut steps: Vec<(usize, i64)> = Vec::new();
+    for b in (bin - reach..bin + 6 * reach + 1).filter_map(|b| sums.index_of(b)) {
+        if sums.line_steps[b] == 0 {
             continue;
         }
-        let (night, if_bin) = (state.line_night[b].max(0) as usize, state.line_if_bin[b].max(0) as usize);
-        let step = (night, b.wrapping_sub(if_bin));
+        let (night, if_bin) = (sums.line_night[b].max(0) as usize, sums.line_if_bin[b].max(0) as usize);
+        let step = (night, sums.first_bin + b as i64 - if_bin as i64);
         if !steps.contains(&step) {
             steps.push(step);
         }
         if !sources.iter().any(|s| s.night == night && s.if_bin == if_bin) {
-            let if_profile_sigma = state.nights.get(night).and_then(|n| n.if_profile_sigma.get(if_bin)).copied().unwrap_or(f64::NAN);
-            sources.push(rescan::LineSource { night, if_bin, if_offset_hz: if_bin as f64 * state.bin_width_hz, if_profile_sigma });
+            let if_profile_sigma = sums.line_if_profile_sigma[b];
+            sources.push(rescan::LineSource { night, if_bin, if_offset_hz: if_bin as f64 * bin_width_hz, if_profile_sigma });
         }
     }
     (!steps.is_empty()).then_some((sources, steps.len() as u32))
 }
 
 /// Adds a night's combined spectrum, and the IF-line samples of its IF profile, to the
-/// state's sums; returns the night's offset in bins.
-fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, night_index: usize) -> Result<usize, StateError> {
-    if state.weight.is_empty() {
+/// state's sums; returns the grid bins the night spans.
+fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, night_index: usize) -> Result<Range<i64>, StateError> {
+    if state.grid_bins.is_none() {
         state.bin_width_hz = sp.bin_width_hz;
         state.rf_origin_hz = sp.rf_start_hz;
     }
@@ -210,72 +245,32 @@ fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, night_index: usize) ->
     if (offset - whole).abs() > 1e-3 {
         return Err(refused(format!("the night's RF grid lies {:.4} bins off the state's grid (origin {} Hz)", offset - whole, state.rf_origin_hz)));
     }
-    if whole < 0.0 {
-        let pad = (-whole) as usize;
-        for v in [&mut state.weight, &mut state.weighted_sum, &mut state.line_weight, &mut state.line_weighted_sum] {
-            v.splice(0..0, std::iter::repeat_n(0.0, pad));
-        }
-        for v in [&mut state.coverage, &mut state.line_steps] {
-            v.splice(0..0, std::iter::repeat_n(0, pad));
-        }
-        for v in [&mut state.line_night, &mut state.line_if_bin] {
-            v.splice(0..0, std::iter::repeat_n(-1, pad));
-        }
-        state.rf_origin_hz = sp.rf_start_hz;
-    }
-    let first = whole.max(0.0) as usize;
-    let needed = first + sp.combined.len();
-    if state.weight.len() < needed {
-        for v in [&mut state.weight, &mut state.weighted_sum, &mut state.line_weight, &mut state.line_weighted_sum] {
-            v.resize(needed, 0.0);
-        }
-        for v in [&mut state.coverage, &mut state.line_steps] {
-            v.resize(needed, 0);
-        }
-        for v in [&mut state.line_night, &mut state.line_if_bin] {
-            v.resize(needed, -1);
-        }
-    }
+    let first = whole as i64;
+    let bins = first..first + sp.combined.len() as i64;
+    let mut sums = state.sums(bins.clone())?;
     for (k, &w) in scan.removed_weight.iter().enumerate().filter(|(k, w)| **w > 0.0 && *k < sp.combined.len()) {
-        state.line_weight[first + k] += w;
-        state.line_weighted_sum[first + k] += scan.removed_weighted_sum[k];
-        state.line_steps[first + k] += 1;
-        state.line_night[first + k] = night_index as i32;
-        state.line_if_bin[first + k] = scan.removed_if_bin[k];
+        let if_bin = scan.removed_if_bin[k];
+        sums.line_weight[k] += w;
+        sums.line_weighted_sum[k] += scan.removed_weighted_sum[k];
+        sums.line_steps[k] += 1;
+        sums.line_night[k] = night_index as i32;
+        sums.line_if_bin[k] = if_bin;
+        sums.line_if_profile_sigma[k] = usize::try_from(if_bin).ok().and_then(|i| scan.if_profile_sigma.get(i)).copied().unwrap_or(f64::NAN);
     }
     for (k, (&c, &s)) in sp.combined.iter().zip(&sp.combined_sigma).enumerate() {
         if c.is_finite() && s.is_finite() && s > 0.0 {
             let w = 1.0 / (s * s);
-            state.weight[first + k] += w;
-            state.weighted_sum[first + k] += w * c;
-            state.coverage[first + k] += sp.coverage[k];
+            sums.weight[k] += w;
+            sums.weighted_sum[k] += w * c;
+            sums.coverage[k] += sp.coverage[k];
         }
     }
-    Ok(first)
-}
-
-/// The combined spectrum of all nights so far; with `without_lines`, of all their samples
-/// except the IF-line ones (bins without such samples are the same, bit for bit).
-fn accumulated(state: &State, step_span_hz: f64, without_lines: bool) -> Spectrum {
-    let n = state.weight.len();
-    let (mut weight, mut weighted_sum, mut coverage) = (state.weight.clone(), state.weighted_sum.clone(), state.coverage.clone());
-    if without_lines {
-        for j in (0..n).filter(|&j| state.line_steps[j] > 0) {
-            let rest = state.weight[j] - state.line_weight[j];
-            // Nothing left (up to rounding) when every sample of the bin was a line sample.
-            (weight[j], weighted_sum[j]) = if rest > 1e-9 * state.weight[j] { (rest, state.weighted_sum[j] - state.line_weighted_sum[j]) } else { (0.0, 0.0) };
-            coverage[j] = state.coverage[j].saturating_sub(state.line_steps[j]);
-        }
-    }
-    Spectrum {
-        rf_start_hz: state.rf_origin_hz,
-        bin_width_hz: state.bin_width_hz,
-        combined: weighted_sum.iter().zip(&weight).map(|(s, w)| if *w > 0.0 { s / w } else { f64::NAN }).collect(),
-        combined_sigma: weight.iter().map(|w| if *w > 0.0 { w.sqrt().recip() } else { f64::INFINITY }).collect(),
-        coverage,
-        step_span_hz,
-        ..Spectrum::default()
-    }
+    state.put_sums(&sums)?;
+    state.grid_bins = Some(match state.grid_bins {
+        Some((a, b)) => (a.min(bins.start), b.max(bins.end)),
+        None => (bins.start, bins.end),
+    });
+    Ok(bins)
 }
 
 /// Integration of one rescan step, tuned onto the candidate (Lorentzian = 1), that brings a

@@ -2,19 +2,26 @@
 //!
 //! Layout (schema version [`STATE_SCHEMA_VERSION`]; a state of another version is refused with
 //! a message naming `state.json` and the field):
-//! - `state.json`: schema version, tool version, config hash, the RF grid (origin, bin width),
-//!   every night added (its run files with SHA-256 and step counts, the steps used, and the
-//!   lines of its IF profile: `if_lines` with `if_bin`, `if_offset_hz`, `if_profile_sigma`,
-//!   `n_steps`), the tracked candidates with their class (`new`, `persists`, `cleared`,
-//!   `interference`), evidence text and, for interference, `interference` (the IF lines
-//!   behind it, the steps, the grand value without them), the `limit` range of the latest
-//!   calibrated update (or null), and the generation of the current sums file;
-//! - `sums-<generation>.h5`: per RF bin the maximum-likelihood sums of all nights,
-//!   `weight` = sum 1/sigma^2, `weighted_sum` = sum R/sigma^2 (reference-axion units), `coverage`;
-//!   the part of those sums that comes from IF-line samples, `line_weight`,
-//!   `line_weighted_sum`, `line_steps`, with `line_night` and `line_if_bin` of the latest such
-//!   sample (-1 = none); and per night a group `night-<index>` with its IF profile,
-//!   `if_profile_sigma` (excess scatter per IF bin, normal sigma) and `if_steps`.
+//! - `state.json`: schema version, tool version, config hash, the RF grid (origin: the first
+//!   night's lowest bin, bin width, `block_bins`, `grid_bins` spanned so far), the stored
+//!   `blocks` (index, the generation that wrote it, covered bins), every night added (its run
+//!   files with SHA-256 and step counts, the steps used, and the lines of its IF profile:
+//!   `if_lines` with `if_bin`, `if_offset_hz`, `if_profile_sigma`, `n_steps`), the tracked
+//!   candidates with their class (`new`, `persists`, `cleared`, `interference`), evidence text
+//!   and, for interference, `interference` (the IF lines behind it, the steps, the grand value
+//!   without them), the `limit` range of the latest calibrated update (or null), and the
+//!   generation (updates saved);
+//! - `blocks/b<index>-g<generation>.h5`: the sums of grid bins `index * block_bins ..`
+//!   `(index + 1) * block_bins` ([`block_file`]): per RF bin the maximum-likelihood sums of all
+//!   nights, `weight` = sum 1/sigma^2, `weighted_sum` = sum R/sigma^2 (reference-axion units),
+//!   `coverage`, and, for the bins that hold IF-line samples, the part of those sums that comes
+//!   from them with the night, IF bin and IF-profile significance of the latest such sample;
+//! - `nights/night-<index>.h5`: each night's IF profile ([`profile_file`]), written once.
+//!
+//! An update costs in proportion to the night's RF span, not the campaign's: it reads and
+//! rewrites only the blocks the night covers, and recomputes the grand spectrum only on the
+//! tiles that read those blocks ([`tiles`]); the rest of the grand spectrum and the candidates
+//! there are unchanged because their data are.
 //!
 //! Interference: see [`interference`] for the IF profile. Candidates are judged on the
 //! spectrum with and without the IF-line samples; one that is above threshold only with them
@@ -22,9 +29,11 @@
 //! steps as evidence. It needs no rescan and does not block the limit: the spectrum without
 //! those samples is below threshold there.
 //!
-//! An update writes a new sums file, then a new `state.json` (each under a temporary name,
-//! renamed into place); the rename of `state.json` is the commit. A run killed at any point
-//! leaves the previous `state.json` and the sums file it names untouched.
+//! An update writes the blocks it changed under its new generation and the new night's IF
+//! profile (each under a temporary name, renamed into place), then a new `state.json`; the
+//! rename of `state.json` is the commit, after which the files it no longer names are
+//! removed. A run killed at any point leaves the previous `state.json` and the files it names
+//! untouched.
 //!
 //! The common gain shape is formed per night (the receiver chain is re-tuned between nights),
 //! so the steps of one night are combined with each other first, and nights are then added in
@@ -32,16 +41,24 @@
 //! nightly updates, so the two give bit-identical grand spectra.
 
 mod accumulate;
+mod block_file;
+mod export;
 pub mod interference;
+mod profile_file;
 mod rescan;
 mod status;
 mod store;
+mod sums;
+mod tiles;
 
 pub use accumulate::{RESCAN_TARGET_SNR, ReducedNight, Update, add_nights, add_reduced_night, plan_hash, reduce_night};
+pub use export::export_grand;
 pub use interference::{IF_LINE_SIGMA, IfLine, IfProfile, IfScan};
+pub use profile_file::IfProfileRecord;
 pub use rescan::{Class, InterferenceEvidence, LineSource, TrackedCandidate};
 pub use status::{CandidateSummary, ClassCounts, NightSummary, StatusSummary};
-pub use store::{LimitRange, State, StateError};
+pub use store::{BLOCK_BINS, BlockRecord, FileRecord, LimitRange, NightRecord, State, StateError};
+pub use sums::Sums;
 
 /// Version of the state layout this build reads and writes.
-pub const STATE_SCHEMA_VERSION: u32 = 2;
+pub const STATE_SCHEMA_VERSION: u32 = 3;

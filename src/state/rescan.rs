@@ -42,10 +42,18 @@ pub struct TrackedCandidate {
     pub revisit_cavity_hz: f64,
     /// Integration time of one rescan step that reaches the target SNR on a signal of the
     /// candidate's present (observed, so already attenuated) amplitude, s (0 for
-    /// interference: no rescan needed).
+    /// interference: no rescan needed; infinite, null in JSON, when the amplitude is not
+    /// positive).
+    #[serde(deserialize_with = "infinite_if_null")]
     pub rescan_integration_s: f64,
     /// For class interference: the IF lines that explain it.
     pub interference: Option<InterferenceEvidence>,
+}
+
+/// A number that JSON holds as null when it is not finite (serde_json writes NaN and
+/// infinities as null), read back as infinity.
+fn infinite_if_null<'de, D: serde::Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+    Ok(Option::<f64>::deserialize(d)?.unwrap_or(f64::INFINITY))
 }
 
 /// Why a candidate is interference.

@@ -9,7 +9,7 @@ use serde::Serialize;
 pub struct StatusSummary {
     /// Layout version of the state read.
     pub schema_version: u32,
-    /// Generation of its sums file.
+    /// Number of updates saved.
     pub generation: u64,
     /// Nights in order, with their files.
     pub nights: Vec<NightSummary>,
@@ -80,7 +80,6 @@ impl StatusSummary {
     /// Summarises a loaded state.
     pub fn of(st: &State) -> Self {
         let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
-        let n_rf = st.coverage.len();
         Self {
             schema_version: st.schema_version,
             generation: st.generation,
@@ -97,8 +96,8 @@ impl StatusSummary {
                 })
                 .collect(),
             bin_width_hz: st.bin_width_hz,
-            rf_span_hz: (n_rf > 0).then(|| (st.rf_origin_hz, st.rf_origin_hz + (n_rf - 1) as f64 * st.bin_width_hz)),
-            covered_hz: st.coverage.iter().filter(|&&c| c > 0).count() as f64 * st.bin_width_hz,
+            rf_span_hz: st.rf_span_hz(),
+            covered_hz: st.covered_bins() as f64 * st.bin_width_hz,
             candidates_by_class: ClassCounts {
                 new: count(Class::New),
                 persists: count(Class::Persists),

@@ -1,11 +1,14 @@
-//! Loading and saving the state folder.
+//! Loading and saving the state folder: `state.json`, the blocks of the sums, the nights' IF
+//! profiles.
 
 use super::interference::IfLine;
-use super::{STATE_SCHEMA_VERSION, TrackedCandidate};
-use hdf5::types::VarLenUnicode;
+use super::profile_file::{self, IfProfileRecord};
+use super::sums::Sums;
+use super::{STATE_SCHEMA_VERSION, TrackedCandidate, block_file};
 use serde::{Deserialize, Serialize};
+use std::collections::{BTreeMap, BTreeSet};
+use std::ops::Range;
 use std::path::{Path, PathBuf};
-use std::str::FromStr;
 
 /// A run file included in the state.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -18,7 +21,8 @@ pub struct FileRecord {
     pub n_steps: usize,
 }
 
-/// One night added to the state.
+/// One night added to the state (its IF profile is kept in `nights/night-<index>.h5`, read
+/// with [`State::if_profile`]).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct NightRecord {
     /// Position in the sequence of nights (0 = first).
@@ -29,12 +33,6 @@ pub struct NightRecord {
     pub n_steps_used: usize,
     /// Lines found in the night's IF profile.
     pub if_lines: Vec<IfLine>,
-    /// The night's IF profile: excess scatter per IF bin, normal sigma (NaN = too few steps).
-    #[serde(skip)]
-    pub if_profile_sigma: Vec<f64>,
-    /// Steps with a valid sample per IF bin.
-    #[serde(skip)]
-    pub if_steps: Vec<u32>,
 }
 
 impl NightRecord {
@@ -44,7 +42,22 @@ impl NightRecord {
     }
 }
 
-/// The persistent state (the content of `state.json` plus the sums).
+/// RF bins per block of a new state's sums: 6.5536 MHz at 100 Hz bins, 1.3 MB on disk.
+pub const BLOCK_BINS: usize = 65536;
+
+/// One stored block of the sums: `blocks/b<index>-g<generation>.h5`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BlockRecord {
+    /// Block index: the block holds grid bins `index * block_bins ..` `(index + 1) * block_bins`.
+    pub index: i64,
+    /// Update (state generation) that last wrote it.
+    pub generation: u64,
+    /// Bins of the block with at least one contributing step.
+    pub covered_bins: usize,
+}
+
+/// The persistent state: the content of `state.json`, with the blocks of the sums read from
+/// the folder as they are needed and the blocks an update changed held until it is saved.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct State {
     /// Layout version.
@@ -55,41 +68,31 @@ pub struct State {
     pub config_hash: String,
     /// RF bin width, Hz.
     pub bin_width_hz: f64,
-    /// Bin-centre frequency of RF bin 0, Hz.
+    /// Bin-centre frequency of grid bin 0 (the first night's lowest bin), Hz.
     pub rf_origin_hz: f64,
+    /// RF bins per block.
+    pub block_bins: usize,
+    /// Grid bins spanned by the nights so far, [first, end) (null when empty).
+    pub grid_bins: Option<(i64, i64)>,
+    /// The stored blocks, by index.
+    pub blocks: Vec<BlockRecord>,
     /// Nights in order.
     pub nights: Vec<NightRecord>,
     /// Candidates ever flagged, with their class.
     pub candidates: Vec<TrackedCandidate>,
-    /// Generation of the sums file (`sums-<generation>.h5`).
+    /// Number of updates saved (each writes the blocks it changed under this generation).
     pub generation: u64,
     /// The limit range of the latest update made with a calibration, if any.
     pub limit: Option<LimitRange>,
-    /// Sum of 1/sigma^2 per RF bin.
+    /// Folder the stored blocks are read from (None for a state not yet saved).
     #[serde(skip)]
-    pub weight: Vec<f64>,
-    /// Sum of R/sigma^2 per RF bin.
+    source: Option<PathBuf>,
+    /// Blocks changed since the state was loaded or saved, by index.
     #[serde(skip)]
-    pub weighted_sum: Vec<f64>,
-    /// Steps contributing per RF bin.
+    changed: BTreeMap<i64, Sums>,
+    /// IF profiles of the nights added since then, by night.
     #[serde(skip)]
-    pub coverage: Vec<u32>,
-    /// Per RF bin: sum of 1/sigma^2 of the samples set aside as IF-line samples (they are
-    /// included in `weight`).
-    #[serde(skip)]
-    pub line_weight: Vec<f64>,
-    /// Per RF bin: sum of R/sigma^2 of those samples (included in `weighted_sum`).
-    #[serde(skip)]
-    pub line_weighted_sum: Vec<f64>,
-    /// Per RF bin: number of those samples.
-    #[serde(skip)]
-    pub line_steps: Vec<u32>,
-    /// Per RF bin: night of the latest such sample (-1 = none).
-    #[serde(skip)]
-    pub line_night: Vec<i32>,
-    /// Per RF bin: IF bin of the latest such sample (-1 = none).
-    #[serde(skip)]
-    pub line_if_bin: Vec<i32>,
+    new_profiles: BTreeMap<usize, IfProfileRecord>,
 }
 
 /// The range of the per-bin limit on |g_gamma| relative to KSVZ over the bins that are
@@ -126,35 +129,58 @@ pub enum StateError {
     Refused(String),
 }
 
-fn io(path: &Path, e: impl std::fmt::Display) -> StateError {
+pub(super) fn io(path: &Path, e: impl std::fmt::Display) -> StateError {
     StateError::Io { path: path.to_path_buf(), message: e.to_string() }
 }
 
+fn block_name(index: i64, generation: u64) -> String {
+    format!("b{index}-g{generation}.h5")
+}
+
+fn night_name(index: usize) -> String {
+    format!("night-{index}.h5")
+}
+
+/// Writes a file under a temporary name in its folder, then renames it into place.
+fn write_renamed(path: &Path, write: impl FnOnce(&Path) -> Result<(), StateError>) -> Result<(), StateError> {
+    let name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+    let tmp = path.with_file_name(format!(".tmp.{name}"));
+    write(&tmp)?;
+    std::fs::rename(&tmp, path).map_err(|e| io(path, e))
+}
+
 impl State {
-    /// An empty state for a config.
+    /// An empty state for a config, with blocks of [`BLOCK_BINS`].
     pub fn new(config_hash: String) -> Self {
+        Self::with_block_bins(config_hash, BLOCK_BINS)
+    }
+
+    /// An empty state for a config whose sums are stored in blocks of `block_bins` RF bins
+    /// (at least 1). The block size fixes which bins an update recomputes together, and so
+    /// enters the grand spectrum's rounding: states with different block sizes agree to
+    /// rounding, not bit for bit.
+    pub fn with_block_bins(config_hash: String, block_bins: usize) -> Self {
         Self {
             schema_version: STATE_SCHEMA_VERSION,
             tool_version: env!("CARGO_PKG_VERSION").into(),
             config_hash,
             bin_width_hz: 0.0,
             rf_origin_hz: 0.0,
+            block_bins: block_bins.max(1),
+            grid_bins: None,
+            blocks: Vec::new(),
             nights: Vec::new(),
             candidates: Vec::new(),
             generation: 0,
             limit: None,
-            weight: Vec::new(),
-            weighted_sum: Vec::new(),
-            coverage: Vec::new(),
-            line_weight: Vec::new(),
-            line_weighted_sum: Vec::new(),
-            line_steps: Vec::new(),
-            line_night: Vec::new(),
-            line_if_bin: Vec::new(),
+            source: None,
+            changed: BTreeMap::new(),
+            new_profiles: BTreeMap::new(),
         }
     }
 
-    /// Loads the state in `dir`, or `None` if the folder holds none yet.
+    /// Loads the index of the state in `dir` (blocks are read when needed), or `None` if the
+    /// folder holds none yet.
     pub fn load(dir: &Path) -> Result<Option<Self>, StateError> {
         let index = dir.join("state.json");
         if !index.exists() {
@@ -164,114 +190,169 @@ impl State {
         let version: serde_json::Value = serde_json::from_str(&text).map_err(|e| io(&index, format!("not a state index: {e}")))?;
         match version.get("schema_version").and_then(|v| v.as_u64()) {
             Some(v) if v == u64::from(STATE_SCHEMA_VERSION) => {}
-            Some(v) => return Err(io(&index, format!("field `schema_version` is {v}; this build reads version {STATE_SCHEMA_VERSION}"))),
+            Some(v) => {
+                return Err(io(
+                    &index,
+                    format!(
+                        "field `schema_version` is {v}; this build reads version {STATE_SCHEMA_VERSION} (start a new state folder and add the nights again)"
+                    ),
+                ));
+            }
             None => return Err(io(&index, "field `schema_version` is missing")),
         }
         let mut state: State = serde_json::from_str(&text).map_err(|e| io(&index, format!("not a state index: {e}")))?;
-        let sums = dir.join(state.sums_name());
-        let file = hdf5::File::open(&sums).map_err(|e| io(&sums, e))?;
-        let read = |name: &str| file.dataset(name).and_then(|d| d.read_raw::<f64>()).map_err(|e| io(&sums, format!("dataset `{name}`: {e}")));
-        let read_u32 = |name: &str| file.dataset(name).and_then(|d| d.read_raw::<u32>()).map_err(|e| io(&sums, format!("dataset `{name}`: {e}")));
-        let read_i32 = |name: &str| file.dataset(name).and_then(|d| d.read_raw::<i32>()).map_err(|e| io(&sums, format!("dataset `{name}`: {e}")));
-        state.weight = read("weight")?;
-        state.weighted_sum = read("weighted_sum")?;
-        state.coverage = read_u32("coverage")?;
-        state.line_weight = read("line_weight")?;
-        state.line_weighted_sum = read("line_weighted_sum")?;
-        state.line_steps = read_u32("line_steps")?;
-        state.line_night = read_i32("line_night")?;
-        state.line_if_bin = read_i32("line_if_bin")?;
-        let n = state.weight.len();
-        let lengths = [
-            state.weighted_sum.len(),
-            state.coverage.len(),
-            state.line_weight.len(),
-            state.line_weighted_sum.len(),
-            state.line_steps.len(),
-            state.line_night.len(),
-            state.line_if_bin.len(),
-        ];
-        if lengths.iter().any(|&l| l != n) {
-            return Err(io(&sums, format!("the RF datasets differ in length ({n} in `weight`, {lengths:?} in the others)")));
+        if state.block_bins == 0 {
+            return Err(io(&index, "field `block_bins` must be at least 1"));
         }
-        for night in &mut state.nights {
-            let i = night.index;
-            night.if_profile_sigma = read(&format!("night-{i}/if_profile_sigma"))?;
-            night.if_steps = read_u32(&format!("night-{i}/if_steps"))?;
-            if night.if_steps.len() != night.if_profile_sigma.len() {
-                return Err(io(&sums, format!("datasets `night-{i}/if_profile_sigma` and `night-{i}/if_steps` differ in length")));
-            }
+        if state.blocks.windows(2).any(|w| w[0].index >= w[1].index) {
+            return Err(io(&index, "field `blocks` must list each block once, in increasing `index`"));
         }
+        state.source = Some(dir.to_path_buf());
         Ok(Some(state))
     }
 
-    fn sums_name(&self) -> String {
-        format!("sums-{}.h5", self.generation)
+    /// Grid bins `block * block_bins ..` `(block + 1) * block_bins`.
+    pub fn block_range(&self, block: i64) -> Range<i64> {
+        let n = self.block_bins as i64;
+        block * n..(block + 1) * n
     }
 
-    /// Saves as the next generation: sums first, then the index (the commit), then removes
-    /// the previous sums file.
-    pub fn save(&mut self, dir: &Path) -> Result<(), StateError> {
-        std::fs::create_dir_all(dir).map_err(|e| io(dir, e))?;
-        let previous = dir.join(self.sums_name());
-        self.generation += 1;
-        let sums = dir.join(self.sums_name());
-        let tmp = dir.join(format!(".tmp.{}", self.sums_name()));
-        {
-            let file = hdf5::File::create(&tmp).map_err(|e| io(&tmp, e))?;
-            let text = |s: &str| VarLenUnicode::from_str(s).unwrap_or_default();
-            let write = |name: &str, units: &str, description: &str, f: &dyn Fn(&str) -> hdf5::Result<hdf5::Dataset>| -> hdf5::Result<()> {
-                let ds = f(name)?;
-                ds.new_attr::<VarLenUnicode>().create("units")?.write_scalar(&text(units))?;
-                ds.new_attr::<VarLenUnicode>().create("description")?.write_scalar(&text(description))
-            };
-            write("weight", "reference-axion power^-2", "sum over steps of 1/sigma^2", &|n| file.new_dataset_builder().with_data(&self.weight).create(n))
-                .map_err(|e| io(&tmp, e))?;
-            write("weighted_sum", "reference-axion power^-1", "sum over steps of R/sigma^2", &|n| {
-                file.new_dataset_builder().with_data(&self.weighted_sum).create(n)
-            })
-            .map_err(|e| io(&tmp, e))?;
-            write("coverage", "steps", "steps contributing to the bin", &|n| file.new_dataset_builder().with_data(&self.coverage).create(n))
-                .map_err(|e| io(&tmp, e))?;
-            write("line_weight", "reference-axion power^-2", "sum of 1/sigma^2 of the IF-line samples (included in weight)", &|n| {
-                file.new_dataset_builder().with_data(&self.line_weight).create(n)
-            })
-            .map_err(|e| io(&tmp, e))?;
-            write("line_weighted_sum", "reference-axion power^-1", "sum of R/sigma^2 of the IF-line samples (included in weighted_sum)", &|n| {
-                file.new_dataset_builder().with_data(&self.line_weighted_sum).create(n)
-            })
-            .map_err(|e| io(&tmp, e))?;
-            write("line_steps", "steps", "IF-line samples in the bin", &|n| file.new_dataset_builder().with_data(&self.line_steps).create(n))
-                .map_err(|e| io(&tmp, e))?;
-            write("line_night", "night index", "night of the latest IF-line sample (-1 = none)", &|n| {
-                file.new_dataset_builder().with_data(&self.line_night).create(n)
-            })
-            .map_err(|e| io(&tmp, e))?;
-            write("line_if_bin", "IF bin", "IF bin of the latest IF-line sample (-1 = none)", &|n| {
-                file.new_dataset_builder().with_data(&self.line_if_bin).create(n)
-            })
-            .map_err(|e| io(&tmp, e))?;
-            for night in &self.nights {
-                let group = file.create_group(&format!("night-{}", night.index)).map_err(|e| io(&tmp, e))?;
-                write("if_profile_sigma", "normal sigma", "excess scatter of the night's steps per IF bin (NaN = fewer than 3 steps)", &|n| {
-                    group.new_dataset_builder().with_data(&night.if_profile_sigma).create(n)
-                })
-                .map_err(|e| io(&tmp, e))?;
-                write("if_steps", "steps", "steps with a valid sample per IF bin", &|n| group.new_dataset_builder().with_data(&night.if_steps).create(n))
-                    .map_err(|e| io(&tmp, e))?;
-            }
-            file.close().map_err(|e| io(&tmp, e))?;
+    /// The block holding grid bin `bin`.
+    pub fn block_of(&self, bin: i64) -> i64 {
+        bin.div_euclid(self.block_bins as i64)
+    }
+
+    /// Bin-centre RF frequency of grid bin `bin`, Hz.
+    pub fn freq_hz(&self, bin: i64) -> f64 {
+        self.rf_origin_hz + bin as f64 * self.bin_width_hz
+    }
+
+    /// Lowest and highest bin-centre RF frequency of the grid, Hz (None when empty).
+    pub fn rf_span_hz(&self) -> Option<(f64, f64)> {
+        self.grid_bins.map(|(a, b)| (self.freq_hz(a), self.freq_hz(b - 1)))
+    }
+
+    /// Bins with at least one contributing step, over the whole grid.
+    pub fn covered_bins(&self) -> usize {
+        let stored: usize = self.blocks.iter().filter(|b| !self.changed.contains_key(&b.index)).map(|b| b.covered_bins).sum();
+        stored + self.changed.values().map(Sums::covered_bins).sum::<usize>()
+    }
+
+    /// One block of the sums: as changed by an update not yet saved, as stored, or empty.
+    pub fn block(&self, index: i64) -> Result<Sums, StateError> {
+        let range = self.block_range(index);
+        if let Some(sums) = self.changed.get(&index) {
+            return Ok(sums.clone());
         }
-        std::fs::rename(&tmp, &sums).map_err(|e| io(&sums, e))?;
-        let index = dir.join("state.json");
-        let tmp_index = dir.join(".tmp.state.json");
-        let json = serde_json::to_string_pretty(self).map_err(|e| io(&index, e))?;
-        std::fs::write(&tmp_index, json).map_err(|e| io(&tmp_index, e))?;
-        std::fs::rename(&tmp_index, &index).map_err(|e| io(&index, e))?;
-        if previous != sums {
-            let _ = std::fs::remove_file(previous);
+        match (&self.source, self.blocks.binary_search_by_key(&index, |b| b.index)) {
+            (Some(dir), Ok(i)) => block_file::read(&dir.join("blocks").join(block_name(index, self.blocks[i].generation)), range.start, self.block_bins),
+            _ => Ok(Sums::empty(range.start, self.block_bins)),
+        }
+    }
+
+    /// The sums over grid bins `bins`, read block by block.
+    pub fn sums(&self, bins: Range<i64>) -> Result<Sums, StateError> {
+        let mut sums = Sums::empty(bins.start, (bins.end - bins.start).max(0) as usize);
+        if sums.is_empty() {
+            return Ok(sums);
+        }
+        for index in self.block_of(bins.start)..=self.block_of(bins.end - 1) {
+            sums.copy_overlap(&self.block(index)?);
+        }
+        Ok(sums)
+    }
+
+    /// Replaces the sums over `sums.bins()`; the blocks touched are held until saved.
+    pub(super) fn put_sums(&mut self, sums: &Sums) -> Result<(), StateError> {
+        if sums.is_empty() {
+            return Ok(());
+        }
+        for index in self.block_of(sums.first_bin)..=self.block_of(sums.first_bin + sums.len() as i64 - 1) {
+            let mut block = self.block(index)?;
+            block.copy_overlap(sums);
+            self.changed.insert(index, block);
         }
         Ok(())
+    }
+
+    /// Records the IF profile of a night being added.
+    pub(super) fn put_profile(&mut self, night: usize, profile: IfProfileRecord) {
+        self.new_profiles.insert(night, profile);
+    }
+
+    /// A night's IF profile.
+    pub fn if_profile(&self, night: usize) -> Result<IfProfileRecord, StateError> {
+        if let Some(p) = self.new_profiles.get(&night) {
+            return Ok(p.clone());
+        }
+        match &self.source {
+            Some(dir) if night < self.nights.len() => profile_file::read(&dir.join("nights").join(night_name(night))),
+            _ => Err(StateError::Refused(format!("the state holds no night {night}"))),
+        }
+    }
+
+    /// Saves as the next generation: the changed blocks and the new nights' IF profiles
+    /// under new names, then `state.json` (the commit, a rename), then removes the files
+    /// the new index no longer names. A run killed at any point leaves either the previous
+    /// `state.json` with every file it names, or the new one with every file it names.
+    pub fn save(&mut self, dir: &Path) -> Result<(), StateError> {
+        let (blocks_dir, nights_dir) = (dir.join("blocks"), dir.join("nights"));
+        for d in [&blocks_dir, &nights_dir] {
+            std::fs::create_dir_all(d).map_err(|e| io(d, e))?;
+        }
+        let generation = self.generation + 1;
+        let same_folder = |a: &Path| a.canonicalize().ok() == dir.canonicalize().ok();
+        // A state saved to another folder takes its unchanged blocks and profiles along.
+        if let Some(source) = self.source.clone().filter(|s| !same_folder(s)) {
+            for b in self.blocks.iter().filter(|b| !self.changed.contains_key(&b.index)) {
+                let name = block_name(b.index, b.generation);
+                let from = source.join("blocks").join(&name);
+                write_renamed(&blocks_dir.join(&name), |tmp| std::fs::copy(&from, tmp).map(|_| ()).map_err(|e| io(&from, e)))?;
+            }
+            for n in (0..self.nights.len()).filter(|n| !self.new_profiles.contains_key(n)) {
+                let from = source.join("nights").join(night_name(n));
+                write_renamed(&nights_dir.join(night_name(n)), |tmp| std::fs::copy(&from, tmp).map(|_| ()).map_err(|e| io(&from, e)))?;
+            }
+        }
+        let mut records: BTreeMap<i64, BlockRecord> = self.blocks.iter().map(|b| (b.index, b.clone())).collect();
+        for (&index, sums) in &self.changed {
+            write_renamed(&blocks_dir.join(block_name(index, generation)), |tmp| block_file::write(tmp, sums))?;
+            records.insert(index, BlockRecord { index, generation, covered_bins: sums.covered_bins() });
+        }
+        for (&night, profile) in &self.new_profiles {
+            write_renamed(&nights_dir.join(night_name(night)), |tmp| profile_file::write(tmp, profile))?;
+        }
+        let previous = (std::mem::replace(&mut self.blocks, records.into_values().collect()), self.generation);
+        self.generation = generation;
+        let index = dir.join("state.json");
+        let committed = serde_json::to_string_pretty(self)
+            .map_err(|e| io(&index, e))
+            .and_then(|json| write_renamed(&index, |tmp| std::fs::write(tmp, json).map_err(|e| io(tmp, e))));
+        if let Err(e) = committed {
+            (self.blocks, self.generation) = previous;
+            return Err(e);
+        }
+        self.changed.clear();
+        self.new_profiles.clear();
+        self.source = Some(dir.to_path_buf());
+        self.remove_unnamed(&blocks_dir, &nights_dir);
+        Ok(())
+    }
+
+    /// Removes the files of the folder that `state.json` does not name: blocks replaced by
+    /// this update, and what a killed update left behind. Failures are harmless (the next
+    /// save tries again).
+    fn remove_unnamed(&self, blocks_dir: &Path, nights_dir: &Path) {
+        let named: BTreeSet<String> = self.blocks.iter().map(|b| block_name(b.index, b.generation)).collect();
+        let nights: BTreeSet<String> = (0..self.nights.len()).map(night_name).collect();
+        for (folder, keep) in [(blocks_dir, &named), (nights_dir, &nights)] {
+            let Ok(entries) = std::fs::read_dir(folder) else { continue };
+            for entry in entries.flatten() {
+                if !keep.contains(&entry.file_name().to_string_lossy().into_owned()) {
+                    let _ = std::fs::remove_file(entry.path());
+                }
+            }
+        }
     }
 
     /// The night and file that already hold a file with this content hash, if any.
