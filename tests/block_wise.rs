@@ -12,7 +12,7 @@ mod common;
 use axsift::config;
 use axsift::pipeline::{self, Reduction};
 use axsift::sim::{self, Axion, Scenario};
-use axsift::stage::{BLOCK_BINS, Block, Candidate};
+use axsift::stage::{BLOCK_BINS, Block, Candidate, Spectrum};
 use common::{PIPELINE, null_scenario};
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -56,31 +56,43 @@ fn simulate(dir: &Path) -> PathBuf {
     path
 }
 
-/// The owned bins of every block, concatenated in grid order.
+/// The owned bins of every block, concatenated in grid order (in a spectrum's per-bin arrays).
 #[derive(Default)]
 struct Gathered {
-    combined: Vec<f64>,
-    combined_sigma: Vec<f64>,
-    amplitude: Vec<f64>,
-    sigma_a: Vec<f64>,
-    predicted_spread: Vec<f64>,
-    grand: Vec<f64>,
+    sp: Spectrum,
     blocks: usize,
 }
 
 impl Gathered {
     fn take(&mut self, b: &Block) -> Result<Option<()>, String> {
-        assert_eq!(b.first_bin, self.grand.len(), "blocks come in grid order, without gaps");
+        let sp = &mut self.sp;
+        assert_eq!(b.first_bin, sp.grand.len(), "blocks come in grid order, without gaps");
         let n = b.len;
-        self.combined.extend_from_slice(&b.combined[..n]);
-        self.combined_sigma.extend_from_slice(&b.combined_sigma[..n]);
-        self.amplitude.extend_from_slice(&b.amplitude[..n]);
-        self.sigma_a.extend_from_slice(&b.sigma_a[..n]);
-        self.predicted_spread.extend_from_slice(&b.predicted_spread[..n]);
-        self.grand.extend_from_slice(&b.grand[..n]);
+        sp.combined.extend_from_slice(&b.combined[..n]);
+        sp.combined_sigma.extend_from_slice(&b.combined_sigma[..n]);
+        sp.amplitude.extend_from_slice(&b.amplitude[..n]);
+        sp.sigma_a.extend_from_slice(&b.sigma_a[..n]);
+        sp.predicted_spread.extend_from_slice(&b.predicted_spread[..n]);
+        sp.grand.extend_from_slice(&b.grand[..n]);
         self.blocks += 1;
         Ok(None)
     }
+
+    fn columns(&self) -> [(&'static str, &[f64]); 6] {
+        spectrum_columns(&self.sp)
+    }
+}
+
+/// The per-bin arrays of a spectrum, named as the datasets of results.h5.
+fn spectrum_columns(sp: &Spectrum) -> [(&'static str, &[f64]); 6] {
+    [
+        ("combined", &sp.combined),
+        ("combined_sigma", &sp.combined_sigma),
+        ("amplitude", &sp.amplitude),
+        ("sigma_a", &sp.sigma_a),
+        ("predicted_spread", &sp.predicted_spread),
+        ("grand", &sp.grand),
+    ]
 }
 
 fn bits(v: &[f64]) -> Vec<u64> {
@@ -139,14 +151,7 @@ fn block_wise_night_equals_the_in_memory_night() {
     assert_eq!(sp.grand.len(), grid, "the grid spans the scan");
     assert_eq!(got.blocks, grid.div_ceil(BLOCK_BINS));
     assert!(got.blocks >= 4, "the night spans several blocks ({})", got.blocks);
-    for (name, a, b) in [
-        ("combined", &sp.combined, &got.combined),
-        ("combined_sigma", &sp.combined_sigma, &got.combined_sigma),
-        ("amplitude", &sp.amplitude, &got.amplitude),
-        ("sigma_a", &sp.sigma_a, &got.sigma_a),
-        ("predicted_spread", &sp.predicted_spread, &got.predicted_spread),
-        ("grand", &sp.grand, &got.grand),
-    ] {
+    for ((name, a), (_, b)) in spectrum_columns(sp).into_iter().zip(got.columns()) {
         assert_eq!(a.len(), b.len(), "{name}: bins");
         if let Some(j) = bits(a).iter().zip(bits(b)).position(|(x, y)| *x != y) {
             panic!("{name} differs first at grid bin {j} (block {}): in memory {}, block-wise {}", j / BLOCK_BINS, a[j], b[j]);
@@ -195,14 +200,7 @@ fn results_file_rounds_each_value_once_to_single_precision() {
     let axis = |name: &str| file.attr(name).unwrap().read_scalar::<f64>().unwrap();
     assert_eq!((axis("rf_start_hz"), axis("bin_width_hz")), (sp.rf_start_hz, sp.bin_width_hz), "frequency axis");
     assert_eq!(file.attr("n_rf_bins").unwrap().read_scalar::<u64>().unwrap(), sp.grand.len() as u64);
-    for (name, exact) in [
-        ("combined", &sp.combined),
-        ("combined_sigma", &sp.combined_sigma),
-        ("amplitude", &sp.amplitude),
-        ("sigma_a", &sp.sigma_a),
-        ("predicted_spread", &sp.predicted_spread),
-        ("grand", &sp.grand),
-    ] {
+    for (name, exact) in spectrum_columns(sp) {
         let ds = file.dataset(name).unwrap();
         assert_eq!(ds.dtype().unwrap().size(), 4, "{name} is stored in single precision");
         let stored: Vec<f32> = ds.read_raw().unwrap();
@@ -252,14 +250,7 @@ fn block_wise_night_is_bit_identical_across_thread_counts() {
     };
     let ((one_candidates, one), (two_candidates, two)) = (in_pool(1), in_pool(2));
     assert_eq!(one.blocks, two.blocks);
-    for (name, a, b) in [
-        ("combined", &one.combined, &two.combined),
-        ("combined_sigma", &one.combined_sigma, &two.combined_sigma),
-        ("amplitude", &one.amplitude, &two.amplitude),
-        ("sigma_a", &one.sigma_a, &two.sigma_a),
-        ("predicted_spread", &one.predicted_spread, &two.predicted_spread),
-        ("grand", &one.grand, &two.grand),
-    ] {
+    for ((name, a), (_, b)) in one.columns().into_iter().zip(two.columns()) {
         assert!(bits(a) == bits(b), "{name} differs between 1 and 2 threads");
     }
     assert!(!one_candidates.is_empty());
