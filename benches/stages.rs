@@ -27,9 +27,16 @@ const START_HZ: f64 = 5.2e9;
 const BIN_HZ: f64 = 100.0;
 
 fn night() -> NightInfo {
-    let header = RunHeader { bin_width_hz: BIN_HZ, magnet_field_t: 8.0, cavity_volume_m3: 0.02, form_factor: 0.45, run_label: "bench".into() };
+    let header = RunHeader {
+        bin_width_hz: BIN_HZ,
+        magnet_field_t: 8.0,
+        cavity_volume_m3: 0.02,
+        form_factor: 0.45,
+        run_label: "bench".into(),
+        bin_correlation: Vec::new(),
+    };
     let span = (START_HZ, START_HZ + ((BATCH_STEPS - 1) * STEP_BINS + N_BINS - 1) as f64 * BIN_HZ);
-    NightInfo { bin_width_hz: BIN_HZ, n_bins: N_BINS, rf_span_hz: span, headers: vec![header] }
+    NightInfo { bin_width_hz: BIN_HZ, n_bins: N_BINS, rf_span_hz: span, headers: vec![header], bin_correlation: Vec::new() }
 }
 
 /// A raw step: unit power with a 5 % ripple and radiometer noise of 20000 averages.

@@ -108,6 +108,15 @@ pub fn open_night(paths: &[PathBuf]) -> Result<(Vec<RunReader>, NightInfo), Redu
                 bw
             )));
         }
+        if r.header().bin_correlation != first.header().bin_correlation {
+            return Err(ReduceError::Night(format!(
+                "{}: field `bin_correlation` = {:?} differs from {} ({:?}); files of one reduction must come from the same spectrum estimator (window and overlap)",
+                r.path().display(),
+                r.header().bin_correlation,
+                first.path().display(),
+                first.header().bin_correlation
+            )));
+        }
         if r.n_bins() != n_bins {
             return Err(ReduceError::Night(format!(
                 "{}: field `spectra` has {} bins per step, {} has {}; files of one reduction must share the number of bins",
@@ -149,8 +158,13 @@ pub fn open_night(paths: &[PathBuf]) -> Result<(Vec<RunReader>, NightInfo), Redu
             crate::runfile::MAX_RF_BINS
         )));
     }
-    let night =
-        NightInfo { bin_width_hz: bw, n_bins, rf_span_hz: (lo, hi + (n_bins - 1) as f64 * bw), headers: readers.iter().map(|r| r.header().clone()).collect() };
+    let night = NightInfo {
+        bin_width_hz: bw,
+        n_bins,
+        rf_span_hz: (lo, hi + (n_bins - 1) as f64 * bw),
+        bin_correlation: first.header().bin_correlation.clone(),
+        headers: readers.iter().map(|r| r.header().clone()).collect(),
+    };
     Ok((readers, night))
 }
 

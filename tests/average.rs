@@ -87,7 +87,13 @@ fn baseline_residuals(run: &Path) -> (Vec<Vec<f64>>, Vec<u64>) {
     let reader = RunReader::open(run).unwrap();
     let n_bins = reader.n_bins();
     let rows = reader.read_rows(0..reader.steps().len()).unwrap();
-    let night = NightInfo { bin_width_hz: reader.header().bin_width_hz, n_bins, rf_span_hz: (5.1e9, 5.3e9), headers: vec![reader.header().clone()] };
+    let night = NightInfo {
+        bin_width_hz: reader.header().bin_width_hz,
+        n_bins,
+        rf_span_hz: (5.1e9, 5.3e9),
+        headers: vec![reader.header().clone()],
+        bin_correlation: reader.header().bin_correlation.clone(),
+    };
     let config = BaselineConfig { window_bins: 401, order: 4, max_spread_deviation: 0.2 };
     let Built::Step(mut stage) = config.build(&night, &BuildContext { baseline_kernel: None }).unwrap() else { panic!("a per-step stage") };
     let mut steps: Vec<Step> = reader
@@ -153,6 +159,10 @@ fn radiometer_spread_without_overlap() {
     for (window, values) in [("hann", hann(2048)), ("rectangular", vec![1.0; 2048])] {
         let run = dir.path().join(format!("{window}.h5"));
         ok(&["-q", "average", "--fft-bins", "2048", "--window", window, "--out", s(&run), s(&capture)]);
+        let declared = RunReader::open(&run).unwrap().header().bin_correlation.clone();
+        let direct: Vec<f64> = (1..=8).map(|lag| bin_correlation(&values, lag)).filter(|r| *r > 1e-9).collect();
+        assert_eq!(declared.len(), direct.len(), "{window}: bin_correlation {declared:?}, direct {direct:?}");
+        assert!(declared.iter().zip(&direct).all(|(a, b)| (a - b).abs() < 1e-12), "{window}: bin_correlation {declared:?}, direct {direct:?}");
         let (ratio, n) = spread_over_prediction(&run, &values);
         assert_eq!(n, 64);
         eprintln!("{window}, no overlap: residual spread / radiometer prediction {ratio:.4}");
@@ -180,6 +190,40 @@ fn radiometer_spread_with_half_overlap_follows_the_effective_count() {
         assert!((ratio - 1.0).abs() < 0.012, "{window}: residual spread / radiometer prediction with n_averages {n} = {ratio:.4}");
         let raw = ratio * (127.0 / n as f64).sqrt();
         assert!((raw - 1.0).abs() > 0.02, "{window}: the raw segment count would also fit ({raw:.4}): the check cannot tell");
+    }
+}
+
+/// The grand spectrum of pure noise has unit spread whatever the window: the filter's
+/// predicted spread takes the run file's `bin_correlation` (Hann: 4/9 and 1/36), without
+/// which the Hann spread would be about 1.36. 160 steps of 16 segments, 200 bins apart (about
+/// 34 k RF bins). Tolerance: 4 standard errors of the sample spread of correlated Gaussian
+/// values, Var(s^2) = (2 s^4 / n) sum_tau rho(tau)^2 over lags (Bartlett 1946, J. R. Stat.
+/// Soc. Suppl. 8, 27), with rho the grand spectrum's own autocorrelation out to 400 bins
+/// (beyond the lineshape kernel's reach at 5.2 GHz).
+#[test]
+fn grand_spectrum_of_noise_has_unit_spread_with_either_window() {
+    let _turn = turn();
+    let dir = tempfile::tempdir().unwrap();
+    let capture = simulate_capture(dir.path(), 160, 16, "");
+    let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    for window in ["hann", "rectangular"] {
+        let run = dir.path().join(format!("{window}.h5"));
+        let out = dir.path().join(format!("out-{window}"));
+        ok(&["-q", "average", "--fft-bins", "2048", "--window", window, "--out", s(&run), s(&capture)]);
+        ok(&["-q", "reduce", "--config", pipeline, "--out", s(&out), s(&run)]);
+        let grand: Vec<f64> = hdf5::File::open(out.join("results.h5")).unwrap().dataset("grand").unwrap().read_raw().unwrap();
+        let grand: Vec<f64> = grand.into_iter().filter(|g| g.is_finite()).collect();
+        let n = grand.len() as f64;
+        let mean = grand.iter().sum::<f64>() / n;
+        let variance = grand.iter().map(|g| (g - mean).powi(2)).sum::<f64>() / n;
+        let rho = |tau: usize| grand.iter().zip(&grand[tau..]).map(|(a, b)| (a - mean) * (b - mean)).sum::<f64>() / n / variance;
+        let sum_rho_sq = 1.0 + 2.0 * (1..=400).map(|tau| rho(tau).powi(2)).sum::<f64>();
+        let spread = variance.sqrt();
+        // s = sqrt(s^2): its standard error is half the relative error of s^2.
+        let standard_error = 0.5 * (2.0 * sum_rho_sq / n).sqrt();
+        eprintln!("{window}: grand spectrum spread {spread:.4} over {n} bins, standard error {standard_error:.4}");
+        assert!((spread - 1.0).abs() < 4.0 * standard_error, "{window}: grand spectrum spread {spread:.4}, expected 1 +- {:.4}", 4.0 * standard_error);
+        assert!(4.0 * standard_error < 0.1, "{window}: the check could not tell a spread of 1.1 from 1 (standard error {standard_error:.4})");
     }
 }
 
@@ -259,10 +303,9 @@ fn tone_lands_in_the_bin_the_formula_says() {
 /// the coupling squared), sigma_A and the predicted spread s from results.h5, and eta =
 /// 0.6286 +- 0.0040 the measured attenuation of this baseline and filter for 100 Hz bins at
 /// 5.2 GHz (README, calibration table). Tolerance: 4 standard deviations of the grand
-/// spectrum's null scatter at one bin (1 for the rectangular window, whose bins are
-/// independent; sqrt(1 + 2 (4/9 + 1/36)) = 1.394 for Hann, whose neighbouring bins correlate,
-/// see README) plus 3 % of the expected value (4 x eta's 0.6 % standard error, and the
-/// spectral leakage of the window over the line, below 0.5 %).
+/// spectrum's null scatter at one bin (1 with either window: the predicted spread s takes
+/// Hann's correlated bins) plus 3 % of the expected value (4 x eta's 0.6 % standard error,
+/// and the spectral leakage of the window over the line, below 0.5 %).
 #[test]
 fn simulated_axion_is_found_at_the_expected_significance() {
     let _turn = turn();
@@ -270,7 +313,7 @@ fn simulated_axion_is_found_at_the_expected_significance() {
     let axion_hz = 5.2004e9;
     let capture = simulate_capture(dir.path(), 40, 200, &format!("[[axion]]\nfreq_hz = {axion_hz}\ncoupling_rel_ksvz = 4.0\n"));
     let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
-    for (window, null_spread) in [("rectangular", 1.0), ("hann", (1.0f64 + 2.0 * (4.0 / 9.0 + 1.0 / 36.0)).sqrt())] {
+    for window in ["rectangular", "hann"] {
         let run = dir.path().join(format!("{window}.h5"));
         let out = dir.path().join(format!("out-{window}"));
         ok(&["-q", "average", "--fft-bins", "2048", "--window", window, "--out", s(&run), s(&capture)]);
@@ -283,7 +326,7 @@ fn simulated_axion_is_found_at_the_expected_significance() {
         let j = (0..grand.len()).position(|j| (rf_start_hz + j as f64 * bin_width_hz - axion_hz).abs() < 50.0).expect("the axion's bin is on the grid");
         let (grand, sigma_a, spread) = (f64::from(grand[j]), f64::from(sigma_a[j]), f64::from(spread[j]));
         let expected = 0.6286 * 16.0 / (sigma_a * spread);
-        let tolerance = 4.0 * null_spread + 0.03 * expected;
+        let tolerance = 4.0 + 0.03 * expected;
         eprintln!("{window}: grand {grand:.2} at the axion, expected {expected:.2} +- {tolerance:.2}");
         assert!((grand - expected).abs() < tolerance, "{window}: grand {grand:.2} at the axion, expected {expected:.2} +- {tolerance:.2}");
         let candidates: Vec<f64> = results.dataset("candidates/frequency_hz").unwrap().read_raw().unwrap();

@@ -245,6 +245,17 @@ fn nan_bin_width() {
     bad_file("bw.h5", |f| set_attr_f64(f, "bin_width_hz", f64::NAN), &["field `bin_width_hz`", "NaN", "finite and > 0"]);
 }
 
+fn set_bin_correlation(file: &hdf5::File, values: &[f64]) -> hdf5::Result<()> {
+    file.new_attr::<f64>().shape(values.len()).create("bin_correlation")?.write_raw(values)
+}
+
+#[test]
+fn bin_correlation_outside_minus_one_to_one_or_too_long() {
+    bad_file("rho.h5", |f| set_bin_correlation(f, &[0.4, 1.5]), &["field `bin_correlation`", "lag 2", "1.5", "[-1, 1]"]);
+    bad_file("rho-nan.h5", |f| set_bin_correlation(f, &[f64::NAN]), &["field `bin_correlation`", "lag 1", "NaN"]);
+    bad_file("rho-long.h5", |f| set_bin_correlation(f, &[0.0; 300]), &["field `bin_correlation`", "at most 256"]);
+}
+
 #[test]
 fn negative_magnet_field() {
     bad_file("b.h5", |f| set_attr_f64(f, "magnet_field_t", -8.0), &["field `magnet_field_t`", "-8"]);
@@ -452,6 +463,16 @@ fn bin_widths_differ_between_files() {
     sc.scan.bin_width_hz = 50.0;
     let b = write_night(dir.path(), "second.h5", &sc);
     assert_names(&night_error(&[a, b]), &["second.h5", "field `bin_width_hz`", "50 Hz", "first.h5", "100 Hz"]);
+}
+
+#[test]
+fn bin_correlations_differ_between_files() {
+    let _files = files();
+    let dir = tempfile::tempdir().unwrap();
+    let a = write_night(dir.path(), "first.h5", &small_scenario(1));
+    let b = write_night(dir.path(), "second.h5", &small_scenario(2));
+    patch(&b, |f| set_bin_correlation(f, &[0.25]));
+    assert_names(&night_error(&[a, b]), &["second.h5", "field `bin_correlation`", "[0.25]", "first.h5", "[]", "window and overlap"]);
 }
 
 #[test]

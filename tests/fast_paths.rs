@@ -5,11 +5,12 @@
 use axsift::config::{BuildContext, Built, StageConfig};
 use axsift::dsp::correlate::{CorrelationScratch, Correlator};
 use axsift::dsp::savgol::{SavitzkyGolay, SmoothingScratch};
+use axsift::dsp::spread::filtered_noise_spread;
 use axsift::physics::constants::BOLTZMANN_J_PER_K;
 use axsift::physics::signal::{CavityState, Haloscope, signal_power_w};
 use axsift::runfile::{RunHeader, StepMeta};
 use axsift::stage::baseline::BaselineConfig;
-use axsift::stage::filter::{FilterConfig, Halo, predicted_spread};
+use axsift::stage::filter::{FilterConfig, Halo};
 use axsift::stage::rescale::{Reference, RescaleConfig};
 use axsift::stage::{NightInfo, Spectrum, Standardised, Step, StepStage, Verdict};
 use rand::rngs::StdRng;
@@ -17,8 +18,15 @@ use rand::{RngExt, SeedableRng};
 use rand_distr::{Distribution, StandardNormal};
 
 fn night(n_bins: usize, rf_span_hz: (f64, f64)) -> NightInfo {
-    let header = RunHeader { bin_width_hz: 100.0, magnet_field_t: 8.0, cavity_volume_m3: 0.02, form_factor: 0.45, run_label: "test".into() };
-    NightInfo { bin_width_hz: 100.0, n_bins, rf_span_hz, headers: vec![header] }
+    let header = RunHeader {
+        bin_width_hz: 100.0,
+        magnet_field_t: 8.0,
+        cavity_volume_m3: 0.02,
+        form_factor: 0.45,
+        run_label: "test".into(),
+        bin_correlation: Vec::new(),
+    };
+    NightInfo { bin_width_hz: 100.0, n_bins, rf_span_hz, headers: vec![header], bin_correlation: Vec::new() }
 }
 
 fn meta(start_freq_hz: f64, n_bins: usize) -> StepMeta {
@@ -280,7 +288,7 @@ fn fft_filter_matches_direct_sums() {
         let (a, s) = (num / den, den.sqrt().recip());
         assert!((sp.sigma_a[j] / s - 1.0).abs() < 1e-9, "bin {j}: sigma_A {} vs {s}", sp.sigma_a[j]);
         assert!((sp.amplitude[j] - a).abs() < 1e-9 * s, "bin {j}: A {} vs {a}", sp.amplitude[j]);
-        let spread = predicted_spread(&line, Some(&kernel_h));
+        let spread = filtered_noise_spread(&line, Some(&kernel_h), &[]);
         assert_eq!(sp.predicted_spread[j], spread);
         assert!((sp.grand[j] - a / (s * spread)).abs() < 1e-8, "bin {j}");
     }

@@ -9,10 +9,10 @@ mod common;
 
 use axsift::config;
 use axsift::dsp::savgol::SavitzkyGolay;
+use axsift::dsp::spread::filtered_noise_spread;
 use axsift::physics::lineshape::HaloModel;
 use axsift::pipeline::{self, Reduction};
 use axsift::sim::{self, Axion, Frame, Interference, Scenario};
-use axsift::stage::filter::predicted_spread;
 use common::{PIPELINE, null_scenario};
 use rand::SeedableRng;
 use rand::rngs::StdRng;
@@ -66,7 +66,7 @@ fn predicted_spread_matches_direct_monte_carlo() {
     let norm = line.iter().map(|l| l * l).sum::<f64>().sqrt();
     for (window, order) in [(401, 4), (201, 4), (801, 2)] {
         let sg = SavitzkyGolay::new(window, order).unwrap();
-        let predicted = predicted_spread(&line, Some(sg.coefficients()));
+        let predicted = filtered_noise_spread(&line, Some(sg.coefficients()), &[]);
         let n = 1 << 17;
         let mut rng = StdRng::seed_from_u64(7 + window as u64);
         let mut filtered = Vec::new();

@@ -84,7 +84,8 @@ fn rescan_clears_fluctuations_and_keeps_the_signal() {
     assert!(cleared as f64 >= 0.8 * noise_first.len() as f64, "{cleared} of {} cleared", noise_first.len());
 }
 
-/// Acceptance: re-adding a file, another pipeline, and another schema version are refused
+/// Acceptance: re-adding a file, another pipeline, a night of another spectrum estimator and
+/// another schema version are refused
 /// with messages that say what and where.
 #[test]
 fn refusals_are_clear() {
@@ -99,6 +100,14 @@ fn refusals_are_clear() {
     let other = config::load(&PIPELINE.replace("order = 4", "order = 3"), "other.toml").unwrap();
     let err = state::add_nights(&mut st, &other, &[vec![night(22, 5.2e9, dir.path(), false)]]).unwrap_err().to_string();
     assert!(err.contains("another pipeline"), "{err}");
+
+    // A night whose spectra correlate neighbouring bins (another spectrum estimator).
+    let hann_like = night(23, 5.2e9, dir.path(), false);
+    let file = hdf5::File::open_rw(&hann_like).unwrap();
+    file.new_attr::<f64>().shape(1).create("bin_correlation").unwrap().write_raw(&[0.25]).unwrap();
+    drop(file);
+    let err = state::add_nights(&mut st, &plan, &[vec![hann_like]]).unwrap_err().to_string();
+    assert!(err.contains("bin_correlation") && err.contains("[0.25]") && err.contains("window and overlap"), "{err}");
 
     let state_dir = dir.path().join("state");
     st.save(&state_dir).unwrap();

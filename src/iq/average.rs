@@ -94,6 +94,7 @@ pub fn average(captures: &[PathBuf], out: &Path, opts: &AverageOptions, progress
         cavity_volume_m3: first.cavity_volume_m3,
         form_factor: first.form_factor,
         run_label: first.run_label.clone(),
+        bin_correlation: plan.bin_correlation(),
     };
     let n_steps = readers.iter().map(|r| r.steps().len()).sum();
     let mut writer = RunWriter::create(out, &header, n_steps, kept.len()).map_err(AverageError::Output)?;

@@ -11,6 +11,7 @@
 //!
 //! Arithmetic is f64 throughout (the samples are widened as they are windowed).
 
+use crate::runfile::MAX_CORRELATION_LAGS;
 use rustfft::num_complex::Complex;
 use rustfft::{Fft, FftPlanner};
 use std::sync::Arc;
@@ -98,6 +99,40 @@ impl WelchPlan {
         k / (1.0 + 2.0 * correlation_sum)
     }
 
+    /// Correlation of the averaged noise power of bins d = 1, 2, ... apart (element d - 1),
+    /// for circular complex Gaussian white noise (I and Q independent, of equal variance) and
+    /// many segments: rho_d = sum_j |c_j(d)|^2 / sum_j |c_j(0)|^2 over segment pairs j hops
+    /// apart (j = -J..J, all pairs that share samples), c_j(d) = sum_n w_n w_{n+jD}
+    /// exp(-2 pi i d n / N) (Isserlis: Cov(|X|^2, |Y|^2) = |E[X Y*]|^2 for circular Gaussian X,
+    /// Y). Without overlap it is exact for any segment count (Hann: 4/9, 1/36, then 0); with
+    /// overlap, K segments weight pair j by 1 - |j|/K instead of 1. Lags up to
+    /// [`MAX_CORRELATION_LAGS`] (or N/2), trailing ones below 1e-9 dropped: empty for a
+    /// rectangular window without overlap, whose bins are independent.
+    pub fn bin_correlation(&self) -> Vec<f64> {
+        let n = self.fft_bins();
+        let mut planner = FftPlanner::new();
+        let fft = planner.plan_fft_forward(n);
+        let mut summed = vec![0.0; n];
+        let mut product = vec![Complex::default(); n];
+        for j in (0..).take_while(|j| j * self.hop < n) {
+            let shift = j * self.hop;
+            product.iter_mut().for_each(|p| *p = Complex::default());
+            for (p, (a, b)) in product.iter_mut().zip(self.window.iter().zip(&self.window[shift..])) {
+                p.re = a * b;
+            }
+            fft.process(&mut product);
+            let pairs = if j == 0 { 1.0 } else { 2.0 };
+            for (s, c) in summed.iter_mut().zip(&product) {
+                *s += pairs * c.norm_sqr();
+            }
+        }
+        let mut rho: Vec<f64> = summed[1..=(n / 2).min(MAX_CORRELATION_LAGS)].iter().map(|s| s / summed[0]).collect();
+        while rho.last().is_some_and(|r| r.abs() < 1e-9) {
+            rho.pop();
+        }
+        rho
+    }
+
     /// Adds |X_k|^2 of `n_segments` consecutive segments of `samples` (I and Q interleaved,
     /// the first segment starting at sample 0) to `power_sum` (N bins, transform order), in
     /// segment order.
@@ -162,6 +197,35 @@ mod tests {
         assert!((hann.effective_averages(99) - k / (1.0 + 2.0 * (1.0 - 1.0 / k) / 36.0)).abs() < 1e-9);
         let rect = WelchPlan::new(512, Window::Rectangular, 0.5).unwrap();
         assert!((rect.effective_averages(99) - k / (1.0 + 2.0 * (1.0 - 1.0 / k) / 4.0)).abs() < 1e-9);
+    }
+
+    /// Hann as a cosine sum, w = 1/2 - (1/2) cos(2 pi n / N) (Harris 1978, Proc. IEEE 66, 51):
+    /// its windowed DFT is X_k = Y_k / 2 - (Y_(k-1) + Y_(k+1)) / 4 with Y the plain DFT, whose
+    /// bins are independent for white noise. So E|X_k|^2 = 3/8, E[X_k X*_(k+1)] = -1/4 and
+    /// E[X_k X*_(k+2)] = 1/16 (units of E|Y|^2): the powers correlate by (2/3)^2 = 4/9 at one
+    /// bin and (1/6)^2 = 1/36 at two, and not beyond. A rectangular window leaves Y itself.
+    #[test]
+    fn bin_correlation_without_overlap_follows_the_cosine_sum_form() {
+        let hann = WelchPlan::new(1024, Window::Hann, 0.0).unwrap().bin_correlation();
+        assert_eq!(hann.len(), 2, "{hann:?}");
+        assert!((hann[0] - 4.0 / 9.0).abs() < 1e-12 && (hann[1] - 1.0 / 36.0).abs() < 1e-12, "{hann:?}");
+        assert!(WelchPlan::new(1024, Window::Rectangular, 0.0).unwrap().bin_correlation().is_empty());
+    }
+
+    /// Rectangular at 50 % overlap: segment pairs one hop apart share N/2 samples, so
+    /// c_1(d) = sum_{n < N/2} exp(-2 pi i d n / N), of magnitude N/2 at d = 0, 0 at even d and
+    /// |1 / sin(pi d / N)| at odd d (a geometric sum); c_0(d) = N delta_d0. Then
+    /// rho_d = 2 / (N^2 sin^2(pi d / N)) / (1 + 2 / 4) at odd d, 0 at even d.
+    #[test]
+    fn bin_correlation_with_half_overlap_follows_the_geometric_sum() {
+        let n = 64usize;
+        let rho = WelchPlan::new(n, Window::Rectangular, 0.5).unwrap().bin_correlation();
+        for (i, r) in rho.iter().enumerate() {
+            let d = (i + 1) as f64;
+            let expected = if (i + 1) % 2 == 0 { 0.0 } else { 2.0 / ((n * n) as f64 * (std::f64::consts::PI * d / n as f64).sin().powi(2)) / 1.5 };
+            assert!((r - expected).abs() < 1e-12, "lag {}: {r} vs {expected}", i + 1);
+        }
+        assert_eq!(rho.len(), n / 2 - 1, "the last odd lag below N/2 is the last non-zero one");
     }
 
     #[test]

@@ -12,11 +12,11 @@
 //! step_hz / (that time + dead time per step).
 
 use super::{g_gamma_limit, z_quantile};
+use crate::dsp::spread::filtered_noise_spread;
 use crate::physics::constants::{BOLTZMANN_J_PER_K, G_GAMMA_DFSZ, G_GAMMA_KSVZ};
 use crate::physics::lineshape::HaloModel;
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
 use crate::physics::units::{g_agg_from_g_gamma_per_gev, mass_uev_from_freq_hz};
-use crate::stage::filter::predicted_spread;
 use serde::Deserialize;
 
 /// Points at which the reach is evaluated across the planned range.
@@ -57,6 +57,11 @@ pub struct RunPlan {
     /// Target coupling of the scan rate: "ksvz", "dfsz" or a g_gamma value.
     #[serde(default = "default_target")]
     pub target: crate::stage::rescale::Reference,
+    /// Correlation of the noise power of bins 1, 2, ... apart, as the run files'
+    /// `bin_correlation` (`axsift average` with the Hann window: [0.4444, 0.02778]); empty,
+    /// the default: independent bins.
+    #[serde(default)]
+    pub bin_correlation: Vec<f64>,
 }
 
 fn default_bin_width() -> f64 {
@@ -93,6 +98,9 @@ impl RunPlan {
         }
         if self.n_bins < 16 {
             p.push(format!("`n_bins` = {} must be >= 16", self.n_bins));
+        }
+        if let Some(rho) = self.bin_correlation.iter().find(|r| !(r.abs() <= 1.0)) {
+            p.push(format!("`bin_correlation` holds {rho}, a correlation coefficient must be in [-1, 1]"));
         }
         if (self.stop_hz - self.start_hz) / self.step_hz > 1e7 {
             p.push("more than 1e7 steps: check `step_hz`".into());
@@ -197,7 +205,7 @@ pub fn forecast(plan: &RunPlan, chain: &ChainModel) -> Result<Forecast, String> 
         let nu = plan.start_hz + (plan.stop_hz - plan.start_hz) * (p as f64 + 0.5) / FORECAST_POINTS as f64;
         let line = chain.halo.bin_fractions(nu, plan.bin_width_hz, chain.tail_fraction);
         let sum_l2: f64 = line.iter().map(|l| l * l).sum();
-        let spread = predicted_spread(&line, Some(&chain.baseline_kernel));
+        let spread = filtered_noise_spread(&line, Some(&chain.baseline_kernel), &plan.bin_correlation);
         let line_end = nu + 3.0 * nu * beta_sq;
         // Steps i with f_c,i - half_band <= nu and line_end <= f_c,i + half_band - dnu_b.
         let lo = ((line_end - half_band_hz + plan.bin_width_hz - plan.start_hz) / plan.step_hz).ceil().max(0.0) as usize;

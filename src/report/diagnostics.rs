@@ -7,6 +7,7 @@
 //! It costs one read of the night plus one baseline fit per step; nothing is combined.
 
 use crate::config::{Built, Plan};
+use crate::dsp::spread::filtered_noise_spread;
 use crate::runfile::StepMeta;
 use crate::stage::{Step, StepStage, Verdict};
 use rayon::prelude::*;
@@ -32,15 +33,17 @@ pub struct StepDiag {
 pub struct StepDiagnostics {
     /// Every step of every input file, in input order.
     pub steps: Vec<StepDiag>,
-    /// 1 - h0 of the baseline fit (h0 the centre weight of its smoothing kernel): the predicted
-    /// residual spread of a step is sqrt((1 - h0) / N). `None` without a baseline stage.
-    pub one_minus_h0: Option<f64>,
+    /// Share F of one bin's noise variance that the baseline fit leaves: 1 - h0 for
+    /// independent bins (h0 the centre weight of its smoothing kernel), more with the run
+    /// files' `bin_correlation`. The predicted residual spread of a step is sqrt(F / N).
+    /// `None` without a baseline stage.
+    pub residual_fraction: Option<f64>,
 }
 
 impl StepDiagnostics {
-    /// Predicted residual spread of a step, sqrt((1 - h0) / N) (dimensionless).
+    /// Predicted residual spread of a step, sqrt(F / N) (dimensionless).
     pub fn predicted_spread(&self, meta: &StepMeta) -> Option<f64> {
-        self.one_minus_h0.map(|k| (k / meta.n_averages.max(1) as f64).sqrt())
+        self.residual_fraction.map(|k| (k / meta.n_averages.max(1) as f64).sqrt())
     }
 }
 
@@ -49,7 +52,8 @@ impl StepDiagnostics {
 pub fn measure(plan: &Plan, paths: &[PathBuf]) -> Result<StepDiagnostics, String> {
     let (readers, night) = crate::pipeline::open_night(paths).map_err(|e| e.to_string())?;
     let baseline_at = plan.stages.iter().position(|s| s.config.baseline_kernel().is_some());
-    let one_minus_h0 = plan.stages.iter().find_map(|s| s.config.baseline_kernel()).map(|k| 1.0 - k[k.len() / 2]);
+    let residual_fraction =
+        plan.stages.iter().find_map(|s| s.config.baseline_kernel()).map(|k| filtered_noise_spread(&[1.0], Some(&k), &night.bin_correlation).powi(2));
     let mut stages: Vec<Box<dyn StepStage>> = Vec::new();
     if let Some(last) = baseline_at {
         for built in plan.build(&night)?.into_iter().take(last + 1) {
@@ -96,7 +100,7 @@ pub fn measure(plan: &Plan, paths: &[PathBuf]) -> Result<StepDiagnostics, String
             .collect();
         steps.extend(chunk.iter().zip(spreads).map(|(step, residual_spread)| StepDiag { index: step.index, meta: step.meta, residual_spread }));
     })?;
-    Ok(StepDiagnostics { steps, one_minus_h0: baseline_at.and(one_minus_h0) })
+    Ok(StepDiagnostics { steps, residual_fraction: baseline_at.and(residual_fraction) })
 }
 
 /// Reads every file in chunks of rows (on this thread) and hands each chunk of steps to `f`.

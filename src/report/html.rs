@@ -294,13 +294,14 @@ fn steps(out: &mut String, d: &ReportData, cut: &HashSet<usize>) -> anyhow::Resu
     );
     let measured: Vec<(f64, f64)> =
         diag.steps.iter().filter(|s| !cut.contains(&s.index)).filter_map(|s| Some((s.residual_spread?, diag.predicted_spread(&s.meta)?))).collect();
-    match (diag.one_minus_h0, measured.is_empty()) {
+    match (diag.residual_fraction, measured.is_empty()) {
         (Some(k), false) => {
             let ratio = median(measured.iter().map(|(m, p)| m / p).collect());
             let _ = write!(
                 out,
                 "<p class=\"note\">Residual spread: the RMS of each step's baseline residual P / (G SG) - 1, measured by re-reading the run files. \
-                 The prediction is sqrt((1 - h0) / N) = {:.4} / sqrt(N), the radiometer 1/sqrt(N) reduced by the baseline fit's centre weight h0. \
+                 The prediction is sqrt(F / N) = {:.4} / sqrt(N), the radiometer 1/sqrt(N) reduced by the share F of each bin's noise the baseline fit leaves \
+                 (1 - h0 for independent bins, h0 its centre weight; more when the run files declare correlated bins). \
                  Median measured / predicted over the used steps: {}.</p>",
                 k.sqrt(),
                 num(ratio, 4)

@@ -45,6 +45,26 @@ pub fn read_f64(file: &hdf5::File, name: &str) -> Result<f64, String> {
     v.map_err(|e| format!("cannot be read as a number: {e}"))
 }
 
+/// Reads an optional numeric attribute holding a list (1-D, at most `max_len` values; a
+/// scalar is a list of one) as f64. `None` when the attribute is absent.
+pub fn read_optional_f64_list(file: &hdf5::File, name: &str, max_len: usize) -> Result<Option<Vec<f64>>, String> {
+    let attr = match file.attr(name) {
+        Ok(a) => a,
+        Err(e) if e.contains_minor(hdf5::MinorErrorCode::NotFound) => return Ok(None),
+        Err(e) => return Err(format!("attribute cannot be read (corrupted file?): {e}")),
+    };
+    let shape = attr.shape();
+    if shape.len() > 1 || shape.first().is_some_and(|&n| n > max_len) {
+        return Err(format!("attribute has shape {shape:?}, expected a list of at most {max_len} values"));
+    }
+    let t = attr.dtype().and_then(|d| d.to_descriptor()).map_err(|e| format!("attribute type cannot be read: {e}"))?;
+    if !is_number(&t) {
+        return Err(format!("attribute is a {}, expected numbers", type_name(&t)));
+    }
+    let values = if shape.is_empty() { attr.read_scalar::<f64>().map(|v| vec![v]) } else { attr.read_raw::<f64>() };
+    values.map(Some).map_err(|e| format!("cannot be read as numbers: {e}"))
+}
+
 /// Reads a scalar string attribute, variable-length or fixed-length, ASCII or UTF-8 (writers
 /// differ). Bytes that are not UTF-8 are replaced by U+FFFD, so a foreign or damaged label
 /// never makes an invalid `String`.

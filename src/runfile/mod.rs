@@ -5,7 +5,8 @@
 //! `magnet_field_t`, `cavity_volume_m3`, `form_factor`, `run_label`; dataset `spectra`
 //! `[n_steps, n_bins]` (f32 or f64, raw linear power per bin, chunked by row); group `steps`
 //! with 1-D datasets `start_freq_hz`, `cavity_freq_hz`, `loaded_q`, `coupling_beta`,
-//! `noise_temp_k`, `n_averages`, `timestamp_s`; optional `mask` `[n_steps, n_bins]` u8.
+//! `noise_temp_k`, `n_averages`, `timestamp_s`; optional `mask` `[n_steps, n_bins]` u8;
+//! optional root attribute `bin_correlation` (1-D f64, see [`RunHeader::bin_correlation`]).
 
 pub(crate) mod attrs;
 pub(crate) mod header;
@@ -33,6 +34,8 @@ pub const MIN_BINS_PER_STEP: usize = 16;
 pub const MAX_RF_BINS: usize = 1 << 25;
 /// Largest number of steps per file accepted before any allocation.
 pub const MAX_STEPS_PER_FILE: usize = 10_000_000;
+/// Most lags a `bin_correlation` attribute may list.
+pub const MAX_CORRELATION_LAGS: usize = 256;
 
 /// Facility-wide parameters stored as root attributes of a run file.
 #[derive(Debug, Clone, PartialEq)]
@@ -47,6 +50,11 @@ pub struct RunHeader {
     pub form_factor: f64,
     /// Free-text label of the run.
     pub run_label: String,
+    /// Correlation coefficient of the noise power of two bins d = 1, 2, ... apart within one
+    /// spectrum (element d - 1), for Gaussian noise through the spectrum estimator: a
+    /// windowed FFT correlates neighbouring bins (Hann without overlap: 4/9 and 1/36).
+    /// Empty (the attribute absent): independent bins.
+    pub bin_correlation: Vec<f64>,
 }
 
 /// Per-step receiver and cavity parameters (one row of the `steps` group).

@@ -1,6 +1,6 @@
 //! Reading and validating run files, step rows by hyperslab.
 
-use super::{FORMAT_NAME, FORMAT_VERSION, MAX_BINS_PER_STEP, MAX_STEPS_PER_FILE, MIN_BINS_PER_STEP};
+use super::{FORMAT_NAME, FORMAT_VERSION, MAX_BINS_PER_STEP, MAX_CORRELATION_LAGS, MAX_STEPS_PER_FILE, MIN_BINS_PER_STEP};
 use super::{RunFileError, RunHeader, StepMeta, attrs, header, steps};
 use hdf5::types::TypeDescriptor;
 use ndarray::Array2;
@@ -34,6 +34,7 @@ impl RunReader {
             cavity_volume_m3: facility.cavity_volume_m3,
             form_factor: facility.form_factor,
             run_label: facility.run_label,
+            bin_correlation: read_bin_correlation(&file, path)?,
         };
         let spectra = file.dataset("spectra").map_err(|_| invalid("spectra", None, "dataset is missing".into()))?;
         let shape = spectra.shape();
@@ -172,4 +173,14 @@ fn check_stored(ds: &hdf5::Dataset, n_steps: usize, n_bins: usize, elem: u64) ->
         ));
     }
     Ok(())
+}
+
+/// Reads the optional root attribute `bin_correlation`: each value finite and in [-1, 1].
+fn read_bin_correlation(file: &hdf5::File, path: &Path) -> Result<Vec<f64>, RunFileError> {
+    let invalid = |message: String| RunFileError::Invalid { path: path.to_path_buf(), field: "bin_correlation".into(), step: None, message };
+    let values = attrs::read_optional_f64_list(file, "bin_correlation", MAX_CORRELATION_LAGS).map_err(invalid)?.unwrap_or_default();
+    if let Some((d, rho)) = values.iter().enumerate().find(|(_, r)| !(r.abs() <= 1.0)) {
+        return Err(invalid(format!("value at lag {} is {rho}, a correlation coefficient must be in [-1, 1]", d + 1)));
+    }
+    Ok(values)
 }

@@ -84,6 +84,13 @@ impl RunWriter {
             file.new_attr::<f64>().create(name).and_then(|a| a.write_scalar(&value)).map_err(err(name))?;
         }
         write_text(&file, "run_label", &header.run_label).map_err(err("run_label"))?;
+        if !header.bin_correlation.is_empty() {
+            file.new_attr::<f64>()
+                .shape(header.bin_correlation.len())
+                .create("bin_correlation")
+                .and_then(|a| a.write_raw(&header.bin_correlation))
+                .map_err(err("bin_correlation"))?;
+        }
         let spectra = file.new_dataset::<f32>().shape((n_steps, n_bins)).chunk((1, n_bins)).create("spectra").map_err(err("spectra"))?;
         describe(
             &spectra,
@@ -159,7 +166,7 @@ mod tests {
     use crate::runfile::RunReader;
 
     fn header(label: &str) -> RunHeader {
-        RunHeader { bin_width_hz: 100.0, magnet_field_t: 8.0, cavity_volume_m3: 0.02, form_factor: 0.45, run_label: label.into() }
+        RunHeader { bin_width_hz: 100.0, magnet_field_t: 8.0, cavity_volume_m3: 0.02, form_factor: 0.45, run_label: label.into(), bin_correlation: Vec::new() }
     }
 
     fn write(path: &Path, label: &str) -> Result<(), RunFileError> {

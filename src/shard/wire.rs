@@ -71,6 +71,8 @@ struct HeaderWire {
     #[serde(with = "super::bits")]
     floats: Vec<f64>,
     run_label: String,
+    #[serde(with = "super::bits", default)]
+    bin_correlation: Vec<f64>,
 }
 
 impl NightWire {
@@ -108,7 +110,11 @@ impl NightWire {
                 .night
                 .headers
                 .iter()
-                .map(|h| HeaderWire { floats: vec![h.bin_width_hz, h.magnet_field_t, h.cavity_volume_m3, h.form_factor], run_label: h.run_label.clone() })
+                .map(|h| HeaderWire {
+                    floats: vec![h.bin_width_hz, h.magnet_field_t, h.cavity_volume_m3, h.form_factor],
+                    run_label: h.run_label.clone(),
+                    bin_correlation: h.bin_correlation.clone(),
+                })
                 .collect(),
             if_scan: IfScanWire {
                 if_profile_sigma: r.if_scan.if_profile_sigma.clone(),
@@ -147,7 +153,7 @@ impl NightWire {
             .into_iter()
             .map(|h| match h.floats[..] {
                 [bin_width_hz, magnet_field_t, cavity_volume_m3, form_factor] => {
-                    Ok(RunHeader { bin_width_hz, magnet_field_t, cavity_volume_m3, form_factor, run_label: h.run_label })
+                    Ok(RunHeader { bin_width_hz, magnet_field_t, cavity_volume_m3, form_factor, run_label: h.run_label, bin_correlation: h.bin_correlation })
                 }
                 _ => Err(bad("headers")),
             })
@@ -161,7 +167,13 @@ impl NightWire {
             step_span_hz: self.step_span_hz,
             ..Spectrum::default()
         };
-        let night = NightInfo { bin_width_hz: headers[0].bin_width_hz, n_bins: self.n_bins, rf_span_hz: (self.rf_span_hz[0], self.rf_span_hz[1]), headers };
+        let night = NightInfo {
+            bin_width_hz: headers[0].bin_width_hz,
+            n_bins: self.n_bins,
+            rf_span_hz: (self.rf_span_hz[0], self.rf_span_hz[1]),
+            bin_correlation: headers[0].bin_correlation.clone(),
+            headers,
+        };
         let cuts = self.cuts.into_iter().map(|c| CutStep { step: c.step, file: c.file, row: c.row, stage: c.stage, reason: c.reason }).collect();
         let w = self.if_scan;
         let if_scan = IfScan {

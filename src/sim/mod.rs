@@ -169,6 +169,7 @@ pub fn simulate(sc: &Scenario, out: &Path) -> Result<(), RunFileError> {
         cavity_volume_m3: sc.facility.cavity_volume_m3,
         form_factor: sc.facility.form_factor,
         run_label: sc.run_label.clone(),
+        bin_correlation: Vec::new(),
     };
     let mut writer = RunWriter::create(out, &header, s.n_steps, s.n_bins)?;
     let chunk = 64;

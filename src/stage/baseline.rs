@@ -7,7 +7,9 @@
 //! fitted to the first or last `window_bins` bins is evaluated (as scipy's mode "interp"), so
 //! every bin gets a value. Missing bins (NaN) are bridged by linear interpolation for the
 //! fit only and stay NaN in the output. Steps whose residual spread departs from the
-//! radiometer prediction sqrt((1 - h0) / N) by more than `max_spread_deviation` are cut.
+//! radiometer prediction sqrt(F / N) by more than `max_spread_deviation` are cut, F the share
+//! of one bin's noise variance the fit leaves (1 - h0 for independent bins, h0 the kernel's
+//! centre weight; with the run files' `bin_correlation`, see [`filtered_noise_spread`]).
 //!
 //! Precision: the interior of the fit is an FFT correlation with single-precision transforms,
 //! taken about the step's mean level (edges, gain, residual and everything after are f64).
@@ -19,6 +21,7 @@
 use super::{NightInfo, Step, StepStage, Verdict, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::savgol::{SavitzkyGolay, SmoothingPlan, SmoothingScratch};
+use crate::dsp::spread::filtered_noise_spread;
 use crate::simd::per_bin_loop;
 use rayon::prelude::*;
 use serde::Deserialize;
@@ -63,7 +66,9 @@ impl StageConfig for BaselineConfig {
             return Err(format!("window_bins = {} exceeds the {} bins per step", self.window_bins, night.n_bins));
         }
         let sg = SavitzkyGolay::new(self.window_bins, self.order).map_err(|e| e.to_string())?;
+        let residual_fraction = filtered_noise_spread(&[1.0], Some(sg.coefficients()), &night.bin_correlation).powi(2);
         Ok(Built::Step(Box::new(Baseline {
+            residual_fraction,
             plan: sg.plan_in::<f32>(night.n_bins).map_err(|e| e.to_string())?,
             max_dev: self.max_spread_deviation,
             gain_sum: vec![0.0; night.n_bins],
@@ -81,6 +86,8 @@ struct Baseline {
     /// The Savitzky-Golay fit, planned once for the night's number of bins, with single-
     /// precision transforms (see the module documentation).
     plan: SmoothingPlan<f32>,
+    /// Share of one bin's noise variance left in the residual (F in the module documentation).
+    residual_fraction: f64,
     max_dev: f64,
     gain_sum: Vec<f64>,
     gain_count: Vec<u32>,
@@ -148,7 +155,7 @@ impl StepStage for Baseline {
             fit.resize(n, 0.0);
             self.plan.smooth_with(flat, fit, scratch).expect("buffers have the planned length");
             let measured = residual_and_its_rms(&mut step.values, flat, fit);
-            let expected = ((1.0 - self.plan.filter().center_weight()) / step.meta.n_averages as f64).sqrt();
+            let expected = (self.residual_fraction / step.meta.n_averages as f64).sqrt();
             if (measured / expected - 1.0).abs() > self.max_dev {
                 return Verdict::Cut(format!("residual spread {measured:.3e} departs from predicted {expected:.3e} by more than {:.0}%", 100.0 * self.max_dev));
             }

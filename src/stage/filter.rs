@@ -7,14 +7,19 @@
 //! evaluated anew every `segment_fraction` of relative frequency, so its width follows nu.
 //!
 //! Normalisation: the baseline fit also removes noise on the line's scale, so A/sigma_A has a
-//! null spread below 1. It is predicted from the kernels as ||(1 - h) * L|| / ||L|| (h the
-//! Savitzky-Golay interior kernel, * convolution), valid for white noise with weights that vary
-//! slowly across the line, and the grand spectrum is A / (sigma_A * predicted spread).
+//! null spread below 1, and bins whose noise correlates (a windowed FFT's neighbours) raise it.
+//! It is predicted from the kernels and the run files' `bin_correlation` as the spread of
+//! (1 - h) * L over ||L|| (h the Savitzky-Golay interior kernel, * convolution; see
+//! [`filtered_noise_spread`]), valid for Gaussian noise with weights that vary slowly across
+//! the line, and the grand spectrum is A / (sigma_A * predicted spread). sigma_A itself is the
+//! independent-bin formula: with correlated bins the filter is still unbiased but no longer
+//! the minimum-variance one.
 //! The night's own spread is reported beside it but never used.
 
 use super::{BLOCK_BINS, Block, NightInfo, SpectrumStage};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::correlate::{CorrelationScratch, Correlator};
+use crate::dsp::spread::filtered_noise_spread;
 use crate::physics::lineshape::HaloModel;
 use crate::runfile::StepMeta;
 use rayon::prelude::*;
@@ -114,29 +119,13 @@ impl StageConfig for FilterConfig {
             .map(|s| {
                 let centre_hz = lo + ((s * seg_bins) as f64 + seg_bins as f64 / 2.0) * night.bin_width_hz;
                 let kernel = model.bin_fractions(centre_hz, night.bin_width_hz, self.tail_fraction);
-                let spread = predicted_spread(&kernel, ctx.baseline_kernel.as_deref());
+                let spread = filtered_noise_spread(&kernel, ctx.baseline_kernel.as_deref(), &night.bin_correlation);
                 let squared: Vec<f64> = kernel.iter().map(|l| l * l).collect();
                 Segment { line: Correlator::new(&kernel), line_squared: Correlator::new(&squared), spread }
             })
             .collect();
         Ok(Built::Spectrum(Box::new(OptimalFilter { seg_bins, segments, mean_beta_sq: model.mean_beta_sq() })))
     }
-}
-
-/// Null spread of A/sigma_A left by a baseline smoothing kernel `h`: ||L - h*L|| / ||L||.
-pub fn predicted_spread(line: &[f64], h: Option<&[f64]>) -> f64 {
-    let Some(h) = h else { return 1.0 };
-    let half = h.len() / 2;
-    let n = line.len() + h.len() - 1;
-    let mut residual = vec![0.0; n];
-    for (i, &l) in line.iter().enumerate() {
-        residual[i + half] += l;
-        for (j, &hj) in h.iter().enumerate() {
-            residual[i + j] -= hj * l;
-        }
-    }
-    let norm2: f64 = line.iter().map(|l| l * l).sum();
-    (residual.iter().map(|r| r * r).sum::<f64>() / norm2).sqrt()
 }
 
 /// RF bins whose filter outputs one task computes.

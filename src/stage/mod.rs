@@ -64,6 +64,9 @@ pub struct NightInfo {
     pub rf_span_hz: (f64, f64),
     /// The header of each input file, by file index.
     pub headers: Vec<RunHeader>,
+    /// Correlation of the noise power of bins 1, 2, ... apart, shared by all files
+    /// ([`RunHeader::bin_correlation`]; empty: independent bins).
+    pub bin_correlation: Vec<f64>,
 }
 
 /// One tuning step in flight through the per-step stages.

@@ -130,7 +130,7 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) ->
     let ReducedNight { inputs, n_steps, reduction: night_red } = night;
     let night_index = state.nights.len();
     let stages = Stages::new(plan).map_err(refused)?;
-    let night_bins = merge(state, &night_red.spectrum, &night_red.if_scan, night_index)?;
+    let night_bins = merge(state, &night_red.spectrum, &night_red.if_scan, &night_red.night.bin_correlation, night_index)?;
     let (spectrum, without, sums) = span_of_update(state, &stages, &night_red, night_bins.clone())?;
     state.nights.push(NightRecord {
         index: night_index,
@@ -231,14 +231,22 @@ fn line_sources(sums: &Sums, bin: i64, reach: i64, bin_width_hz: f64) -> Option<
 }
 
 /// Adds a night's combined spectrum, and the IF-line samples of its IF profile, to the
-/// state's sums; returns the grid bins the night spans.
-fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, night_index: usize) -> Result<Range<i64>, StateError> {
+/// state's sums; returns the grid bins the night spans. `bin_correlation` is the night's
+/// (its run files').
+fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, bin_correlation: &[f64], night_index: usize) -> Result<Range<i64>, StateError> {
     if state.grid_bins.is_none() {
         state.bin_width_hz = sp.bin_width_hz;
         state.rf_origin_hz = sp.rf_start_hz;
+        state.bin_correlation = bin_correlation.to_vec();
     }
     if sp.bin_width_hz != state.bin_width_hz {
         return Err(refused(format!("bin width {} Hz differs from the state's {} Hz", sp.bin_width_hz, state.bin_width_hz)));
+    }
+    if bin_correlation != state.bin_correlation {
+        return Err(refused(format!(
+            "field `bin_correlation` of the night's run files, {bin_correlation:?}, differs from the state's {:?}: the nights of one state must come from the same spectrum estimator (window and overlap)",
+            state.bin_correlation
+        )));
     }
     let offset = (sp.rf_start_hz - state.rf_origin_hz) / state.bin_width_hz;
     let whole = offset.round();

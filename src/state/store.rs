@@ -68,6 +68,10 @@ pub struct State {
     pub config_hash: String,
     /// RF bin width, Hz.
     pub bin_width_hz: f64,
+    /// Correlation of the noise power of bins 1, 2, ... apart that every night shares (the run
+    /// files' `bin_correlation`; empty: independent bins).
+    #[serde(default)]
+    pub bin_correlation: Vec<f64>,
     /// Bin-centre frequency of grid bin 0 (the first night's lowest bin), Hz.
     pub rf_origin_hz: f64,
     /// RF bins per block.
@@ -165,6 +169,7 @@ impl State {
             tool_version: env!("CARGO_PKG_VERSION").into(),
             config_hash,
             bin_width_hz: 0.0,
+            bin_correlation: Vec::new(),
             rf_origin_hz: 0.0,
             block_bins: block_bins.max(1),
             grid_bins: None,

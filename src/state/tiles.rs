@@ -78,8 +78,13 @@ impl<'p> Stages<'p> {
         for tile in tiles.clone() {
             let input = self.input_bins(st, tile);
             let mut sp = spectrum_of(st, sums, input.clone(), without_lines, step_span_hz);
-            let info =
-                NightInfo { bin_width_hz: st.bin_width_hz, n_bins: 0, rf_span_hz: (st.freq_hz(input.start), st.freq_hz(input.end - 1)), headers: Vec::new() };
+            let info = NightInfo {
+                bin_width_hz: st.bin_width_hz,
+                n_bins: 0,
+                rf_span_hz: (st.freq_hz(input.start), st.freq_hz(input.end - 1)),
+                headers: Vec::new(),
+                bin_correlation: st.bin_correlation.clone(),
+            };
             for stage in self.built(&info, Form::Combined)? {
                 stage.apply(&mut sp, steps)?;
             }
@@ -98,6 +103,7 @@ impl<'p> Stages<'p> {
             n_bins: 0,
             rf_span_hz: (span.rf_start_hz, span.freq_hz(span.combined.len().saturating_sub(1))),
             headers: Vec::new(),
+            bin_correlation: st.bin_correlation.clone(),
         };
         for stage in self.built(&info, Form::Grand)? {
             stage.apply(&mut span, steps)?;
