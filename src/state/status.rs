@@ -120,8 +120,9 @@ impl StatusSummary {
 impl State {
     /// Records the limit range of an update from its per-bin limits: over the covered bins
     /// that no open tracked candidate holds (a candidate within `match_hz` of a bin's
-    /// frequency holds it; only the candidate blocks of the spectrum's span are read). Limits computed with every current candidate blocked are
-    /// recomputed here with only the open ones blocked, from the same `sigma_eff`.
+    /// frequency holds it; only the candidate blocks of the spectrum's span are read).
+    /// Limits computed with every current candidate blocked are recomputed here with only
+    /// the open ones blocked, from the same `sigma_eff`.
     pub fn record_limit(&mut self, limits: &crate::limits::Limits, spectrum: &crate::stage::Spectrum, match_hz: f64) {
         let first_bin = ((spectrum.rf_start_hz - self.rf_origin_hz) / self.bin_width_hz).round() as i64;
         let reach = (match_hz / self.bin_width_hz).ceil() as i64;

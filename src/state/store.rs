@@ -197,7 +197,8 @@ impl State {
                 return Err(io(
                     &index,
                     format!(
-                        "field `schema_version` is {v}; this build reads version {STATE_SCHEMA_VERSION} only (version 3 and earlier kept the candidates in state.json; start a new state folder and add the nights again)"
+                        "field `schema_version` is {v}; this build reads version {STATE_SCHEMA_VERSION} only ({})",
+                        "version 3 and earlier kept the candidates in state.json; start a new state folder and add the nights again"
                     ),
                 ));
             }
@@ -297,8 +298,8 @@ impl State {
     }
 
     /// Saves as the next generation: the changed blocks of the sums and of the candidates and
-    /// the new nights' IF profiles under new names, then `state.json` (the commit, a rename), then removes the files
-    /// the new index no longer names. A run killed at any point leaves either the previous
+    /// the new nights' IF profiles under new names, then `state.json` (the commit, a rename),
+    /// then removes the files the new index no longer names. A run killed at any point leaves either the previous
     /// `state.json` with every file it names, or the new one with every file it names.
     pub fn save(&mut self, dir: &Path) -> Result<(), StateError> {
         let (blocks_dir, nights_dir, cands_dir) = (dir.join("blocks"), dir.join("nights"), dir.join("candidates"));
