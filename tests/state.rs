@@ -11,8 +11,13 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 fn night(seed: u64, first_cavity_hz: f64, dir: &Path, axion: bool) -> PathBuf {
+    night_of_steps(seed, first_cavity_hz, dir, axion, 200)
+}
+
+/// A night like [`night`] of `n_steps` steps.
+fn night_of_steps(seed: u64, first_cavity_hz: f64, dir: &Path, axion: bool, n_steps: usize) -> PathBuf {
     let mut sc = null_scenario(seed);
-    sc.scan.n_steps = 200;
+    sc.scan.n_steps = n_steps;
     sc.scan.first_cavity_freq_hz = first_cavity_hz;
     if axion {
         sc.axion.push(Axion { freq_hz: 5.2021e9, coupling_rel_ksvz: 1.2 });
@@ -56,7 +61,9 @@ fn incremental_equals_batch_over_three_nights() {
     assert_eq!((incremental.rf_origin_hz, incremental.grid_bins), (batch.rf_origin_hz, batch.grid_bins));
     let (a, b) = (&last.unwrap().reduction.spectrum, &updates[2].reduction.spectrum);
     assert_eq!(bits(&a.grand), bits(&b.grand));
-    assert_eq!(incremental.candidates, batch.candidates);
+    assert!(incremental.candidates.len() > 10, "{} candidates", incremental.candidates.len());
+    assert_eq!(incremental.candidates.all().unwrap(), batch.candidates.all().unwrap());
+    assert_eq!(incremental.candidates.by_class, batch.candidates.by_class);
     assert_eq!(incremental.nights.len(), 3);
     // The third night extends the grid below the first one's origin.
     assert!(incremental.grid_bins.unwrap().0 < 0);
@@ -121,6 +128,11 @@ fn refusals_are_clear() {
     std::fs::write(&index, text).unwrap();
     let err = State::load(&state_dir).unwrap_err().to_string();
     assert!(err.contains("schema_version` is 2") && err.contains("start a new state folder"), "{err}");
+    // And one of the layout with every candidate in state.json (version 3).
+    let text = std::fs::read_to_string(&index).unwrap().replace("\"schema_version\": 2", "\"schema_version\": 3");
+    std::fs::write(&index, text).unwrap();
+    let err = State::load(&state_dir).unwrap_err().to_string();
+    assert!(err.contains("state.json") && err.contains("schema_version` is 3") && err.contains("start a new state folder"), "{err}");
 }
 
 /// Acceptance: `axsift reduce --state` killed with SIGKILL at several moments leaves a state
@@ -157,15 +169,19 @@ fn a_killed_update_leaves_a_usable_state() {
         let _ = child.wait();
         let after = State::load(&state_dir).unwrap().expect("a state survives");
         assert!(after.nights.len() == 1 || after.nights.len() == 2);
+        // Every candidate block it names is there and reads.
+        assert_eq!(after.candidates.all().unwrap().len(), after.candidates.len(), "kill after {delay_ms} ms");
         if after.nights.len() == 1 {
             let out = run(&state_dir, &second);
             assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
         }
         let done = State::load(&state_dir).unwrap().unwrap();
         assert_eq!(bits(&whole(&done).weighted_sum), bits(&whole(&expected).weighted_sum), "kill after {delay_ms} ms");
+        assert!(!expected.candidates.is_empty());
         assert_eq!(done.candidates, expected.candidates);
         // What the killed run left behind is gone once an update has committed.
         assert_eq!(files_in(&state_dir.join("blocks")), named_blocks(&done), "kill after {delay_ms} ms");
+        assert_eq!(files_in(&state_dir.join("candidates")), named_candidate_blocks(&done), "kill after {delay_ms} ms");
         assert_eq!(files_in(&state_dir.join("nights")), vec!["night-0.h5".to_string(), "night-1.h5".to_string()]);
     }
 }
@@ -182,6 +198,99 @@ fn named_blocks(st: &State) -> Vec<String> {
     let mut names: Vec<String> = st.blocks.iter().map(|b| format!("b{}-g{}.h5", b.index, b.generation)).collect();
     names.sort();
     names
+}
+
+/// The candidate files a state's index names, sorted.
+fn named_candidate_blocks(st: &State) -> Vec<String> {
+    let mut names: Vec<String> = st.candidates.blocks.iter().map(|b| format!("c{}-g{}.json", b.index, b.generation)).collect();
+    names.sort();
+    names
+}
+
+/// Copies a state folder (its files and its subfolders' files).
+fn copy_state(from: &Path, to: &Path) {
+    for entry in std::fs::read_dir(from).unwrap() {
+        let entry = entry.unwrap();
+        let target = to.join(entry.file_name());
+        if entry.file_type().unwrap().is_dir() {
+            std::fs::create_dir_all(&target).unwrap();
+            copy_state(&entry.path(), &target);
+        } else {
+            std::fs::create_dir_all(to).unwrap();
+            std::fs::copy(entry.path(), &target).unwrap();
+        }
+    }
+}
+
+/// Acceptance: the candidates are kept with the blocks they lie in, and `state.json` holds
+/// none. A night of 10 steps (1.4 blocks) inside the first night's band (11 blocks of 4096
+/// bins) leaves every candidate file outside the span it recomputes as it was (same name, so
+/// same generation, same inode, same bytes), and the update never reads them: with those
+/// files replaced by garbage, the same update succeeds and writes the same candidate files in
+/// its span, while listing the whole campaign (`status`) then fails with a message naming the
+/// damaged file, exit status 2.
+#[test]
+fn an_update_leaves_the_candidate_blocks_outside_its_span_untouched() {
+    use std::os::unix::fs::MetadataExt;
+    // A threshold of 2.355 (target SNR 4 at 95 %) flags many noise runs: candidates in most blocks.
+    let plan = config::load(&PIPELINE.replace("target_snr = 5.0", "target_snr = 4.0"), "pipeline.toml").unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let (state_dir, copy_dir) = (dir.path().join("state"), dir.path().join("copy"));
+    let mut st = State::with_block_bins(state::plan_hash(&plan), 4096);
+    state::add_nights(&mut st, &plan, &[vec![night(81, 5.2e9, dir.path(), false)]]).unwrap();
+    st.save(&state_dir).unwrap();
+    copy_state(&state_dir, &copy_dir);
+    let before = State::load(&state_dir).unwrap().unwrap();
+    let index_text = std::fs::read_to_string(state_dir.join("state.json")).unwrap();
+    assert!(!index_text.contains("evidence") && !index_text.contains("frequency_hz"), "state.json lists candidates");
+    let cand_dir = state_dir.join("candidates");
+    let identity = |dir: &Path, name: &str| {
+        let path = dir.join(name);
+        (std::fs::metadata(&path).unwrap().ino(), std::fs::read(&path).unwrap())
+    };
+    let stored: Vec<_> = before.candidates.blocks.iter().map(|b| (b.clone(), identity(&cand_dir, &format!("c{}-g{}.json", b.index, b.generation)))).collect();
+
+    // 10 steps: 5896 bins, 2 MHz into the first night's band.
+    let short = night_of_steps(82, 5.202e9, dir.path(), false, 10);
+    let mut st = State::load(&state_dir).unwrap().unwrap();
+    let update = state::add_nights(&mut st, &plan, &[vec![short.clone()]]).unwrap().remove(0);
+    st.save(&state_dir).unwrap();
+    let sp = &update.reduction.spectrum;
+    let first = first_bin(&st, sp);
+    let reach = (update.match_hz / st.bin_width_hz).ceil() as i64;
+    let read = st.block_of(first - reach - 1)..=st.block_of(first + sp.grand.len() as i64 + reach);
+    assert!(read.clone().count() <= 8, "the update's span {first}+{} is short", sp.grand.len());
+    let after = State::load(&state_dir).unwrap().unwrap();
+    let outside: Vec<_> = stored.iter().filter(|(b, _)| !read.contains(&b.index)).collect();
+    assert!(outside.iter().filter(|(b, _)| b.count > 0).count() >= 3, "candidates outside the span: {outside:?}");
+    for (b, id) in &outside {
+        assert!(after.candidates.blocks.contains(b), "block {} was rewritten: {:?}", b.index, after.candidates.blocks);
+        assert_eq!(&identity(&state_dir.join("candidates"), &format!("c{}-g{}.json", b.index, b.generation)), id, "block {}", b.index);
+    }
+    // The night covered candidates of the first one and changed their class: the blocks
+    // holding them were written under the new generation.
+    let rewritten: Vec<_> = after.candidates.blocks.iter().filter(|b| b.generation == after.generation).collect();
+    assert!(!rewritten.is_empty() && rewritten.iter().all(|b| read.contains(&b.index)), "{:?}", after.candidates.blocks);
+    assert!(after.candidates.iter().any(|c| c.first_night == 0 && c.class != Class::New));
+    assert_eq!(after.candidates.all().unwrap().len(), after.candidates.len());
+
+    // The same update on the copy, every candidate file outside the span damaged.
+    for (b, _) in &outside {
+        std::fs::write(copy_dir.join("candidates").join(format!("c{}-g{}.json", b.index, b.generation)), "not json").unwrap();
+    }
+    let mut damaged = State::load(&copy_dir).unwrap().unwrap();
+    state::add_nights(&mut damaged, &plan, &[vec![short]]).unwrap();
+    damaged.save(&copy_dir).unwrap();
+    for b in &rewritten {
+        let name = format!("c{}-g{}.json", b.index, b.generation);
+        assert_eq!(std::fs::read(copy_dir.join("candidates").join(&name)).unwrap(), std::fs::read(state_dir.join("candidates").join(&name)).unwrap(), "{name}");
+    }
+    let err = State::load(&copy_dir).unwrap().unwrap().candidates.all().unwrap_err().to_string();
+    assert!(err.contains("candidates") && err.contains(".json") && err.contains("not a candidate block"), "{err}");
+    let exe = env!("CARGO_BIN_EXE_axsift");
+    let status = Command::new(exe).args(["status", "--state"]).arg(&copy_dir).output().unwrap();
+    assert_eq!(status.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&status.stderr).contains("not a candidate block"), "{}", String::from_utf8_lossy(&status.stderr));
 }
 
 /// Grid bin of a spectrum's first bin.
