@@ -4,8 +4,8 @@
 //! a message naming `state.json` and the field):
 //! - `state.json`: schema version, tool version, config hash, the RF grid (origin: the first
 //!   night's lowest bin, bin width, the nights' shared `bin_correlation`, `block_bins`,
-//!   `grid_bins` spanned so far), the stored
-//!   `blocks` (index, the generation that wrote it, covered bins), every night added (its run
+//!   `grid_bins` spanned so far), the stored `blocks` (index, the generation that wrote it,
+//!   covered bins), every night added (its run
 //!   files with SHA-256 and step counts, the steps used, and the lines of its IF profile:
 //!   `if_lines` with `if_bin`, `if_offset_hz`, `if_profile_sigma`, `n_steps`), `candidates`
 //!   (`by_class`: the tracked candidates per class over the campaign; `blocks`: the stored
