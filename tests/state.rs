@@ -79,13 +79,13 @@ fn rescan_clears_fluctuations_and_keeps_the_signal() {
     let first = night(11, 5.2e9, dir.path(), true);
     let rescan = night(12, 5.2e9, dir.path(), true);
     state::add_nights(&mut st, &plan, &[vec![first]]).unwrap();
-    let noise_first: Vec<f64> = st.candidates.iter().filter(|c| (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
+    let noise_first: Vec<f64> = st.candidates.all().unwrap().iter().filter(|c| (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
     assert!(!noise_first.is_empty(), "the first night should have noise candidates to clear");
     state::add_nights(&mut st, &plan, &[vec![rescan]]).unwrap();
-    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion tracked");
+    let axion = st.candidates.all().unwrap().iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion tracked");
     assert_eq!(axion.class, Class::Persists, "{}", axion.evidence);
     assert!(axion.rescan_integration_s.is_finite() && axion.rescan_integration_s > 0.0);
-    let cleared = st.candidates.iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
+    let cleared = st.candidates.all().unwrap().iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
     // A fluctuation above 3.355 stays above it after a second, independent night with
     // probability well under 10%.
     assert!(cleared as f64 >= 0.8 * noise_first.len() as f64, "{cleared} of {} cleared", noise_first.len());
@@ -271,7 +271,7 @@ fn an_update_leaves_the_candidate_blocks_outside_its_span_untouched() {
     // holding them were written under the new generation.
     let rewritten: Vec<_> = after.candidates.blocks.iter().filter(|b| b.generation == after.generation).collect();
     assert!(!rewritten.is_empty() && rewritten.iter().all(|b| read.contains(&b.index)), "{:?}", after.candidates.blocks);
-    assert!(after.candidates.iter().any(|c| c.first_night == 0 && c.class != Class::New));
+    assert!(after.candidates.all().unwrap().iter().any(|c| c.first_night == 0 && c.class != Class::New));
     assert_eq!(after.candidates.all().unwrap().len(), after.candidates.len());
 
     // The same update on the copy, every candidate file outside the span damaged.
@@ -368,7 +368,11 @@ fn span_updates_agree_with_the_whole_campaign_at_block_edges() {
             j += 1;
         }
         let f = st.freq_hz(first + peak as i64) - st.bin_width_hz / 2.0;
-        assert!(st.candidates.iter().any(|c| (c.frequency_hz - f).abs() <= 2.0 * match_hz), "run at {f} Hz (grand {}) is not tracked", grand[peak]);
+        assert!(
+            st.candidates.all().unwrap().iter().any(|c| (c.frequency_hz - f).abs() <= 2.0 * match_hz),
+            "run at {f} Hz (grand {}) is not tracked",
+            grand[peak]
+        );
     }
 
     let other = dir.path().join("other.toml");
@@ -424,7 +428,7 @@ fn an_if_fixed_line_is_interference_and_the_axion_persists() {
     assert!(outside.is_empty(), "IF lines away from the burst: {outside:?}");
 
     let (lo, hi) = burst_rf_span_hz(41);
-    let bursty: Vec<_> = st.candidates.iter().filter(|c| c.frequency_hz > lo - 5e3 && c.frequency_hz < hi).collect();
+    let bursty: Vec<_> = st.candidates.all().unwrap().iter().filter(|c| c.frequency_hz > lo - 5e3 && c.frequency_hz < hi).collect();
     assert!(!bursty.is_empty(), "the burst should make candidates in {lo}..{hi} Hz: {:#?}", st.candidates);
     let interference: Vec<_> = bursty.iter().filter(|c| c.class == Class::Interference).collect();
     assert!(interference.len() as f64 >= 0.8 * bursty.len() as f64, "{:#?}", bursty);
@@ -436,25 +440,25 @@ fn an_if_fixed_line_is_interference_and_the_axion_persists() {
         assert!(ev.lines.iter().all(|l| l.if_offset_hz == l.if_bin as f64 * 100.0));
         assert!(c.evidence.contains("fixed-IF line") && c.evidence.contains("IF bin"), "{}", c.evidence);
     }
-    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion flagged");
+    let axion = st.candidates.all().unwrap().iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion flagged");
     assert_eq!(axion.class, Class::New, "{}", axion.evidence);
     let noise_first: Vec<f64> =
-        st.candidates.iter().filter(|c| c.class == Class::New && (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
+        st.candidates.all().unwrap().iter().filter(|c| c.class == Class::New && (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
 
     let state_dir = dir.path().join("state");
     st.save(&state_dir).unwrap();
     let mut st = State::load(&state_dir).unwrap().unwrap();
-    assert_eq!(st.candidates.iter().filter(|c| c.class == Class::Interference).count(), n_interference);
+    assert_eq!(st.candidates.all().unwrap().iter().filter(|c| c.class == Class::Interference).count(), n_interference);
     let profile = st.if_profile(0).unwrap();
     assert!(profile.if_profile_sigma.len() == 4096 && profile.if_steps.iter().all(|&n| n <= 200));
 
     state::add_nights(&mut st, &plan, &[vec![night(42, 5.2e9, dir.path(), true)]]).unwrap();
     assert!(st.nights[1].if_lines.iter().all(|l| !BURST_IF_BINS.contains(&l.if_bin)), "{:?}", st.nights[1].if_lines);
-    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).unwrap();
+    let axion = st.candidates.all().unwrap().iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).unwrap();
     assert_eq!(axion.class, Class::Persists, "{}", axion.evidence);
-    let cleared = st.candidates.iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
+    let cleared = st.candidates.all().unwrap().iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
     assert!(cleared as f64 >= 0.7 * noise_first.len() as f64, "{cleared} of {} cleared", noise_first.len());
-    assert_eq!(st.candidates.iter().filter(|c| c.class == Class::Interference).count(), n_interference, "interference stays interference");
+    assert_eq!(st.candidates.all().unwrap().iter().filter(|c| c.class == Class::Interference).count(), n_interference, "interference stays interference");
 }
 
 /// The IF profile is accumulated in step order whatever the thread count: one and two
@@ -496,7 +500,7 @@ fn status_reports_text_and_json() {
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     }
     let st = State::load(&state_dir).unwrap().unwrap();
-    let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
+    let count = |k: Class| st.candidates.all().unwrap().iter().filter(|c| c.class == k).count();
     assert!(count(Class::Interference) > 0 && count(Class::Persists) > 0);
 
     let text = Command::new(exe).args(["status", "--state"]).arg(&state_dir).output().unwrap();

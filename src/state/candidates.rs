@@ -87,15 +87,6 @@ impl ClassCounts {
     }
 }
 
-/// The value, or the program ends with the error and exit status 2 (a state file that cannot
-/// be read is bad input).
-fn or_exit<T>(result: Result<T, StateError>) -> T {
-    result.unwrap_or_else(|e| {
-        eprintln!("error: {e}");
-        std::process::exit(2)
-    })
-}
-
 impl Candidates {
     /// Every tracked candidate of the campaign, in increasing frequency: the blocks changed
     /// in memory as they are now, the others as stored (each candidate file is read once).
@@ -109,13 +100,6 @@ impl Candidates {
             listing.extend_from_slice(&self.block(index)?);
         }
         Ok(self.listing.get_or_init(|| listing))
-    }
-
-    /// The listing of [`Candidates::all`], for the command line's reports: a candidate file
-    /// that cannot be read ends the program with an error naming it and exit status 2 (use
-    /// [`Candidates::all`] to handle the error instead).
-    pub fn iter(&self) -> std::slice::Iter<'_, TrackedCandidate> {
-        or_exit(self.all()).iter()
     }
 
     /// Number of tracked candidates (from the counts in `state.json`; reads no file).
@@ -235,9 +219,9 @@ impl State {
 
     /// The open candidates of the blocks within `reach` bins of grid bins `bins`, for the
     /// limit of an update (those blocks were read by the update; a state loaded afresh reads
-    /// them, and a file that cannot be read ends the program as [`Candidates::iter`] does).
-    pub(super) fn open_candidates_near(&mut self, bins: Range<i64>, reach: i64) -> Vec<TrackedCandidate> {
-        let (_, list) = or_exit(self.take_candidates(bins, reach));
-        list.into_iter().filter(|c| c.class.is_open()).collect()
+    /// them, and errors naming a file that cannot be read).
+    pub(super) fn open_candidates_near(&mut self, bins: Range<i64>, reach: i64) -> Result<Vec<TrackedCandidate>, StateError> {
+        let (_, list) = self.take_candidates(bins, reach)?;
+        Ok(list.into_iter().filter(|c| c.class.is_open()).collect())
     }
 }

@@ -1,6 +1,6 @@
 //! What `axsift status` reports about a state, as one serialisable summary.
 
-use super::{Class, LimitRange, State};
+use super::{Class, LimitRange, State, StateError};
 use serde::{Deserialize, Serialize};
 
 /// The state at a glance: nights and files, coverage, candidates by class, the limit range.
@@ -78,9 +78,9 @@ pub struct CandidateSummary {
 
 impl StatusSummary {
     /// Summarises a loaded state (reading every candidate block: the listing is the whole
-    /// campaign's).
-    pub fn of(st: &State) -> Self {
-        Self {
+    /// campaign's). Errors when a candidate file cannot be read.
+    pub fn of(st: &State) -> Result<Self, StateError> {
+        Ok(Self {
             schema_version: st.schema_version,
             generation: st.generation,
             nights: st
@@ -101,6 +101,7 @@ impl StatusSummary {
             candidates_by_class: st.candidates.by_class.clone(),
             candidates: st
                 .candidates
+                .all()?
                 .iter()
                 .map(|c| CandidateSummary {
                     frequency_hz: c.frequency_hz,
@@ -113,7 +114,7 @@ impl StatusSummary {
                 })
                 .collect(),
             limit: st.limit.clone(),
-        }
+        })
     }
 }
 
@@ -123,10 +124,11 @@ impl State {
     /// frequency holds it; only the candidate blocks of the spectrum's span are read).
     /// Limits computed with every current candidate blocked are recomputed here with only
     /// the open ones blocked, from the same `sigma_eff`.
-    pub fn record_limit(&mut self, limits: &crate::limits::Limits, spectrum: &crate::stage::Spectrum, match_hz: f64) {
+    /// Errors when a candidate file of the state cannot be read.
+    pub fn record_limit(&mut self, limits: &crate::limits::Limits, spectrum: &crate::stage::Spectrum, match_hz: f64) -> Result<(), StateError> {
         let first_bin = ((spectrum.rf_start_hz - self.rf_origin_hz) / self.bin_width_hz).round() as i64;
         let reach = (match_hz / self.bin_width_hz).ceil() as i64;
-        let tracked = self.open_candidates_near(first_bin..first_bin + spectrum.grand.len() as i64, reach);
+        let tracked = self.open_candidates_near(first_bin..first_bin + spectrum.grand.len() as i64, reach)?;
         let open: Vec<usize> = spectrum
             .candidates
             .iter()
@@ -144,5 +146,6 @@ impl State {
             max_rel_ksvz: excluded.iter().map(|b| b.rel_ksvz).fold(f64::NEG_INFINITY, f64::max),
             excluded_span_hz: (excluded[0].freq_hz, excluded[excluded.len() - 1].freq_hz),
         });
+        Ok(())
     }
 }
