@@ -5,9 +5,9 @@
 # (one step per 128 bins, 4 M RF bins a night at most), with the default pipeline but a
 # 31-bin Savitzky-Golay window (a 128-bin step cannot hold the default 401). Each measured
 # update starts from a hard-linked copy of the built state (an update never changes a file
-# in place: it writes new block files and renames a new state.json), so every run sees the
-# same state. Prints median wall time and peak RSS (/usr/bin/time) of RUNS runs per case,
-# and the same night reduced without a state beside it.
+# in place: it writes new block and candidate files and renames a new state.json), so every
+# run sees the same state. Prints median wall time and peak RSS (/usr/bin/time) of RUNS runs
+# per case, and the same night reduced without a state beside it.
 #
 #   bash scripts/bench_state.sh            # RUNS=5, work in a temporary folder
 #   RUNS=3 WORK=/tmp/bs bash scripts/bench_state.sh
@@ -57,7 +57,8 @@ build() {
         "$exe" -q reduce --config "$work/bench.toml" --state "$dir" --out "$work/build-out" "$work/build.h5"
     done
     rm -rf "$work/build.h5" "$work/build-out"
-    echo "built $1: $("$exe" status --json --state "$dir" | grep -o '"covered_hz": [0-9.e+]*'), $(du -sh "$dir" | cut -f1) on disk, $(($(date +%s) - t0)) s"
+    echo "built $1: $("$exe" status --json --state "$dir" | grep -o '"covered_hz": [0-9.e+]*'), $(du -sh "$dir" | cut -f1) on disk" \
+        "(state.json $(du -h "$dir/state.json" | cut -f1), candidates/ $(du -sh "$dir/candidates" | cut -f1) in $(ls "$dir/candidates" | wc -l) files), $(($(date +%s) - t0)) s"
 }
 
 median() { sort -g | awk '{v[NR] = $1} END {print v[int((NR + 1) / 2)]}'; }

@@ -526,13 +526,13 @@ fn reduce_into_state(
     let calibrated = calibration.as_ref().zip(limits.as_ref());
     let written = update.reduction.write(out, config_text, &provenance, calibrated)?;
     if let Some(limits) = &limits {
-        st.record_limit(limits, &update.reduction.spectrum, update.match_hz);
+        st.record_limit(limits, &update.reduction.spectrum, update.match_hz).map_err(|e| Failure::BadInput(e.into()))?;
     }
     st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
     if !quiet {
         let summary = update.reduction.summary(&provenance, calibrated.map(|c| c.0), calibrated.map(|c| c.1));
         print!("{}", output::console::night_report(&update.reduction, &summary, calibrated, &written));
-        print!("{}", output::console::state_report(&st, &update.changes));
+        print!("{}", output::console::state_report(&st, &update.changes).map_err(|e| Failure::BadInput(e.into()))?);
     }
     Ok(())
 }
@@ -542,10 +542,13 @@ fn status(state_dir: &Path, json: bool) -> Result<(), Failure> {
         .map_err(|e| Failure::BadInput(e.into()))?
         .ok_or_else(|| Failure::BadInput(anyhow::anyhow!("{}: no state.json here", state_dir.display())))?;
     if json {
-        println!("{}", serde_json::to_string_pretty(&axsift::state::StatusSummary::of(&st)).context("formatting JSON")?);
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&axsift::state::StatusSummary::of(&st).map_err(|e| Failure::BadInput(e.into()))?).context("formatting JSON")?
+        );
         return Ok(());
     }
-    print!("{}", output::console::state_report(&st, &[]));
+    print!("{}", output::console::state_report(&st, &[]).map_err(|e| Failure::BadInput(e.into()))?);
     if st.limit.is_none() {
         println!("  limit: none recorded (no update of this state was made with --calibration)");
     }
@@ -634,7 +637,7 @@ fn write_report(dir: &Path, calibration: Option<&Path>, state_dir: Option<&Path>
         let st = axsift::state::State::load(state_dir)
             .map_err(|e| Failure::BadInput(e.into()))?
             .ok_or_else(|| Failure::BadInput(anyhow::anyhow!("{}: no state.json here", state_dir.display())))?;
-        data = data.with_state(&st);
+        data = data.with_state(&st).map_err(|e| Failure::BadInput(e.into()))?;
     }
     let path = axsift::report::write(dir, &data)?;
     if !quiet {
@@ -706,7 +709,7 @@ fn shard_merge(t: &MergeTarget, quiet: bool) -> Result<(), Failure> {
                 let calibrated = calibrated.as_ref().map(|(c, l)| (c.as_ref(), l.as_ref()));
                 let summary = update.reduction.summary(&provenance, calibrated.map(|c| c.0), calibrated.map(|c| c.1));
                 print!("{}", output::console::night_report(&update.reduction, &summary, calibrated, &written));
-                print!("{}", output::console::state_report(&state, &update.changes));
+                print!("{}", output::console::state_report(&state, &update.changes).map_err(|e| Failure::BadInput(e.into()))?);
             }
             axsift::shard::Merged::Campaign { calibration, written } => print!("{}", output::console::calibration_report(&calibration, &written)),
         }

@@ -11,8 +11,13 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 fn night(seed: u64, first_cavity_hz: f64, dir: &Path, axion: bool) -> PathBuf {
+    night_of_steps(seed, first_cavity_hz, dir, axion, 200)
+}
+
+/// A night like [`night`] of `n_steps` steps.
+fn night_of_steps(seed: u64, first_cavity_hz: f64, dir: &Path, axion: bool, n_steps: usize) -> PathBuf {
     let mut sc = null_scenario(seed);
-    sc.scan.n_steps = 200;
+    sc.scan.n_steps = n_steps;
     sc.scan.first_cavity_freq_hz = first_cavity_hz;
     if axion {
         sc.axion.push(Axion { freq_hz: 5.2021e9, coupling_rel_ksvz: 1.2 });
@@ -56,7 +61,9 @@ fn incremental_equals_batch_over_three_nights() {
     assert_eq!((incremental.rf_origin_hz, incremental.grid_bins), (batch.rf_origin_hz, batch.grid_bins));
     let (a, b) = (&last.unwrap().reduction.spectrum, &updates[2].reduction.spectrum);
     assert_eq!(bits(&a.grand), bits(&b.grand));
-    assert_eq!(incremental.candidates, batch.candidates);
+    assert!(incremental.candidates.len() > 10, "{} candidates", incremental.candidates.len());
+    assert_eq!(incremental.candidates.all().unwrap(), batch.candidates.all().unwrap());
+    assert_eq!(incremental.candidates.by_class, batch.candidates.by_class);
     assert_eq!(incremental.nights.len(), 3);
     // The third night extends the grid below the first one's origin.
     assert!(incremental.grid_bins.unwrap().0 < 0);
@@ -72,13 +79,13 @@ fn rescan_clears_fluctuations_and_keeps_the_signal() {
     let first = night(11, 5.2e9, dir.path(), true);
     let rescan = night(12, 5.2e9, dir.path(), true);
     state::add_nights(&mut st, &plan, &[vec![first]]).unwrap();
-    let noise_first: Vec<f64> = st.candidates.iter().filter(|c| (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
+    let noise_first: Vec<f64> = st.candidates.all().unwrap().iter().filter(|c| (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
     assert!(!noise_first.is_empty(), "the first night should have noise candidates to clear");
     state::add_nights(&mut st, &plan, &[vec![rescan]]).unwrap();
-    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion tracked");
+    let axion = st.candidates.all().unwrap().iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion tracked");
     assert_eq!(axion.class, Class::Persists, "{}", axion.evidence);
     assert!(axion.rescan_integration_s.is_finite() && axion.rescan_integration_s > 0.0);
-    let cleared = st.candidates.iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
+    let cleared = st.candidates.all().unwrap().iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
     // A fluctuation above 3.355 stays above it after a second, independent night with
     // probability well under 10%.
     assert!(cleared as f64 >= 0.8 * noise_first.len() as f64, "{cleared} of {} cleared", noise_first.len());
@@ -121,6 +128,11 @@ fn refusals_are_clear() {
     std::fs::write(&index, text).unwrap();
     let err = State::load(&state_dir).unwrap_err().to_string();
     assert!(err.contains("schema_version` is 2") && err.contains("start a new state folder"), "{err}");
+    // And one of the layout with every candidate in state.json (version 3).
+    let text = std::fs::read_to_string(&index).unwrap().replace("\"schema_version\": 2", "\"schema_version\": 3");
+    std::fs::write(&index, text).unwrap();
+    let err = State::load(&state_dir).unwrap_err().to_string();
+    assert!(err.contains("state.json") && err.contains("schema_version` is 3") && err.contains("start a new state folder"), "{err}");
 }
 
 /// Acceptance: `axsift reduce --state` killed with SIGKILL at several moments leaves a state
@@ -157,15 +169,19 @@ fn a_killed_update_leaves_a_usable_state() {
         let _ = child.wait();
         let after = State::load(&state_dir).unwrap().expect("a state survives");
         assert!(after.nights.len() == 1 || after.nights.len() == 2);
+        // Every candidate block it names is there and reads.
+        assert_eq!(after.candidates.all().unwrap().len(), after.candidates.len(), "kill after {delay_ms} ms");
         if after.nights.len() == 1 {
             let out = run(&state_dir, &second);
             assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
         }
         let done = State::load(&state_dir).unwrap().unwrap();
         assert_eq!(bits(&whole(&done).weighted_sum), bits(&whole(&expected).weighted_sum), "kill after {delay_ms} ms");
+        assert!(!expected.candidates.is_empty());
         assert_eq!(done.candidates, expected.candidates);
         // What the killed run left behind is gone once an update has committed.
         assert_eq!(files_in(&state_dir.join("blocks")), named_blocks(&done), "kill after {delay_ms} ms");
+        assert_eq!(files_in(&state_dir.join("candidates")), named_candidate_blocks(&done), "kill after {delay_ms} ms");
         assert_eq!(files_in(&state_dir.join("nights")), vec!["night-0.h5".to_string(), "night-1.h5".to_string()]);
     }
 }
@@ -182,6 +198,99 @@ fn named_blocks(st: &State) -> Vec<String> {
     let mut names: Vec<String> = st.blocks.iter().map(|b| format!("b{}-g{}.h5", b.index, b.generation)).collect();
     names.sort();
     names
+}
+
+/// The candidate files a state's index names, sorted.
+fn named_candidate_blocks(st: &State) -> Vec<String> {
+    let mut names: Vec<String> = st.candidates.blocks.iter().map(|b| format!("c{}-g{}.json", b.index, b.generation)).collect();
+    names.sort();
+    names
+}
+
+/// Copies a state folder (its files and its subfolders' files).
+fn copy_state(from: &Path, to: &Path) {
+    for entry in std::fs::read_dir(from).unwrap() {
+        let entry = entry.unwrap();
+        let target = to.join(entry.file_name());
+        if entry.file_type().unwrap().is_dir() {
+            std::fs::create_dir_all(&target).unwrap();
+            copy_state(&entry.path(), &target);
+        } else {
+            std::fs::create_dir_all(to).unwrap();
+            std::fs::copy(entry.path(), &target).unwrap();
+        }
+    }
+}
+
+/// Acceptance: the candidates are kept with the blocks they lie in, and `state.json` holds
+/// none. A night of 10 steps (1.4 blocks) inside the first night's band (11 blocks of 4096
+/// bins) leaves every candidate file outside the span it recomputes as it was (same name, so
+/// same generation, same inode, same bytes), and the update never reads them: with those
+/// files replaced by garbage, the same update succeeds and writes the same candidate files in
+/// its span, while listing the whole campaign (`status`) then fails with a message naming the
+/// damaged file, exit status 2.
+#[test]
+fn an_update_leaves_the_candidate_blocks_outside_its_span_untouched() {
+    use std::os::unix::fs::MetadataExt;
+    // A threshold of 2.355 (target SNR 4 at 95 %) flags many noise runs: candidates in most blocks.
+    let plan = config::load(&PIPELINE.replace("target_snr = 5.0", "target_snr = 4.0"), "pipeline.toml").unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let (state_dir, copy_dir) = (dir.path().join("state"), dir.path().join("copy"));
+    let mut st = State::with_block_bins(state::plan_hash(&plan), 4096);
+    state::add_nights(&mut st, &plan, &[vec![night(81, 5.2e9, dir.path(), false)]]).unwrap();
+    st.save(&state_dir).unwrap();
+    copy_state(&state_dir, &copy_dir);
+    let before = State::load(&state_dir).unwrap().unwrap();
+    let index_text = std::fs::read_to_string(state_dir.join("state.json")).unwrap();
+    assert!(!index_text.contains("evidence") && !index_text.contains("frequency_hz"), "state.json lists candidates");
+    let cand_dir = state_dir.join("candidates");
+    let identity = |dir: &Path, name: &str| {
+        let path = dir.join(name);
+        (std::fs::metadata(&path).unwrap().ino(), std::fs::read(&path).unwrap())
+    };
+    let stored: Vec<_> = before.candidates.blocks.iter().map(|b| (b.clone(), identity(&cand_dir, &format!("c{}-g{}.json", b.index, b.generation)))).collect();
+
+    // 10 steps: 5896 bins, 2 MHz into the first night's band.
+    let short = night_of_steps(82, 5.202e9, dir.path(), false, 10);
+    let mut st = State::load(&state_dir).unwrap().unwrap();
+    let update = state::add_nights(&mut st, &plan, &[vec![short.clone()]]).unwrap().remove(0);
+    st.save(&state_dir).unwrap();
+    let sp = &update.reduction.spectrum;
+    let first = first_bin(&st, sp);
+    let reach = (update.match_hz / st.bin_width_hz).ceil() as i64;
+    let read = st.block_of(first - reach - 1)..=st.block_of(first + sp.grand.len() as i64 + reach);
+    assert!(read.clone().count() <= 8, "the update's span {first}+{} is short", sp.grand.len());
+    let after = State::load(&state_dir).unwrap().unwrap();
+    let outside: Vec<_> = stored.iter().filter(|(b, _)| !read.contains(&b.index)).collect();
+    assert!(outside.iter().filter(|(b, _)| b.count > 0).count() >= 3, "candidates outside the span: {outside:?}");
+    for (b, id) in &outside {
+        assert!(after.candidates.blocks.contains(b), "block {} was rewritten: {:?}", b.index, after.candidates.blocks);
+        assert_eq!(&identity(&state_dir.join("candidates"), &format!("c{}-g{}.json", b.index, b.generation)), id, "block {}", b.index);
+    }
+    // The night covered candidates of the first one and changed their class: the blocks
+    // holding them were written under the new generation.
+    let rewritten: Vec<_> = after.candidates.blocks.iter().filter(|b| b.generation == after.generation).collect();
+    assert!(!rewritten.is_empty() && rewritten.iter().all(|b| read.contains(&b.index)), "{:?}", after.candidates.blocks);
+    assert!(after.candidates.all().unwrap().iter().any(|c| c.first_night == 0 && c.class != Class::New));
+    assert_eq!(after.candidates.all().unwrap().len(), after.candidates.len());
+
+    // The same update on the copy, every candidate file outside the span damaged.
+    for (b, _) in &outside {
+        std::fs::write(copy_dir.join("candidates").join(format!("c{}-g{}.json", b.index, b.generation)), "not json").unwrap();
+    }
+    let mut damaged = State::load(&copy_dir).unwrap().unwrap();
+    state::add_nights(&mut damaged, &plan, &[vec![short]]).unwrap();
+    damaged.save(&copy_dir).unwrap();
+    for b in &rewritten {
+        let name = format!("c{}-g{}.json", b.index, b.generation);
+        assert_eq!(std::fs::read(copy_dir.join("candidates").join(&name)).unwrap(), std::fs::read(state_dir.join("candidates").join(&name)).unwrap(), "{name}");
+    }
+    let err = State::load(&copy_dir).unwrap().unwrap().candidates.all().unwrap_err().to_string();
+    assert!(err.contains("candidates") && err.contains(".json") && err.contains("not a candidate block"), "{err}");
+    let exe = env!("CARGO_BIN_EXE_axsift");
+    let status = Command::new(exe).args(["status", "--state"]).arg(&copy_dir).output().unwrap();
+    assert_eq!(status.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&status.stderr).contains("not a candidate block"), "{}", String::from_utf8_lossy(&status.stderr));
 }
 
 /// Grid bin of a spectrum's first bin.
@@ -259,7 +368,11 @@ fn span_updates_agree_with_the_whole_campaign_at_block_edges() {
             j += 1;
         }
         let f = st.freq_hz(first + peak as i64) - st.bin_width_hz / 2.0;
-        assert!(st.candidates.iter().any(|c| (c.frequency_hz - f).abs() <= 2.0 * match_hz), "run at {f} Hz (grand {}) is not tracked", grand[peak]);
+        assert!(
+            st.candidates.all().unwrap().iter().any(|c| (c.frequency_hz - f).abs() <= 2.0 * match_hz),
+            "run at {f} Hz (grand {}) is not tracked",
+            grand[peak]
+        );
     }
 
     let other = dir.path().join("other.toml");
@@ -315,7 +428,7 @@ fn an_if_fixed_line_is_interference_and_the_axion_persists() {
     assert!(outside.is_empty(), "IF lines away from the burst: {outside:?}");
 
     let (lo, hi) = burst_rf_span_hz(41);
-    let bursty: Vec<_> = st.candidates.iter().filter(|c| c.frequency_hz > lo - 5e3 && c.frequency_hz < hi).collect();
+    let bursty: Vec<_> = st.candidates.all().unwrap().iter().filter(|c| c.frequency_hz > lo - 5e3 && c.frequency_hz < hi).collect();
     assert!(!bursty.is_empty(), "the burst should make candidates in {lo}..{hi} Hz: {:#?}", st.candidates);
     let interference: Vec<_> = bursty.iter().filter(|c| c.class == Class::Interference).collect();
     assert!(interference.len() as f64 >= 0.8 * bursty.len() as f64, "{:#?}", bursty);
@@ -327,25 +440,25 @@ fn an_if_fixed_line_is_interference_and_the_axion_persists() {
         assert!(ev.lines.iter().all(|l| l.if_offset_hz == l.if_bin as f64 * 100.0));
         assert!(c.evidence.contains("fixed-IF line") && c.evidence.contains("IF bin"), "{}", c.evidence);
     }
-    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion flagged");
+    let axion = st.candidates.all().unwrap().iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).expect("axion flagged");
     assert_eq!(axion.class, Class::New, "{}", axion.evidence);
     let noise_first: Vec<f64> =
-        st.candidates.iter().filter(|c| c.class == Class::New && (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
+        st.candidates.all().unwrap().iter().filter(|c| c.class == Class::New && (c.frequency_hz - 5.2021e9).abs() > 2e4).map(|c| c.frequency_hz).collect();
 
     let state_dir = dir.path().join("state");
     st.save(&state_dir).unwrap();
     let mut st = State::load(&state_dir).unwrap().unwrap();
-    assert_eq!(st.candidates.iter().filter(|c| c.class == Class::Interference).count(), n_interference);
+    assert_eq!(st.candidates.all().unwrap().iter().filter(|c| c.class == Class::Interference).count(), n_interference);
     let profile = st.if_profile(0).unwrap();
     assert!(profile.if_profile_sigma.len() == 4096 && profile.if_steps.iter().all(|&n| n <= 200));
 
     state::add_nights(&mut st, &plan, &[vec![night(42, 5.2e9, dir.path(), true)]]).unwrap();
     assert!(st.nights[1].if_lines.iter().all(|l| !BURST_IF_BINS.contains(&l.if_bin)), "{:?}", st.nights[1].if_lines);
-    let axion = st.candidates.iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).unwrap();
+    let axion = st.candidates.all().unwrap().iter().find(|c| (c.frequency_hz - 5.2021e9).abs() < 4e3).unwrap();
     assert_eq!(axion.class, Class::Persists, "{}", axion.evidence);
-    let cleared = st.candidates.iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
+    let cleared = st.candidates.all().unwrap().iter().filter(|c| noise_first.contains(&c.frequency_hz) && c.class == Class::Cleared).count();
     assert!(cleared as f64 >= 0.7 * noise_first.len() as f64, "{cleared} of {} cleared", noise_first.len());
-    assert_eq!(st.candidates.iter().filter(|c| c.class == Class::Interference).count(), n_interference, "interference stays interference");
+    assert_eq!(st.candidates.all().unwrap().iter().filter(|c| c.class == Class::Interference).count(), n_interference, "interference stays interference");
 }
 
 /// The IF profile is accumulated in step order whatever the thread count: one and two
@@ -387,7 +500,7 @@ fn status_reports_text_and_json() {
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     }
     let st = State::load(&state_dir).unwrap().unwrap();
-    let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
+    let count = |k: Class| st.candidates.all().unwrap().iter().filter(|c| c.class == k).count();
     assert!(count(Class::Interference) > 0 && count(Class::Persists) > 0);
 
     let text = Command::new(exe).args(["status", "--state"]).arg(&state_dir).output().unwrap();

@@ -176,9 +176,11 @@ pub fn forecast_report(fc: &crate::limits::forecast::Forecast, written: &[PathBu
     out
 }
 
-/// The analysis state: nights, coverage, candidates by class with the rescan plan.
-pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
+/// The analysis state: nights, coverage, candidates by class with the rescan plan. Errors
+/// when a candidate file of the state cannot be read (the listing reads them all).
+pub fn state_report(st: &crate::state::State, changes: &[String]) -> Result<String, crate::state::StateError> {
     use crate::state::Class;
+    let listing = st.candidates.all()?;
     let mut out = String::new();
     let files: usize = st.nights.iter().map(|n| n.files.len()).sum();
     let covered = st.covered_bins();
@@ -193,7 +195,7 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
     for c in changes {
         let _ = writeln!(out, "  changed: {c}");
     }
-    let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
+    let count = |k: Class| listing.iter().filter(|c| c.class == k).count();
     let _ = writeln!(
         out,
         "  candidates: {} new, {} persist, {} cleared, {} interference",
@@ -225,7 +227,7 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
             l.excluded_bins
         );
     }
-    let interference: Vec<_> = st.candidates.iter().filter(|c| c.class == Class::Interference).collect();
+    let interference: Vec<_> = listing.iter().filter(|c| c.class == Class::Interference).collect();
     if !interference.is_empty() {
         let _ = writeln!(out, "\n  Interference (fixed IF offset; no rescan needed):");
         let _ = writeln!(out, "  {:>20}  {:>8}  {}", "RF frequency (MHz)", "grand", "evidence");
@@ -233,7 +235,7 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
             let _ = writeln!(out, "  {:>20.6}  {:>8.2}  {}", c.frequency_hz / 1e6, c.significance, c.evidence);
         }
     }
-    let open: Vec<_> = st.candidates.iter().filter(|c| c.class.is_open()).collect();
+    let open: Vec<_> = listing.iter().filter(|c| c.class.is_open()).collect();
     if !open.is_empty() {
         let _ = writeln!(out, "\n  Rescan plan (target SNR {}):", crate::state::RESCAN_TARGET_SNR);
         let _ = writeln!(out, "  {:>20}  {:>9}  {:>8}  {:>24}  {:>14}", "RF frequency (MHz)", "class", "grand", "retune cavity to (MHz)", "integrate (s)");
@@ -250,5 +252,5 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> String {
         }
         let _ = writeln!(out, "\n{ADVISORY}");
     }
-    out
+    Ok(out)
 }

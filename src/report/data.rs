@@ -200,10 +200,11 @@ impl ReportData {
     /// diagnostics if they are still where they were; `calibration`, if given, is checked
     /// against the pipeline stored in `results.h5` and adds the full calibration section.
     /// Adds the nightly-state section: the state folder's nights, candidate classes with
-    /// their evidence and rescan plan, and the limit range.
-    pub fn with_state(mut self, state: &crate::state::State) -> Self {
-        self.state = Some(crate::state::StatusSummary::of(state));
-        self
+    /// their evidence and rescan plan, and the limit range. Errors when a candidate file of
+    /// the state cannot be read.
+    pub fn with_state(mut self, state: &crate::state::State) -> Result<Self, crate::state::StateError> {
+        self.state = Some(crate::state::StatusSummary::of(state)?);
+        Ok(self)
     }
 
     pub fn from_folder(dir: &Path, calibration: Option<&Path>) -> anyhow::Result<Self> {

@@ -113,7 +113,7 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration
                 .write(out, &plan.config_text, &provenance, calibration.as_ref().zip(limits.as_ref()))
                 .map_err(|e| failed(&format!("{e:#}")))?;
             if let Some(limits) = &limits {
-                st.record_limit(limits, &update.reduction.spectrum, update.match_hz);
+                st.record_limit(limits, &update.reduction.spectrum, update.match_hz).map_err(|e| ShardError::BadInput(e.to_string()))?;
             }
             st.save(state_dir).map_err(|e| failed(&e))?;
             let calibrated = calibration.zip(limits).map(|(c, l)| (Box::new(c), Box::new(l)));

@@ -122,7 +122,8 @@ fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update
 /// blocks they fall in, the grand spectrum is recomputed on the tiles whose input those
 /// blocks are ([`tiles`](super::tiles)), one more tile on each side (so a candidate at the
 /// edge of the changed tiles is seen whole), and further out while a run of bins above
-/// threshold reaches the edge; candidates are tracked on that span. Everywhere else the
+/// threshold reaches the edge; candidates are tracked on that span, reading and changing
+/// only the candidate blocks there ([`candidates`](super::candidates)). Everywhere else the
 /// grand spectrum and the candidates are unchanged, because their data are.
 pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) -> Result<Update, StateError> {
     check_config(state, plan)?;
@@ -160,11 +161,13 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) ->
     };
     let match_hz = spectrum.freq_hz(0) * plan_info.halo.mean_beta_sq();
     let reach = (match_hz / spectrum.bin_width_hz).ceil() as i64;
-    let mut tracked = std::mem::take(&mut state.candidates);
+    // The candidates of the span and of the blocks within a line width of it: the tracked
+    // ones a candidate flagged in the span can match.
+    let (blocks, mut tracked) = state.take_candidates(first_bin..first_bin + spectrum.grand.len() as i64, reach)?;
     let explain = |j: usize| line_sources(&sums, first_bin + j as i64, reach, state.bin_width_hz);
     let view = without.as_ref().map(|without| rescan::LineView { without, explain: &explain });
     let changes = rescan::update(&mut tracked, &spectrum, view.as_ref(), night_index, match_hz, &covered, &integration);
-    state.candidates = tracked;
+    state.put_candidates(&blocks, tracked)?;
     let reduction = Reduction { spectrum, ..night_red };
     Ok(Update { reduction, night: night_index, changes, match_hz })
 }

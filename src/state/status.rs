@@ -1,7 +1,7 @@
 //! What `axsift status` reports about a state, as one serialisable summary.
 
-use super::{Class, LimitRange, State};
-use serde::Serialize;
+use super::{Class, LimitRange, State, StateError};
+use serde::{Deserialize, Serialize};
 
 /// The state at a glance: nights and files, coverage, candidates by class, the limit range.
 /// Field names carry their units; the JSON form of `status --json` is this struct.
@@ -45,7 +45,7 @@ pub struct NightSummary {
 }
 
 /// Candidates per class.
-#[derive(Debug, Clone, Serialize)]
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
 pub struct ClassCounts {
     /// Flagged, not yet revisited.
     pub new: usize,
@@ -77,10 +77,10 @@ pub struct CandidateSummary {
 }
 
 impl StatusSummary {
-    /// Summarises a loaded state.
-    pub fn of(st: &State) -> Self {
-        let count = |k: Class| st.candidates.iter().filter(|c| c.class == k).count();
-        Self {
+    /// Summarises a loaded state (reading every candidate block: the listing is the whole
+    /// campaign's). Errors when a candidate file cannot be read.
+    pub fn of(st: &State) -> Result<Self, StateError> {
+        Ok(Self {
             schema_version: st.schema_version,
             generation: st.generation,
             nights: st
@@ -98,14 +98,10 @@ impl StatusSummary {
             bin_width_hz: st.bin_width_hz,
             rf_span_hz: st.rf_span_hz(),
             covered_hz: st.covered_bins() as f64 * st.bin_width_hz,
-            candidates_by_class: ClassCounts {
-                new: count(Class::New),
-                persists: count(Class::Persists),
-                cleared: count(Class::Cleared),
-                interference: count(Class::Interference),
-            },
+            candidates_by_class: st.candidates.by_class.clone(),
             candidates: st
                 .candidates
+                .all()?
                 .iter()
                 .map(|c| CandidateSummary {
                     frequency_hz: c.frequency_hz,
@@ -118,21 +114,26 @@ impl StatusSummary {
                 })
                 .collect(),
             limit: st.limit.clone(),
-        }
+        })
     }
 }
 
 impl State {
     /// Records the limit range of an update from its per-bin limits: over the covered bins
     /// that no open tracked candidate holds (a candidate within `match_hz` of a bin's
-    /// frequency holds it). Limits computed with every current candidate blocked are
-    /// recomputed here with only the open ones blocked, from the same `sigma_eff`.
-    pub fn record_limit(&mut self, limits: &crate::limits::Limits, spectrum: &crate::stage::Spectrum, match_hz: f64) {
+    /// frequency holds it; only the candidate blocks of the spectrum's span are read).
+    /// Limits computed with every current candidate blocked are recomputed here with only
+    /// the open ones blocked, from the same `sigma_eff`.
+    /// Errors when a candidate file of the state cannot be read.
+    pub fn record_limit(&mut self, limits: &crate::limits::Limits, spectrum: &crate::stage::Spectrum, match_hz: f64) -> Result<(), StateError> {
+        let first_bin = ((spectrum.rf_start_hz - self.rf_origin_hz) / self.bin_width_hz).round() as i64;
+        let reach = (match_hz / self.bin_width_hz).ceil() as i64;
+        let tracked = self.open_candidates_near(first_bin..first_bin + spectrum.grand.len() as i64, reach)?;
         let open: Vec<usize> = spectrum
             .candidates
             .iter()
             .enumerate()
-            .filter(|(_, c)| self.candidates.iter().any(|t| t.class.is_open() && (t.frequency_hz - c.frequency_hz).abs() <= match_hz))
+            .filter(|(_, c)| tracked.iter().any(|t| (t.frequency_hz - c.frequency_hz).abs() <= match_hz))
             .map(|(i, _)| i)
             .collect();
         let per_bin = crate::limits::limits(spectrum, limits.assumptions.clone(), &open);
@@ -145,5 +146,6 @@ impl State {
             max_rel_ksvz: excluded.iter().map(|b| b.rel_ksvz).fold(f64::NEG_INFINITY, f64::max),
             excluded_span_hz: (excluded[0].freq_hz, excluded[excluded.len() - 1].freq_hz),
         });
+        Ok(())
     }
 }

@@ -1,10 +1,12 @@
-//! Loading and saving the state folder: `state.json`, the blocks of the sums, the nights' IF
-//! profiles.
+//! Loading and saving the state folder: `state.json`, the blocks of the sums and of the
+//! candidates, the nights' IF profiles.
 
+use super::candidate_file;
+use super::candidates::{CandidateBlockRecord, Candidates, candidate_name};
 use super::interference::IfLine;
 use super::profile_file::{self, IfProfileRecord};
 use super::sums::Sums;
-use super::{STATE_SCHEMA_VERSION, TrackedCandidate, block_file};
+use super::{STATE_SCHEMA_VERSION, block_file};
 use serde::{Deserialize, Serialize};
 use std::collections::{BTreeMap, BTreeSet};
 use std::ops::Range;
@@ -82,8 +84,9 @@ pub struct State {
     pub blocks: Vec<BlockRecord>,
     /// Nights in order.
     pub nights: Vec<NightRecord>,
-    /// Candidates ever flagged, with their class.
-    pub candidates: Vec<TrackedCandidate>,
+    /// Candidates ever flagged, with their class: counts per class and the candidate
+    /// blocks in `state.json`, the candidates themselves in `candidates/` (read as needed).
+    pub candidates: Candidates,
     /// Number of updates saved (each writes the blocks it changed under this generation).
     pub generation: u64,
     /// The limit range of the latest update made with a calibration, if any.
@@ -175,7 +178,7 @@ impl State {
             grid_bins: None,
             blocks: Vec::new(),
             nights: Vec::new(),
-            candidates: Vec::new(),
+            candidates: Candidates::default(),
             generation: 0,
             limit: None,
             source: None,
@@ -199,7 +202,8 @@ impl State {
                 return Err(io(
                     &index,
                     format!(
-                        "field `schema_version` is {v}; this build reads version {STATE_SCHEMA_VERSION} (start a new state folder and add the nights again)"
+                        "field `schema_version` is {v}; this build reads version {STATE_SCHEMA_VERSION} only ({})",
+                        "version 3 and earlier kept the candidates in state.json; start a new state folder and add the nights again"
                     ),
                 ));
             }
@@ -212,7 +216,9 @@ impl State {
         if state.blocks.windows(2).any(|w| w[0].index >= w[1].index) {
             return Err(io(&index, "field `blocks` must list each block once, in increasing `index`"));
         }
+        state.candidates.check(&index)?;
         state.source = Some(dir.to_path_buf());
+        state.candidates.source = Some(dir.to_path_buf());
         Ok(Some(state))
     }
 
@@ -296,13 +302,13 @@ impl State {
         }
     }
 
-    /// Saves as the next generation: the changed blocks and the new nights' IF profiles
-    /// under new names, then `state.json` (the commit, a rename), then removes the files
-    /// the new index no longer names. A run killed at any point leaves either the previous
+    /// Saves as the next generation: the changed blocks of the sums and of the candidates and
+    /// the new nights' IF profiles under new names, then `state.json` (the commit, a rename),
+    /// then removes the files the new index no longer names. A run killed at any point leaves either the previous
     /// `state.json` with every file it names, or the new one with every file it names.
     pub fn save(&mut self, dir: &Path) -> Result<(), StateError> {
-        let (blocks_dir, nights_dir) = (dir.join("blocks"), dir.join("nights"));
-        for d in [&blocks_dir, &nights_dir] {
+        let (blocks_dir, nights_dir, cands_dir) = (dir.join("blocks"), dir.join("nights"), dir.join("candidates"));
+        for d in [&blocks_dir, &nights_dir, &cands_dir] {
             std::fs::create_dir_all(d).map_err(|e| io(d, e))?;
         }
         let generation = self.generation + 1;
@@ -318,6 +324,11 @@ impl State {
                 let from = source.join("nights").join(night_name(n));
                 write_renamed(&nights_dir.join(night_name(n)), |tmp| std::fs::copy(&from, tmp).map(|_| ()).map_err(|e| io(&from, e)))?;
             }
+            for b in self.candidates.blocks.iter().filter(|b| !self.candidates.is_changed(b.index)) {
+                let name = candidate_name(b.index, b.generation);
+                let from = source.join("candidates").join(&name);
+                write_renamed(&cands_dir.join(&name), |tmp| std::fs::copy(&from, tmp).map(|_| ()).map_err(|e| io(&from, e)))?;
+            }
         }
         let mut records: BTreeMap<i64, BlockRecord> = self.blocks.iter().map(|b| (b.index, b.clone())).collect();
         for (&index, sums) in &self.changed {
@@ -327,30 +338,41 @@ impl State {
         for (&night, profile) in &self.new_profiles {
             write_renamed(&nights_dir.join(night_name(night)), |tmp| profile_file::write(tmp, profile))?;
         }
-        let previous = (std::mem::replace(&mut self.blocks, records.into_values().collect()), self.generation);
+        let mut cand_records: BTreeMap<i64, CandidateBlockRecord> = self.candidates.blocks.iter().map(|b| (b.index, b.clone())).collect();
+        for (index, list) in self.candidates.changed() {
+            write_renamed(&cands_dir.join(candidate_name(index, generation)), |tmp| candidate_file::write(tmp, index, list))?;
+            cand_records.insert(index, CandidateBlockRecord { index, generation, count: list.len() });
+        }
+        let previous = (
+            std::mem::replace(&mut self.blocks, records.into_values().collect()),
+            std::mem::replace(&mut self.candidates.blocks, cand_records.into_values().collect()),
+            self.generation,
+        );
         self.generation = generation;
         let index = dir.join("state.json");
         let committed = serde_json::to_string_pretty(self)
             .map_err(|e| io(&index, e))
             .and_then(|json| write_renamed(&index, |tmp| std::fs::write(tmp, json).map_err(|e| io(tmp, e))));
         if let Err(e) = committed {
-            (self.blocks, self.generation) = previous;
+            (self.blocks, self.candidates.blocks, self.generation) = previous;
             return Err(e);
         }
         self.changed.clear();
         self.new_profiles.clear();
         self.source = Some(dir.to_path_buf());
-        self.remove_unnamed(&blocks_dir, &nights_dir);
+        self.candidates.saved(dir);
+        self.remove_unnamed(&blocks_dir, &nights_dir, &cands_dir);
         Ok(())
     }
 
-    /// Removes the files of the folder that `state.json` does not name: blocks replaced by
-    /// this update, and what a killed update left behind. Failures are harmless (the next
-    /// save tries again).
-    fn remove_unnamed(&self, blocks_dir: &Path, nights_dir: &Path) {
+    /// Removes the files of the folder that `state.json` does not name: blocks of the sums
+    /// and of the candidates replaced by this update, and what a killed update left behind.
+    /// Failures are harmless (the next save tries again).
+    fn remove_unnamed(&self, blocks_dir: &Path, nights_dir: &Path, cands_dir: &Path) {
         let named: BTreeSet<String> = self.blocks.iter().map(|b| block_name(b.index, b.generation)).collect();
         let nights: BTreeSet<String> = (0..self.nights.len()).map(night_name).collect();
-        for (folder, keep) in [(blocks_dir, &named), (nights_dir, &nights)] {
+        let cands: BTreeSet<String> = self.candidates.blocks.iter().map(|b| candidate_name(b.index, b.generation)).collect();
+        for (folder, keep) in [(blocks_dir, &named), (nights_dir, &nights), (cands_dir, &cands)] {
             let Ok(entries) = std::fs::read_dir(folder) else { continue };
             for entry in entries.flatten() {
                 if !keep.contains(&entry.file_name().to_string_lossy().into_owned()) {
