@@ -81,11 +81,9 @@ impl Moments {
 }
 
 per_bin_loop! {
-    /// `out[i] = a[i] / s[i]` over the common length (A / sigma_A of the summary).
-    fn ratios(a: &[f64], s: &[f64], out: &mut [f64]) {
-        for ((o, a), s) in out.iter_mut().zip(a).zip(s) {
-            *o = a / s;
-        }
+    /// Appends `a[i] / s[i]` to `out` over the common length (A / sigma_A of the summary).
+    fn ratios(a: &[f64], s: &[f64], out: &mut Vec<f64>) {
+        out.extend(a.iter().zip(s).map(|(a, s)| a / s));
     }
 }
 
@@ -110,7 +108,7 @@ pub struct GrandStats {
 impl GrandStats {
     /// The statistics of consecutive bins (at most one piece).
     fn of_piece(b: &Bins<'_>) -> Self {
-        let mut raw = vec![0.0; b.grand.len()];
+        let mut raw = Vec::with_capacity(b.grand.len());
         ratios(b.amplitude, b.sigma_a, &mut raw);
         let ([grand, raw, predicted_spread], n_above) = Moments::of_columns([b.grand, &raw, b.predicted_spread], b.threshold);
         Self { n_bins: b.grid_bins, grand, raw, predicted_spread, n_above }

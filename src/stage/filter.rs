@@ -171,8 +171,9 @@ impl SpectrumStage for OptimalFilter {
         let mut sigma_a = std::mem::take(&mut sp.sigma_a);
         let mut spread = std::mem::take(&mut sp.predicted_spread);
         let mut grand = std::mem::take(&mut sp.grand);
+        // Every value is written below: buffers of an earlier block of the same length are
+        // taken as they are, not zeroed first.
         for v in [&mut amplitude, &mut sigma_a, &mut spread, &mut grand] {
-            v.clear();
             v.resize(len, 0.0);
         }
         let origin = sp.first_bin;
