@@ -18,7 +18,7 @@
 
 use super::{BLOCK_BINS, Block, NightInfo, SpectrumStage};
 use crate::config::{BuildContext, Built, StageConfig};
-use crate::dsp::correlate::{CorrelationScratch, Correlator};
+use crate::dsp::correlate::{CorrelationScratch, Correlator, Planners};
 use crate::dsp::spread::filtered_noise_spread;
 use crate::physics::lineshape::HaloModel;
 use crate::runfile::StepMeta;
@@ -115,13 +115,16 @@ impl StageConfig for FilterConfig {
         let (lo, hi) = night.rf_span_hz;
         let seg_bins = ((self.segment_fraction * lo / night.bin_width_hz).floor() as usize).max(1);
         let n = ((hi - lo) / night.bin_width_hz).round() as usize + 1;
+        // Segments in parallel, each task's transforms planned once (the segments do not
+        // depend on how they are shared out).
         let segments = (0..n.div_ceil(seg_bins))
-            .map(|s| {
+            .into_par_iter()
+            .map_init(Planners::default, |planners, s| {
                 let centre_hz = lo + ((s * seg_bins) as f64 + seg_bins as f64 / 2.0) * night.bin_width_hz;
                 let kernel = model.bin_fractions(centre_hz, night.bin_width_hz, self.tail_fraction);
                 let spread = filtered_noise_spread(&kernel, ctx.baseline_kernel.as_deref(), &night.bin_correlation);
                 let squared: Vec<f64> = kernel.iter().map(|l| l * l).collect();
-                Segment { line: Correlator::new(&kernel), line_squared: Correlator::new(&squared), spread }
+                Segment { line: Correlator::with_planners(&kernel, planners), line_squared: Correlator::with_planners(&squared, planners), spread }
             })
             .collect();
         Ok(Built::Spectrum(Box::new(OptimalFilter { seg_bins, segments, mean_beta_sq: model.mean_beta_sq() })))
