@@ -298,8 +298,10 @@ fn mutate(bytes: &mut Vec<u8>, e: &ByteEdit) {
     let at = |f: f64, len: usize| ((len as f64 * f) as usize).min(len.saturating_sub(1));
     match e {
         ByteEdit::Flip(f, x) => {
-            let i = at(*f, bytes.len());
-            bytes[i] ^= x;
+            // A file truncated to nothing by an earlier edit has no byte to flip.
+            if let Some(byte) = bytes.get_mut(at(*f, bytes.len())) {
+                *byte ^= x;
+            }
         }
         ByteEdit::Overwrite(f, b) => {
             let i = at(*f, bytes.len());
