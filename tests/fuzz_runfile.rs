@@ -299,7 +299,8 @@ fn mutate(bytes: &mut Vec<u8>, e: &ByteEdit) {
     match e {
         ByteEdit::Flip(f, x) => {
             // A file truncated to nothing by an earlier edit has no byte to flip.
-            if let Some(byte) = bytes.get_mut(at(*f, bytes.len())) {
+            let i = at(*f, bytes.len());
+            if let Some(byte) = bytes.get_mut(i) {
                 *byte ^= x;
             }
         }
