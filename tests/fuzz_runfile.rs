@@ -298,8 +298,11 @@ fn mutate(bytes: &mut Vec<u8>, e: &ByteEdit) {
     let at = |f: f64, len: usize| ((len as f64 * f) as usize).min(len.saturating_sub(1));
     match e {
         ByteEdit::Flip(f, x) => {
+            // A file truncated to nothing by an earlier edit has no byte to flip.
             let i = at(*f, bytes.len());
-            bytes[i] ^= x;
+            if let Some(byte) = bytes.get_mut(i) {
+                *byte ^= x;
+            }
         }
         ByteEdit::Overwrite(f, b) => {
             let i = at(*f, bytes.len());

@@ -72,6 +72,20 @@ pub struct Correlator<T: Sample = f64> {
     spectrum: Arc<[Complex<T>]>,
 }
 
+/// FFT planners for [`Correlator::with_planners`]: the kernel spectra's (f64) and the
+/// sample type's. A planner keeps each transform it planned (twiddle factors included), so
+/// correlators of the same block length made with one set share them.
+pub struct Planners<T: Sample = f64> {
+    exact: FftPlanner<f64>,
+    sample: FftPlanner<T>,
+}
+
+impl<T: Sample> Default for Planners<T> {
+    fn default() -> Self {
+        Self { exact: FftPlanner::new(), sample: FftPlanner::new() }
+    }
+}
+
 /// Work buffers of [`Correlator::correlate_with`], sized on first use and
 /// then reused, so repeated calls allocate nothing.
 #[derive(Debug, Clone)]
@@ -101,6 +115,15 @@ impl<T: Sample> Correlator<T> {
     /// # Panics
     /// If `kernel` is empty.
     pub fn new(kernel: &[f64]) -> Self {
+        Self::with_planners(kernel, &mut Planners::default())
+    }
+
+    /// As [`Self::new`], with transforms planned by `planners` (one plan per block length,
+    /// shared by every correlator made with them; the same transforms as fresh ones).
+    ///
+    /// # Panics
+    /// If `kernel` is empty.
+    pub fn with_planners(kernel: &[f64], planners: &mut Planners<T>) -> Self {
         assert!(!kernel.is_empty(), "a correlation kernel needs at least one value");
         let k = kernel.len();
         let block_len = (8 * (k - 1)).max(MIN_BLOCK_LEN).next_power_of_two();
@@ -109,10 +132,9 @@ impl<T: Sample> Correlator<T> {
         for (slot, &c) in exact.iter_mut().zip(kernel.iter().rev()) {
             *slot = Complex::new(c * scale, 0.0);
         }
-        FftPlanner::<f64>::new().plan_fft_forward(block_len).process(&mut exact);
+        planners.exact.plan_fft_forward(block_len).process(&mut exact);
         let spectrum: Vec<Complex<T>> = exact.iter().map(|z| Complex::new(T::narrow(z.re), T::narrow(z.im))).collect();
-        let mut planner = FftPlanner::<T>::new();
-        let (forward, inverse) = (planner.plan_fft_forward(block_len), planner.plan_fft_inverse(block_len));
+        let (forward, inverse) = (planners.sample.plan_fft_forward(block_len), planners.sample.plan_fft_inverse(block_len));
         Self { kernel_len: k, kernel_sum: kernel.iter().sum(), forward, inverse, spectrum: spectrum.into() }
     }
 

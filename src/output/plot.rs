@@ -44,12 +44,15 @@ impl Columns {
             .par_iter()
             .map(|piece| {
                 let mut found: Vec<(usize, f64, f64)> = Vec::new();
-                for (j, &v) in piece.grand.iter().enumerate().filter(|(_, v)| v.is_finite()) {
-                    let c = (piece.first_bin + j) / per;
-                    match found.last_mut() {
-                        Some(last) if last.0 == c => (last.1, last.2) = (last.1.min(v), last.2.max(v)),
-                        _ => found.push((c, v, v)),
+                let mut start = 0;
+                while start < piece.grand.len() {
+                    // The piece's bins in column c: start..end.
+                    let c = (piece.first_bin + start) / per;
+                    let end = ((c + 1) * per - piece.first_bin).min(piece.grand.len());
+                    if let Some((lo, hi)) = finite_extremes(&piece.grand[start..end]) {
+                        found.push((c, lo, hi));
                     }
+                    start = end;
                 }
                 found
             })
@@ -59,6 +62,18 @@ impl Columns {
             self.hi[c] = self.hi[c].max(hi);
         }
     }
+}
+
+/// Minimum and maximum of the finite values of `x`; None if there is none.
+fn finite_extremes(x: &[f64]) -> Option<(f64, f64)> {
+    let (mut lo, mut hi) = (f64::INFINITY, f64::NEG_INFINITY);
+    for &v in x {
+        // Selects rather than branches: infinities and NaN leave both as they were.
+        let finite = v.is_finite();
+        lo = if finite && v < lo { v } else { lo };
+        hi = if finite && v > hi { v } else { hi };
+    }
+    (lo <= hi).then_some((lo, hi))
 }
 
 /// What the plot shows besides the columns.

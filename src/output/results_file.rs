@@ -14,6 +14,7 @@
 //! 10x the write time, too slow for the one writing thread).
 
 use super::bins::Bins;
+use crate::simd::per_bin_loop;
 use hdf5::types::VarLenUnicode;
 use rayon::prelude::*;
 use std::path::Path;
@@ -48,8 +49,15 @@ impl ResultBlock {
     pub fn of(b: &Bins<'_>) -> Self {
         let sources = [b.combined, b.combined_sigma, b.amplitude, b.sigma_a, b.predicted_spread, b.grand];
         let mut columns: [Vec<f32>; 6] = Default::default();
-        columns.par_iter_mut().zip(sources).for_each(|(column, source)| column.extend(source.iter().map(|&v| v as f32)));
+        columns.par_iter_mut().zip(sources).for_each(|(column, source)| narrow(source, column));
         Self { first_bin: b.first_bin, grid_bins: b.grid_bins, origin_hz: b.origin_hz, bin_width_hz: b.bin_width_hz, columns }
+    }
+}
+
+per_bin_loop! {
+    /// Appends `values` to `out`, each rounded to the nearest single-precision value.
+    fn narrow(values: &[f64], out: &mut Vec<f32>) {
+        out.extend(values.iter().map(|&v| v as f32));
     }
 }
 

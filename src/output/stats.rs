@@ -9,6 +9,7 @@
 //! relative).
 
 use super::Bins;
+use crate::simd::per_bin_loop;
 use rayon::prelude::*;
 
 /// Count, mean and sum of squared deviations of finite values.
@@ -20,15 +21,35 @@ pub struct Moments {
 }
 
 impl Moments {
-    /// The moments of the finite values of `x` (two passes).
-    pub fn of(x: impl Iterator<Item = f64> + Clone) -> Self {
-        let (n, sum) = x.clone().filter(|v| v.is_finite()).fold((0usize, 0.0), |(n, s), v| (n + 1, s + v));
-        if n == 0 {
-            return Self::default();
+    /// The moments of the finite values of each of `columns` (slices of equal length), in two
+    /// passes over all of them together: per column the same sums in the same order as two
+    /// passes over it alone, with the columns' sums interleaved, so they do not wait on one
+    /// another. Also counts the values of `columns[0]` above `above` (none for NaN).
+    pub fn of_columns<const K: usize>(columns: [&[f64]; K], above: f64) -> ([Self; K], usize) {
+        let len = columns.first().map_or(0, |c| c.len());
+        assert!(columns.iter().all(|c| c.len() == len), "columns of unequal length");
+        let columns = columns.map(|c| &c[..len]);
+        let (mut n, mut sum, mut n_above) = ([0usize; K], [0.0f64; K], 0usize);
+        for i in 0..len {
+            n_above += usize::from(K > 0 && columns[0][i] > above);
+            for k in 0..K {
+                let v = columns[k][i];
+                // Adding +0 leaves a sum begun at +0 as it was: the same bits as skipping v.
+                let finite = v.is_finite();
+                n[k] += usize::from(finite);
+                sum[k] += if finite { v } else { 0.0 };
+            }
         }
-        let mean = sum / n as f64;
-        let m2: f64 = x.filter(|v| v.is_finite()).map(|v| (v - mean) * (v - mean)).sum();
-        Self { n, mean, m2 }
+        let mean: [f64; K] = std::array::from_fn(|k| if n[k] == 0 { 0.0 } else { sum[k] / n[k] as f64 });
+        let mut m2 = [0.0f64; K];
+        for i in 0..len {
+            for k in 0..K {
+                let v = columns[k][i];
+                let d = v - mean[k];
+                m2[k] += if v.is_finite() { d * d } else { 0.0 };
+            }
+        }
+        (std::array::from_fn(|k| if n[k] == 0 { Self::default() } else { Self { n: n[k], mean: mean[k], m2: m2[k] } }), n_above)
     }
 
     /// Adds the values `other` describes (merged as if they followed these).
@@ -59,6 +80,13 @@ impl Moments {
     }
 }
 
+per_bin_loop! {
+    /// Appends `a[i] / s[i]` to `out` over the common length (A / sigma_A of the summary).
+    fn ratios(a: &[f64], s: &[f64], out: &mut Vec<f64>) {
+        out.extend(a.iter().zip(s).map(|(a, s)| a / s));
+    }
+}
+
 /// Bins of one piece of the statistics (a block is cut into these from its start).
 pub const STATS_PIECE_BINS: usize = 16384;
 
@@ -80,13 +108,10 @@ pub struct GrandStats {
 impl GrandStats {
     /// The statistics of consecutive bins (at most one piece).
     fn of_piece(b: &Bins<'_>) -> Self {
-        Self {
-            n_bins: b.grid_bins,
-            grand: Moments::of(b.grand.iter().copied()),
-            raw: Moments::of(b.amplitude.iter().zip(b.sigma_a).map(|(a, s)| a / s)),
-            predicted_spread: Moments::of(b.predicted_spread.iter().copied()),
-            n_above: b.grand.iter().filter(|&&v| v > b.threshold).count(),
-        }
+        let mut raw = Vec::with_capacity(b.grand.len());
+        ratios(b.amplitude, b.sigma_a, &mut raw);
+        let ([grand, raw, predicted_spread], n_above) = Moments::of_columns([b.grand, &raw, b.predicted_spread], b.threshold);
+        Self { n_bins: b.grid_bins, grand, raw, predicted_spread, n_above }
     }
 
     /// Adds the statistics of `other`, of the bins that follow.

@@ -18,7 +18,7 @@
 
 use super::{BLOCK_BINS, Block, NightInfo, SpectrumStage};
 use crate::config::{BuildContext, Built, StageConfig};
-use crate::dsp::correlate::{CorrelationScratch, Correlator};
+use crate::dsp::correlate::{CorrelationScratch, Correlator, Planners};
 use crate::dsp::spread::filtered_noise_spread;
 use crate::physics::lineshape::HaloModel;
 use crate::runfile::StepMeta;
@@ -115,13 +115,16 @@ impl StageConfig for FilterConfig {
         let (lo, hi) = night.rf_span_hz;
         let seg_bins = ((self.segment_fraction * lo / night.bin_width_hz).floor() as usize).max(1);
         let n = ((hi - lo) / night.bin_width_hz).round() as usize + 1;
+        // Segments in parallel, each task's transforms planned once (the segments do not
+        // depend on how they are shared out).
         let segments = (0..n.div_ceil(seg_bins))
-            .map(|s| {
+            .into_par_iter()
+            .map_init(Planners::default, |planners, s| {
                 let centre_hz = lo + ((s * seg_bins) as f64 + seg_bins as f64 / 2.0) * night.bin_width_hz;
                 let kernel = model.bin_fractions(centre_hz, night.bin_width_hz, self.tail_fraction);
                 let spread = filtered_noise_spread(&kernel, ctx.baseline_kernel.as_deref(), &night.bin_correlation);
                 let squared: Vec<f64> = kernel.iter().map(|l| l * l).collect();
-                Segment { line: Correlator::new(&kernel), line_squared: Correlator::new(&squared), spread }
+                Segment { line: Correlator::with_planners(&kernel, planners), line_squared: Correlator::with_planners(&squared, planners), spread }
             })
             .collect();
         Ok(Built::Spectrum(Box::new(OptimalFilter { seg_bins, segments, mean_beta_sq: model.mean_beta_sq() })))
@@ -170,40 +173,43 @@ impl SpectrumStage for OptimalFilter {
         let mut amplitude = std::mem::take(&mut sp.amplitude);
         let mut sigma_a = std::mem::take(&mut sp.sigma_a);
         let mut spread = std::mem::take(&mut sp.predicted_spread);
-        for v in [&mut amplitude, &mut sigma_a, &mut spread] {
-            v.clear();
+        let mut grand = std::mem::take(&mut sp.grand);
+        // Every value is written below: buffers of an earlier block of the same length are
+        // taken as they are, not zeroed first.
+        for v in [&mut amplitude, &mut sigma_a, &mut spread, &mut grand] {
             v.resize(len, 0.0);
         }
         let origin = sp.first_bin;
         // Fixed pieces, each computed alone: the result does not depend on the thread count.
-        amplitude.par_chunks_mut(PIECE_BINS).zip(sigma_a.par_chunks_mut(PIECE_BINS)).zip(spread.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
-            |(piece, ((num, den), spread))| {
-                let mut scratch = CorrelationScratch::default();
-                // Block-local bins start..end; grid bin = origin + local bin.
-                let start = piece * PIECE_BINS;
-                let end = start + num.len();
-                // Split the piece where the kernel changes.
-                let mut a = start;
-                while a < end {
-                    let seg = &self.segments[(origin + a) / self.seg_bins];
-                    let b = (((origin + a) / self.seg_bins + 1) * self.seg_bins - origin).min(end);
-                    let reach = (b + seg.line.kernel_len() - 1).min(n);
-                    let (lo, hi) = (a - start, b - start);
-                    seg.line.correlate_with(&data[a..reach], &mut num[lo..hi], &mut scratch);
-                    seg.line_squared.correlate_with(&weights[a..reach], &mut den[lo..hi], &mut scratch);
-                    for (j, ((num, den), spread)) in num[lo..hi].iter_mut().zip(&mut den[lo..hi]).zip(&mut spread[lo..hi]).enumerate() {
-                        let covered = with_data[(a + j + seg.line.kernel_len()).min(n)] > with_data[a + j];
-                        (*num, *den) = if covered { (*num / *den, den.sqrt().recip()) } else { (f64::NAN, f64::INFINITY) };
-                        *spread = seg.spread;
-                    }
-                    a = b;
+        let pieces = amplitude.par_chunks_mut(PIECE_BINS).zip(sigma_a.par_chunks_mut(PIECE_BINS)).zip(spread.par_chunks_mut(PIECE_BINS));
+        pieces.zip(grand.par_chunks_mut(PIECE_BINS)).enumerate().for_each(|(piece, (((num, den), spread), grand))| {
+            let mut scratch = CorrelationScratch::default();
+            // Block-local bins start..end; grid bin = origin + local bin.
+            let start = piece * PIECE_BINS;
+            let end = start + num.len();
+            // Split the piece where the kernel changes.
+            let mut a = start;
+            while a < end {
+                let seg = &self.segments[(origin + a) / self.seg_bins];
+                let b = (((origin + a) / self.seg_bins + 1) * self.seg_bins - origin).min(end);
+                let reach = (b + seg.line.kernel_len() - 1).min(n);
+                let (lo, hi) = (a - start, b - start);
+                seg.line.correlate_with(&data[a..reach], &mut num[lo..hi], &mut scratch);
+                seg.line_squared.correlate_with(&weights[a..reach], &mut den[lo..hi], &mut scratch);
+                let outputs = num[lo..hi].iter_mut().zip(&mut den[lo..hi]).zip(&mut spread[lo..hi]).zip(&mut grand[lo..hi]);
+                for (j, (((num, den), spread), grand)) in outputs.enumerate() {
+                    let covered = with_data[(a + j + seg.line.kernel_len()).min(n)] > with_data[a + j];
+                    (*num, *den) = if covered { (*num / *den, den.sqrt().recip()) } else { (f64::NAN, f64::INFINITY) };
+                    *spread = seg.spread;
+                    // The grand spectrum A / (sigma_A * predicted spread).
+                    *grand = *num / (*den * seg.spread);
                 }
-            },
-        );
+                a = b;
+            }
+        });
         drop((weights, data, with_data));
         sp.mean_beta_sq = self.mean_beta_sq;
-        sp.grand.clear();
-        sp.grand.extend(amplitude.iter().zip(&sigma_a).zip(&spread).map(|((a, s), r)| a / (s * r)));
+        sp.grand = grand;
         sp.amplitude = amplitude;
         sp.sigma_a = sigma_a;
         sp.predicted_spread = spread;
