@@ -6,7 +6,6 @@
 mod bins;
 pub mod console;
 mod plot;
-mod replace;
 mod results_file;
 mod stats;
 
@@ -346,7 +345,7 @@ impl BlockOutputs {
             .iter()
             .map(|n| {
                 let to = dir.join(n);
-                replace::replace(&tmp(n), &to).with_context(|| format!("renaming into {}", to.display()))?;
+                std::fs::rename(tmp(n), &to).with_context(|| format!("renaming into {}", to.display()))?;
                 Ok(to)
             })
             .collect::<anyhow::Result<Vec<PathBuf>>>()?;
