@@ -6,6 +6,9 @@
 # bins), and "wide", fixtures/wide_night.toml (3000 steps 6553 bins apart, 19.7 M RF bins).
 # Then runs the numpy/scipy baselines (scipy savgol_filter, and an FFT fit) on the 3000-step
 # and the wide night, medians of several runs, and prints their ratios to axsift's median.
+# Each run writes into a new output folder, as a morning's reduction does (the previous run's
+# folder is removed before it, untimed): on ext4 a run that replaces an earlier results.h5
+# pays for writing the new one out inside the rename (0.3 s for the wide night's 395 MB).
 # Not part of the tests: timings on shared machines are noisy, hence medians.
 # Usage: bash scripts/bench.sh [work dir, default /tmp/axsift-bench]
 # Environment: BENCH_NIGHTS (default "300 3000 10000 wide") chooses the nights,
@@ -61,6 +64,13 @@ make_night() {
   "$axsift" -q simulate --scenario "$work/night$name.toml" --out "$night"
 }
 
+# Reduces NIGHT with BUILD into a new folder OUT (an earlier one removed first, untimed);
+# prints "seconds peak_kb".
+reduce_fresh() {
+  rm -rf "$2"
+  measure "$1" -q reduce --config "$root/pipeline.toml" --out "$2" "$3"
+}
+
 # Runs of each build per night (hot, alternating with the earlier build if given).
 declare -A repeats=([300]=7 [3000]=5 [10000]=3 [wide]=5)
 declare -A hot
@@ -69,16 +79,16 @@ for name in $nights; do
   night="$work/night$name.h5"
   make_night "$name"
   cat "$night" > /dev/null   # page cache
-  measure "$axsift" -q reduce --config "$root/pipeline.toml" --out "$work/out$name" "$night" >/dev/null
+  reduce_fresh "$axsift" "$work/out$name" "$night" >/dev/null
   ours=() before=()
   for _ in $(seq "${repeats[$name]}"); do
-    ours+=("$(measure "$axsift" -q reduce --config "$root/pipeline.toml" --out "$work/out$name" "$night")")
+    ours+=("$(reduce_fresh "$axsift" "$work/out$name" "$night")")
     if [ -n "${AXSIFT_BEFORE:-}" ]; then
-      before+=("$(measure "$AXSIFT_BEFORE" -q reduce --config "$root/pipeline.toml" --out "$work/before$name" "$night")")
+      before+=("$(reduce_fresh "$AXSIFT_BEFORE" "$work/before$name" "$night")")
     fi
   done
   sleep 12
-  idle="$(measure "$axsift" -q reduce --config "$root/pipeline.toml" --out "$work/out$name" "$night")"
+  idle="$(reduce_fresh "$axsift" "$work/out$name" "$night")"
   hot[$name]="$(median_s "${ours[@]}")"
   python3 - "$name" "$steps" "$idle" "${#ours[@]}" "${ours[@]}" "${before[@]}" <<'PY'
 import statistics, sys
