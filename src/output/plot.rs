@@ -88,6 +88,10 @@ pub struct PlotFacts<'a> {
     pub candidates: &'a [Candidate],
 }
 
+/// Height of the empty band above the data that holds the legend, as a fraction of the
+/// data's range.
+const LEGEND_BAND: f64 = 0.25;
+
 /// Draws the grand spectrum with the threshold and the candidates marked.
 pub fn grand_spectrum(columns: &Columns, facts: &PlotFacts<'_>, png: &Path, svg: &Path) -> anyhow::Result<()> {
     crate::fonts::register_fonts()?;
@@ -109,8 +113,10 @@ where
         lo_pts.push((mhz(c * columns.per), lo));
         hi_pts.push((mhz(c * columns.per), hi));
     }
-    let ymax = hi_pts.iter().map(|p| p.1).fold(sp.threshold.unwrap_or(4.0) + 1.0, f64::max);
+    let top = hi_pts.iter().map(|p| p.1).fold(sp.threshold.unwrap_or(4.0) + 1.0, f64::max);
     let ymin = lo_pts.iter().map(|p| p.1).fold(-5.0, f64::min);
+    // A band above the data, a quarter of its range, holds the legend clear of every value.
+    let ymax = top + LEGEND_BAND * (top - ymin);
     let err = |e: &dyn std::fmt::Display| anyhow::anyhow!("{e}");
     let mut chart = ChartBuilder::on(&area)
         .caption("Grand spectrum", ("sans-serif", 22))
@@ -141,7 +147,7 @@ where
         .legend(|(x, y)| Circle::new((x + 10, y), 4, RED.filled()));
     chart
         .configure_series_labels()
-        .position(SeriesLabelPosition::LowerRight)
+        .position(SeriesLabelPosition::UpperRight)
         .background_style(WHITE)
         .border_style(BLACK)
         .label_font(("sans-serif", 14))
