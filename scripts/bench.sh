@@ -11,7 +11,9 @@
 # pays for writing the new one out inside the rename (0.3 s for the wide night's 395 MB).
 # Not part of the tests: timings on shared machines are noisy, hence medians.
 # Usage: bash scripts/bench.sh [work dir, default /tmp/axsift-bench]
-# Environment: BENCH_NIGHTS (default "300 3000 10000 wide") chooses the nights,
+# Environment: BENCH_NIGHTS (default "300 3000 10000 wide campaign") chooses the nights;
+# "campaign" runs scripts/bench_state.sh last (nightly updates of 1e7- and 1e8-bin states,
+# RUNS=3 there, against the same nights reduced without a state; it has no numpy counterpart),
 # BENCH_BASELINE_NIGHTS (default "3000 wide", those of them measured) the baselines' nights,
 # BENCH_BASELINE_RUNS (default 3) the baselines' runs per night and fit.
 # With AXSIFT_BEFORE=/path/to/an/older/axsift, that build is measured in the same run,
@@ -26,7 +28,8 @@ python="$root/.venv/bin/python"
 (cd "$root" && cargo build --release -q)
 axsift="${CARGO_TARGET_DIR:-$root/target}/release/axsift"
 bins=32768
-nights="${BENCH_NIGHTS:-300 3000 10000 wide}"
+requested="${BENCH_NIGHTS:-300 3000 10000 wide campaign}"
+nights="$(echo "$requested" | tr ' ' '\n' | grep -vx campaign | tr '\n' ' ' || true)"
 baseline_nights="${BENCH_BASELINE_NIGHTS:-3000 wide}"
 baseline_runs="${BENCH_BASELINE_RUNS:-3}"
 
@@ -127,3 +130,7 @@ print(f"numpy ({fit:>6} fit) {name:>5}: median {t:6.2f} s {steps*32768/t/1e6:6.1
 PY
   done
 done
+if echo "$requested" | tr ' ' '\n' | grep -qx campaign; then
+  echo "campaign states (scripts/bench_state.sh):"
+  RUNS="${RUNS:-3}" WORK="$work/campaign" bash "$root/scripts/bench_state.sh"
+fi
