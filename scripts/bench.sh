@@ -19,25 +19,13 @@
 # With AXSIFT_BEFORE=/path/to/an/older/axsift, that build is measured in the same run,
 # alternating with this one run by run, and the ratio of the medians printed.
 set -euo pipefail
-root="$(cd "$(dirname "$0")/.." && pwd)"
 work="${1:-/tmp/axsift-bench}"
-mkdir -p "$work"
-command -v /usr/bin/time >/dev/null || { apt-get update -qq && apt-get install -y -qq time; }
-bash "$root/scripts/setup.sh" checks
-python="$root/.venv/bin/python"
-(cd "$root" && cargo build --release -q)
-axsift="${CARGO_TARGET_DIR:-$root/target}/release/axsift"
+source "$(dirname "$0")/bench_common.sh"
 bins=32768
 requested="${BENCH_NIGHTS:-300 3000 10000 wide campaign}"
 nights="$(echo "$requested" | tr ' ' '\n' | grep -vx campaign | tr '\n' ' ' || true)"
 baseline_nights="${BENCH_BASELINE_NIGHTS:-3000 wide}"
 baseline_runs="${BENCH_BASELINE_RUNS:-3}"
-
-# Runs a command under /usr/bin/time; prints "seconds peak_kb".
-measure() {
-  /usr/bin/time -f "%e %M" -o "$work/time.txt" "$@" >/dev/null 2>"$work/stderr.txt" || { cat "$work/stderr.txt"; exit 1; }
-  cat "$work/time.txt"
-}
 
 # Median of the first fields of "seconds peak_kb" lines.
 median_s() {

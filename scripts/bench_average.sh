@@ -12,22 +12,9 @@
 # Not part of the tests: timings on shared machines are noisy, hence medians.
 # Usage: bash scripts/bench_average.sh [work dir, default /tmp/axsift-bench-average]
 set -euo pipefail
-root="$(cd "$(dirname "$0")/.." && pwd)"
 work="${1:-/tmp/axsift-bench-average}"
-mkdir -p "$work"
-command -v /usr/bin/time >/dev/null || { apt-get update -qq && apt-get install -y -qq time; }
-bash "$root/scripts/setup.sh" checks
-export HDF5_USE_FILE_LOCKING=FALSE
-python="$root/.venv/bin/python"
-(cd "$root" && cargo build --release -q)
-axsift="${CARGO_TARGET_DIR:-$root/target}/release/axsift"
+source "$(dirname "$0")/bench_common.sh"
 runs=7
-
-# Runs a command under /usr/bin/time; prints "seconds peak_kb".
-measure() {
-  /usr/bin/time -f "%e %M" -o "$work/time.txt" "$@" >/dev/null 2>"$work/stderr.txt" || { cat "$work/stderr.txt"; exit 1; }
-  cat "$work/time.txt"
-}
 
 # name steps averages-per-step
 for spec in "short 16 1024" "night 64 1024" "long 32 2048"; do
