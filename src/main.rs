@@ -514,23 +514,45 @@ fn reduce_into_state(
         Some(st) => st,
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
     };
-    let update = axsift::state::add_nights(&mut st, &plan, &[runs.to_vec()]).map_err(|e| bad(e.to_string()))?.remove(0);
+    let Some(calibration) = calibration else {
+        // Without limits to compute, the recomputed span is written tile by tile as it is made.
+        let mut outputs = output::BlockOutputs::new(out)?;
+        let mut results = outputs.results_sink();
+        let mut write_failure = None;
+        let added = axsift::state::add_night(&mut st, &plan, runs, &mut |block| {
+            results.write(outputs.take(&output::Bins::of_block(block))).map_err(|e| {
+                let message = format!("writing results.h5: {e}");
+                write_failure = Some(message.clone());
+                message
+            })
+        });
+        let update = match (added, write_failure) {
+            (Err(_), Some(message)) => return Err(Failure::Run(anyhow::anyhow!(message))),
+            (added, _) => added.map_err(|e| bad(e.to_string()))?,
+        };
+        warn_no_data(&update.reduction);
+        // Adding the night hashed its files; the state holds those hashes.
+        let provenance = output::Provenance::of_hashed(config_text, st.nights[update.night].inputs());
+        let (written, stats) = outputs.finish(&update.reduction, results, config_text, &provenance, None)?;
+        st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
+        if !quiet {
+            let summary = update.reduction.summary_with(&stats, &provenance, None, None);
+            print!("{}", output::console::night_report(&update.reduction, &summary, None, &written));
+            print!("{}", output::console::state_report(&st, &update.changes).map_err(|e| Failure::BadInput(e.into()))?);
+        }
+        return Ok(());
+    };
+    // The limits need the span's per-bin values together: the span is collected in memory.
+    let update = axsift::state::collecting_span(|out| axsift::state::add_night(&mut st, &plan, runs, out)).map_err(|e| bad(e.to_string()))?;
     warn_no_data(&update.reduction);
-    // Adding the night hashed its files; the state holds those hashes.
     let provenance = output::Provenance::of_hashed(config_text, st.nights[update.night].inputs());
-    let limits = calibration
-        .as_ref()
-        .map(|cal| axsift::limits::for_reduction(&plan, &update.reduction.spectrum, cal, axsift::limits::DEFAULT_CONFIDENCE))
-        .transpose()
-        .map_err(bad)?;
-    let calibrated = calibration.as_ref().zip(limits.as_ref());
+    let limits = axsift::limits::for_reduction(&plan, &update.reduction.spectrum, &calibration, axsift::limits::DEFAULT_CONFIDENCE).map_err(bad)?;
+    let calibrated = Some((&calibration, &limits));
     let written = update.reduction.write(out, config_text, &provenance, calibrated)?;
-    if let Some(limits) = &limits {
-        st.record_limit(limits, &update.reduction.spectrum, update.match_hz).map_err(|e| Failure::BadInput(e.into()))?;
-    }
+    st.record_limit(&limits, &update.reduction.spectrum, update.match_hz).map_err(|e| Failure::BadInput(e.into()))?;
     st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
     if !quiet {
-        let summary = update.reduction.summary(&provenance, calibrated.map(|c| c.0), calibrated.map(|c| c.1));
+        let summary = update.reduction.summary(&provenance, Some(&calibration), Some(&limits));
         print!("{}", output::console::night_report(&update.reduction, &summary, calibrated, &written));
         print!("{}", output::console::state_report(&st, &update.changes).map_err(|e| Failure::BadInput(e.into()))?);
     }

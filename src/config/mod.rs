@@ -47,6 +47,10 @@ pub trait StageConfig: fmt::Debug + Send + Sync {
     fn baseline_kernel(&self) -> Option<Vec<f64>> {
         None
     }
+    /// The threshold this stage flags the grand spectrum at, if it is a flagging stage.
+    fn flag_threshold(&self) -> Option<f64> {
+        None
+    }
     /// Every option with its resolved value (defaults filled in), as a TOML table.
     fn options(&self) -> toml::Table;
 }

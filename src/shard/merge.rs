@@ -97,7 +97,9 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration
                 for (k, part) in parts.into_iter().enumerate() {
                     let what = format!("{} night {}", super::shard_path(work, shard.index).display(), shard.first + k);
                     let night = part.into_night(&what).map_err(ShardError::BadInput)?;
-                    last = Some(state::add_reduced_night(&mut st, &pipeline, night).map_err(|e| failed(&e))?);
+                    // Every night's span is collected; the last one's is written.
+                    let update = state::collecting_span(|out| state::add_reduced_night(&mut st, &pipeline, night, out));
+                    last = Some(update.map_err(|e| failed(&e))?);
                 }
             }
             let update = last.ok_or_else(|| ShardError::BadInput(format!("{}: the plan has no nights", plan_path.display())))?;

@@ -103,6 +103,19 @@ impl Block {
         }
     }
 
+    /// Appends the bins the block owns to the per-bin arrays of `spectrum` (all but
+    /// `coverage`, which a block does not carry), and its candidates.
+    pub fn append_to(&self, spectrum: &mut Spectrum) {
+        let n = self.len;
+        spectrum.combined.extend_from_slice(&self.combined[..n]);
+        spectrum.combined_sigma.extend_from_slice(&self.combined_sigma[..n]);
+        spectrum.amplitude.extend_from_slice(&self.amplitude[..n]);
+        spectrum.sigma_a.extend_from_slice(&self.sigma_a[..n]);
+        spectrum.predicted_spread.extend_from_slice(&self.predicted_spread[..n]);
+        spectrum.grand.extend_from_slice(&self.grand[..n]);
+        spectrum.candidates.extend_from_slice(&self.candidates);
+    }
+
     /// Moves the per-bin arrays, candidates and stage facts of a block made by
     /// [`Block::whole`] back into `spectrum`.
     pub fn return_to(self, spectrum: &mut Spectrum) {

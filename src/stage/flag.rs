@@ -35,6 +35,9 @@ impl FlagConfig {
 }
 
 impl StageConfig for FlagConfig {
+    fn flag_threshold(&self) -> Option<f64> {
+        self.threshold()
+    }
     fn options(&self) -> toml::Table {
         crate::config::options_of(self)
     }

@@ -5,6 +5,7 @@
 use super::interference::IfScan;
 use super::profile_file::IfProfileRecord;
 use super::rescan;
+use super::span::{SparseSpectrum, Tiler};
 use super::store::{FileRecord, NightRecord, State, StateError};
 use super::sums::Sums;
 use super::tiles::Stages;
@@ -14,7 +15,7 @@ use crate::output::Provenance;
 use crate::physics::constants::BOLTZMANN_J_PER_K;
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
 use crate::pipeline::{Reduction, reduce};
-use crate::stage::Spectrum;
+use crate::stage::{Block, Spectrum};
 use sha2::{Digest, Sha256};
 use std::ops::Range;
 use std::path::PathBuf;
@@ -46,10 +47,27 @@ pub fn plan_hash(plan: &Plan) -> String {
     h.finalize().iter().map(|b| format!("{b:02x}")).collect()
 }
 
-/// Adds each night (a list of run files) in order. The state is changed in memory only;
-/// save it with [`State::save`].
+/// Adds each night (a list of run files) in order, each update's recomputed span collected
+/// into its spectrum ([`collecting_span`]). The state is changed in memory only; save it
+/// with [`State::save`].
 pub fn add_nights(state: &mut State, plan: &Plan, nights: &[Vec<PathBuf>]) -> Result<Vec<Update>, StateError> {
-    nights.iter().map(|paths| add_night(state, plan, paths)).collect()
+    nights.iter().map(|paths| collecting_span(|out| add_night(state, plan, paths, out))).collect()
+}
+
+/// Runs `update` (an [`add_night`] or [`add_reduced_night`]) with the tiles it hands out
+/// collected into the returned update's spectrum, which then holds the per-bin arrays of
+/// the whole recomputed span (memory in proportion to that span).
+pub fn collecting_span(update: impl FnOnce(&mut dyn FnMut(&Block) -> Result<(), String>) -> Result<Update, StateError>) -> Result<Update, StateError> {
+    let mut span = Spectrum::default();
+    let mut done = update(&mut |block| {
+        block.append_to(&mut span);
+        Ok(())
+    })?;
+    let facts = &mut done.reduction.spectrum;
+    (span.candidates, span.rf_start_hz, span.bin_width_hz) = (std::mem::take(&mut facts.candidates), facts.rf_start_hz, facts.bin_width_hz);
+    (span.step_span_hz, span.mean_beta_sq, span.threshold) = (facts.step_span_hz, facts.mean_beta_sq, facts.threshold);
+    *facts = span;
+    Ok(done)
 }
 
 fn refused(msg: String) -> StateError {
@@ -107,11 +125,14 @@ fn check_new(state: &State, inputs: &[(String, String)]) -> Result<(), StateErro
     Ok(())
 }
 
-fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update, StateError> {
+/// Adds one night (its run files, in acquisition order) to the state, handing each tile of
+/// the span the update recomputes to `out` as it is made, in grid order (see
+/// [`add_reduced_night`]). The state is changed in memory only; save it with [`State::save`].
+pub fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf], out: &mut dyn FnMut(&Block) -> Result<(), String>) -> Result<Update, StateError> {
     check_config(state, plan)?;
     let inputs = hash_inputs(plan, paths)?;
     check_new(state, &inputs)?;
-    add_reduced_night(state, plan, reduce_hashed(plan, paths, inputs)?)
+    add_reduced_night(state, plan, reduce_hashed(plan, paths, inputs)?, out)
 }
 
 /// Adds a night reduced by [`reduce_night`] to the state: the same operations, in the same
@@ -122,80 +143,93 @@ fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf]) -> Result<Update
 /// blocks they fall in, the grand spectrum is recomputed on the tiles whose input those
 /// blocks are ([`tiles`](super::tiles)), one more tile on each side (so a candidate at the
 /// edge of the changed tiles is seen whole), and further out while a run of bins above
-/// threshold reaches the edge; candidates are tracked on that span, reading and changing
+/// threshold reaches the edge; each recomputed tile goes to `out` as a block of that span
+/// ([`span`](super::span)), and candidates are tracked on the span, reading and changing
 /// only the candidate blocks there ([`candidates`](super::candidates)). Everywhere else the
-/// grand spectrum and the candidates are unchanged, because their data are.
-pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight) -> Result<Update, StateError> {
+/// grand spectrum and the candidates are unchanged, because their data are. The returned
+/// update's spectrum holds the span's grid, stage facts and candidates, not its per-bin
+/// arrays (those went to `out`).
+pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight, out: &mut dyn FnMut(&Block) -> Result<(), String>) -> Result<Update, StateError> {
     check_config(state, plan)?;
     check_new(state, &night.inputs)?;
-    let ReducedNight { inputs, n_steps, reduction: night_red } = night;
+    let ReducedNight { inputs, n_steps, reduction: mut night_red } = night;
     let night_index = state.nights.len();
-    let stages = Stages::new(plan).map_err(refused)?;
     let night_bins = merge(state, &night_red.spectrum, &night_red.if_scan, &night_red.night.bin_correlation, night_index)?;
-    let (spectrum, without, sums) = span_of_update(state, &stages, &night_red, night_bins.clone())?;
-    state.nights.push(NightRecord {
+    let coverage = std::mem::take(&mut night_red.spectrum.coverage);
+    let night_start = night_bins.start;
+    let covered = |bin: i64| usize::try_from(bin - night_start).ok().and_then(|k| coverage.get(k)).is_some_and(|&c| c > 0);
+    let records = NightRecord {
         index: night_index,
         files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
         n_steps_used: night_red.used_steps.len(),
         if_lines: night_red.if_scan.lines.clone(),
-    });
+    };
+    finish_update(state, plan, records, night_red, night_bins, &covered, out)
+}
+
+/// After a night's sums are merged (over grid bins `night_bins`, `covered` telling which of
+/// them tonight's data reached): records the night, recomputes the span and tracks the
+/// candidates there.
+fn finish_update(
+    state: &mut State,
+    plan: &Plan,
+    record: NightRecord,
+    night_red: Reduction,
+    night_bins: Range<i64>,
+    covered: &dyn Fn(i64) -> bool,
+    out: &mut dyn FnMut(&Block) -> Result<(), String>,
+) -> Result<Update, StateError> {
+    let night_index = record.index;
+    state.nights.push(record);
     let profile = IfProfileRecord { if_profile_sigma: night_red.if_scan.if_profile_sigma.clone(), if_steps: night_red.if_scan.if_steps.clone() };
     state.put_profile(night_index, profile);
 
+    let stages = Stages::new(plan).map_err(refused)?;
     let plan_info = PlanInfo::from_plan(plan).map_err(refused)?;
-    // Grid bin of the span's first bin.
-    let first_bin = ((spectrum.rf_start_hz - state.rf_origin_hz) / state.bin_width_hz).round() as i64;
-    let night_cov = &night_red.spectrum.coverage;
-    let covered = |j: usize| {
-        let k = first_bin + j as i64 - night_bins.start;
-        k >= 0 && night_cov.get(k as usize).is_some_and(|&c| c > 0)
-    };
+    let grid = state.grid_bins.map(|(a, b)| state.block_of(a)..=state.block_of(b - 1)).ok_or_else(|| refused("the state's grid is empty".into()))?;
+    let changed = stages.tiles_reading(state, night_bins);
+    let planned = (*changed.start() - 1).max(*grid.start())..=(*changed.end() + 1).min(*grid.end());
+    let mut tiler = Tiler::new(&stages, &night_red.used_steps, night_red.spectrum.step_span_hz);
+    let tiles = tiler.extent(state, planned)?;
+    // Grid bin of the span's first bin, and its length.
+    let first_bin = state.block_range(*tiles.start()).start;
+    let span_bins = tiles.clone().count() as i64 * state.block_bins as i64;
+    let match_hz = state.freq_hz(first_bin) * plan_info.halo.mean_beta_sq();
+    let reach = (match_hz / state.bin_width_hz).ceil() as i64;
+    // The candidates of the span and of the blocks within a line width of it: the tracked
+    // ones a candidate flagged in the span can match.
+    let (blocks, mut tracked) = state.take_candidates(first_bin..first_bin + span_bins, reach)?;
+    let (origin_hz, bin_width_hz) = (state.rf_origin_hz, state.bin_width_hz);
+    let tracked_bins: Vec<i64> = tracked.iter().map(|c| ((c.frequency_hz + bin_width_hz / 2.0 - origin_hz) / bin_width_hz).round() as i64).collect();
+    let span = tiler.pass(state, tiles, &tracked_bins, reach as usize, out)?;
+    let covered_here = |j: usize| covered(first_bin + j as i64);
     // A candidate that only the spectrum without the IF-line samples shows (a negative line
     // sample hid it) has no positive amplitude in the full one: its amplitude there counts.
     let integration = |j: usize| {
-        let t = rescan_integration_s(&spectrum, &night_red, &plan_info, j);
-        match &without {
+        let t = rescan_integration_s(&span.full, &night_red, &plan_info, j);
+        match &span.without {
             Some(w) if !t.is_finite() => rescan_integration_s(w, &night_red, &plan_info, j),
             _ => t,
         }
     };
-    let match_hz = spectrum.freq_hz(0) * plan_info.halo.mean_beta_sq();
-    let reach = (match_hz / spectrum.bin_width_hz).ceil() as i64;
-    // The candidates of the span and of the blocks within a line width of it: the tracked
-    // ones a candidate flagged in the span can match.
-    let (blocks, mut tracked) = state.take_candidates(first_bin..first_bin + spectrum.grand.len() as i64, reach)?;
-    let explain = |j: usize| line_sources(&sums, first_bin + j as i64, reach, state.bin_width_hz);
-    let view = without.as_ref().map(|without| rescan::LineView { without, explain: &explain });
-    let changes = rescan::update(&mut tracked, &spectrum, view.as_ref(), night_index, match_hz, &covered, &integration);
+    let explain = |j: usize| {
+        let bin = first_bin + j as i64;
+        span.sums_around(bin).and_then(|sums| line_sources(sums, bin, reach, bin_width_hz))
+    };
+    let view = span.without.as_ref().map(|without| rescan::LineView { without, explain: &explain });
+    let changes = rescan::update(&mut tracked, &span.full, view.as_ref(), night_index, match_hz, &covered_here, &integration);
     state.put_candidates(&blocks, tracked)?;
+    let spectrum = Spectrum {
+        rf_start_hz: span.full.rf_start_hz,
+        bin_width_hz,
+        step_span_hz: night_red.spectrum.step_span_hz,
+        mean_beta_sq: span.mean_beta_sq,
+        threshold: span.full.threshold,
+        candidates: span.full.candidates.clone(),
+        ..Spectrum::default()
+    };
     let reduction = Reduction { spectrum, ..night_red };
     Ok(Update { reduction, night: night_index, changes, match_hz })
-}
-
-/// The grand spectrum an update recomputes (see [`add_reduced_night`]), the same without
-/// the IF-line samples if the span holds any, and the sums the tiles read.
-fn span_of_update(state: &State, stages: &Stages, night: &Reduction, night_bins: Range<i64>) -> Result<(Spectrum, Option<Spectrum>, Sums), StateError> {
-    let grid = state.grid_bins.map(|(a, b)| state.block_of(a)..=state.block_of(b - 1)).ok_or_else(|| refused("the state's grid is empty".into()))?;
-    let changed = stages.tiles_reading(state, night_bins);
-    let mut tiles = (*changed.start() - 1).max(*grid.start())..=(*changed.end() + 1).min(*grid.end());
-    loop {
-        let sums = state.sums(stages.input_of(state, &tiles))?;
-        let step_span_hz = night.spectrum.step_span_hz;
-        let spectrum = stages.grand(state, &tiles, &sums, false, &night.used_steps, step_span_hz).map_err(refused)?;
-        let without = if sums.line_steps.iter().any(|&n| n > 0) {
-            Some(stages.grand(state, &tiles, &sums, true, &night.used_steps, step_span_hz).map_err(refused)?)
-        } else {
-            None
-        };
-        let n = spectrum.grand.len();
-        let runs = spectrum.candidates.iter().chain(without.iter().flat_map(|w| &w.candidates));
-        let (low, high) = runs.fold((false, false), |(low, high), c| (low || c.first_bin == 0, high || c.last_bin + 1 == n));
-        let (low, high) = (low && tiles.start() > grid.start(), high && tiles.end() < grid.end());
-        if !low && !high {
-            return Ok((spectrum, without, sums));
-        }
-        tiles = (*tiles.start() - i64::from(low))..=(*tiles.end() + i64::from(high));
-    }
 }
 
 /// The plan up to and including the combine stage.
@@ -288,8 +322,8 @@ fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, bin_correlation: &[f64
 /// signal of the candidate's present amplitude A to [`RESCAN_TARGET_SNR`] with the night's
 /// median T_sys, Q_L and beta: t = (SNR s / (A P_ref / k_B T))^2 dnu_b / sum L^2 (radiometer
 /// equation through the optimal filter; s the predicted spread). Infinite if A <= 0.
-fn rescan_integration_s(sp: &Spectrum, night: &Reduction, info: &PlanInfo, j: usize) -> f64 {
-    let a = sp.amplitude.get(j).copied().unwrap_or(f64::NAN);
+fn rescan_integration_s(sp: &SparseSpectrum, night: &Reduction, info: &PlanInfo, j: usize) -> f64 {
+    let a = sp.amplitude(j);
     if !(a > 0.0) || night.used_steps.is_empty() {
         return f64::INFINITY;
     }
@@ -305,7 +339,7 @@ fn rescan_integration_s(sp: &Spectrum, night: &Reduction, info: &PlanInfo, j: us
     let p_w = signal_power_w(info.reference_g_gamma, info.dm_density_gev_per_cm3, &scope, &cavity, nu);
     let line = info.halo.bin_fractions(nu, sp.bin_width_hz, 1e-3);
     let sum_l2: f64 = line.iter().map(|l| l * l).sum();
-    let spread = sp.predicted_spread.get(j).copied().unwrap_or(1.0);
+    let spread = sp.predicted_spread(j).unwrap_or(1.0);
     let per_root_s = a * p_w / (BOLTZMANN_J_PER_K * median(|m| m.noise_temp_k)) * (sum_l2 / sp.bin_width_hz).sqrt() / spread;
     (RESCAN_TARGET_SNR / per_root_s).powi(2)
 }

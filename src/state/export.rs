@@ -53,7 +53,7 @@ pub fn export_grand(state: &State, plan: &Plan, path: &Path) -> Result<usize, St
     let (grand, combined, sigma, coverage) = make().map_err(|e| io(&tmp, e))?;
     for tile in state.block_of(first)..=state.block_of(end - 1) {
         let sums = state.sums(stages.input_bins(state, tile))?;
-        let sp = stages.grand(state, &(tile..=tile), &sums, false, &[], 0.0).map_err(StateError::Refused)?;
+        let sp = stages.tile(state, tile, &sums, false, &[], 0.0).map_err(StateError::Refused)?;
         let block = state.block_range(tile);
         let (lo, hi) = (block.start.max(first), block.end.min(end));
         let (k0, k1) = ((lo - block.start) as usize, (hi - block.start) as usize);

@@ -23,9 +23,10 @@
 //! does not depend on the thread count.
 
 use crate::simd::per_bin_loop;
-use crate::stage::{NightInfo, Standardised, Step};
+use crate::stage::{BLOCK_BINS, NightInfo, Standardised, Step};
 use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
 
 /// Bins one parallel task of [`IfProfile::add_all`] works on.
 const PIECE_BINS: usize = 8192;
@@ -48,11 +49,41 @@ pub struct IfProfile {
     weight: Vec<f64>,
     weighted_sum: Vec<f64>,
     weighted_sq_sum: Vec<f64>,
-    /// Per RF bin of the night's grid: the most significant sample (z = r / sigma), its
-    /// 1 / sigma and IF bin.
-    top_z: Vec<f32>,
-    top_inverse_sigma: Vec<f32>,
-    top_if_bin: Vec<u32>,
+    /// RF bins of the night's grid.
+    n_rf: usize,
+    /// Per RF bin of the night's grid, in blocks of [`BLOCK_BINS`] made when a step first
+    /// touches them: the most significant sample.
+    top: BTreeMap<usize, TopSamples>,
+}
+
+/// For consecutive RF bins of a night's grid (one block): the most significant single-step
+/// sample of each (z = r / sigma), its 1 / sigma and IF bin (z = -infinity: no sample yet).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct TopSamples {
+    /// z of the sample.
+    pub z: Vec<f32>,
+    /// Its 1 / sigma, reference-axion power^-1.
+    pub inverse_sigma: Vec<f32>,
+    /// Its IF bin.
+    pub if_bin: Vec<u32>,
+}
+
+impl TopSamples {
+    fn empty(n: usize) -> Self {
+        Self { z: vec![f32::NEG_INFINITY; n], inverse_sigma: vec![0.0; n], if_bin: vec![0; n] }
+    }
+
+    /// The samples sitting in an IF bin of `in_line` (true: the bin holds a line), as (index
+    /// within these bins, weight 1 / sigma^2, weight times value r / sigma^2, IF bin).
+    pub fn in_lines<'a>(&'a self, in_line: &'a [bool]) -> impl Iterator<Item = (usize, f64, f64, i32)> + 'a {
+        (0..self.z.len()).filter_map(move |j| {
+            let k = self.if_bin[j] as usize;
+            (self.z[j].is_finite() && in_line.get(k).copied().unwrap_or(false)).then(|| {
+                let (z, inv) = (f64::from(self.z[j]), f64::from(self.inverse_sigma[j]));
+                (j, inv * inv, z * inv, k as i32)
+            })
+        })
+    }
 }
 
 /// A line found in a night's IF profile.
@@ -98,9 +129,8 @@ impl IfProfile {
             weight: vec![0.0; night.n_bins],
             weighted_sum: vec![0.0; night.n_bins],
             weighted_sq_sum: vec![0.0; night.n_bins],
-            top_z: vec![f32::NEG_INFINITY; n_rf],
-            top_inverse_sigma: vec![0.0; n_rf],
-            top_if_bin: vec![0; n_rf],
+            n_rf,
+            top: BTreeMap::new(),
         }
     }
 
@@ -127,30 +157,52 @@ impl IfProfile {
             });
         let placed: Vec<(i64, &Step)> =
             steps.iter().map(|&step| (((step.meta.start_freq_hz - self.origin_hz) / self.bin_width_hz).round() as i64, step)).collect();
-        let (top_z, top_inverse_sigma, top_if_bin) = (&mut self.top_z, &mut self.top_inverse_sigma, &mut self.top_if_bin);
-        top_z.par_chunks_mut(PIECE_BINS).zip(top_inverse_sigma.par_chunks_mut(PIECE_BINS)).zip(top_if_bin.par_chunks_mut(PIECE_BINS)).enumerate().for_each(
-            |(piece, ((z_top, inv_top), k_top))| {
-                // This piece holds RF bins a..b.
-                let a = (piece * PIECE_BINS) as i64;
-                let b = a + z_top.len() as i64;
-                for &(first, step) in &placed {
-                    let Standardised { z, inverse_sigma } = &step.standard;
-                    let len = step.standard.len().min(n_if) as i64;
-                    let (j0, j1) = (first.max(a), (first + len).min(b));
-                    if j0 >= j1 {
-                        continue;
-                    }
-                    let (k0, i0, n) = ((j0 - first) as usize, (j0 - a) as usize, (j1 - j0) as usize);
-                    let (here, there) = (i0..i0 + n, k0..k0 + n);
-                    // IF bins fit in u32: a step has at most `runfile::MAX_BINS_PER_STEP` (2^20) bins.
-                    keep_top(&mut z_top[here.clone()], &mut inv_top[here.clone()], &mut k_top[here], &z[there.clone()], &inverse_sigma[there], k0 as u32);
+        // The blocks these steps touch, made on first touch.
+        for &(first, step) in &placed {
+            let last = (first + step.standard.len().min(n_if) as i64 - 1).min(self.n_rf as i64 - 1);
+            if first > last || last < 0 {
+                continue;
+            }
+            for block in (first.max(0) as usize / BLOCK_BINS)..=(last as usize / BLOCK_BINS) {
+                let n = BLOCK_BINS.min(self.n_rf - block * BLOCK_BINS);
+                self.top.entry(block).or_insert_with(|| TopSamples::empty(n));
+            }
+        }
+        let mut pieces: Vec<(i64, &mut [f32], &mut [f32], &mut [u32])> = Vec::new();
+        for (&block, top) in self.top.iter_mut() {
+            let zs = top.z.chunks_mut(PIECE_BINS);
+            let invs = top.inverse_sigma.chunks_mut(PIECE_BINS);
+            let ks = top.if_bin.chunks_mut(PIECE_BINS);
+            for (p, ((z, inv), k)) in zs.zip(invs).zip(ks).enumerate() {
+                pieces.push(((block * BLOCK_BINS + p * PIECE_BINS) as i64, z, inv, k));
+            }
+        }
+        pieces.into_par_iter().for_each(|(a, z_top, inv_top, k_top)| {
+            // This piece holds RF bins a..b.
+            let b = a + z_top.len() as i64;
+            for &(first, step) in &placed {
+                let Standardised { z, inverse_sigma } = &step.standard;
+                let len = step.standard.len().min(n_if) as i64;
+                let (j0, j1) = (first.max(a), (first + len).min(b));
+                if j0 >= j1 {
+                    continue;
                 }
-            },
-        );
+                let (k0, i0, n) = ((j0 - first) as usize, (j0 - a) as usize, (j1 - j0) as usize);
+                let (here, there) = (i0..i0 + n, k0..k0 + n);
+                // IF bins fit in u32: a step has at most `runfile::MAX_BINS_PER_STEP` (2^20) bins.
+                keep_top(&mut z_top[here.clone()], &mut inv_top[here.clone()], &mut k_top[here], &z[there.clone()], &inverse_sigma[there], k0 as u32);
+            }
+        });
     }
 
-    /// The profile's significances, its lines, and the RF samples in those lines.
-    pub fn finish(&self) -> IfScan {
+    /// Takes block `block`'s most significant samples out (no step may touch it afterwards);
+    /// None if no step touched it.
+    pub fn take_block(&mut self, block: usize) -> Option<TopSamples> {
+        self.top.remove(&block)
+    }
+
+    /// The profile's significances and its lines (no RF samples: see [`IfScan::removed_in`]).
+    pub fn profile(&self) -> IfScan {
         let chi2: Vec<(f64, f64)> = (0..self.steps.len())
             .map(|k| {
                 let nu = f64::from(self.steps[k]) - 1.0;
@@ -176,26 +228,29 @@ impl IfProfile {
             .filter(|(_, z)| **z > IF_LINE_SIGMA)
             .map(|(k, &z)| IfLine { if_bin: k, if_offset_hz: k as f64 * self.bin_width_hz, if_profile_sigma: z, n_steps: self.steps[k] })
             .collect();
-        let in_line: Vec<bool> = sigma.iter().map(|z| *z > IF_LINE_SIGMA).collect();
-        let n_rf = self.top_z.len();
-        let mut scan = IfScan {
-            if_profile_sigma: sigma,
-            if_steps: self.steps.clone(),
-            lines,
-            removed_weight: vec![0.0; n_rf],
-            removed_weighted_sum: vec![0.0; n_rf],
-            removed_if_bin: vec![-1; n_rf],
-        };
-        for j in 0..n_rf {
-            let k = self.top_if_bin[j] as usize;
-            if self.top_z[j].is_finite() && in_line[k] {
-                let (z, inv) = (f64::from(self.top_z[j]), f64::from(self.top_inverse_sigma[j]));
-                scan.removed_weight[j] = inv * inv;
-                scan.removed_weighted_sum[j] = z * inv;
-                scan.removed_if_bin[j] = k as i32;
+        IfScan { if_profile_sigma: sigma, if_steps: self.steps.clone(), lines, ..IfScan::default() }
+    }
+
+    /// The profile's significances, its lines, and the RF samples in those lines over the
+    /// whole night (from the blocks not taken out).
+    pub fn finish(&self) -> IfScan {
+        let mut scan = self.profile();
+        let in_line = scan.in_line();
+        (scan.removed_weight, scan.removed_weighted_sum, scan.removed_if_bin) = (vec![0.0; self.n_rf], vec![0.0; self.n_rf], vec![-1; self.n_rf]);
+        for (&block, top) in &self.top {
+            for (j, w, ws, k) in top.in_lines(&in_line) {
+                let at = block * BLOCK_BINS + j;
+                (scan.removed_weight[at], scan.removed_weighted_sum[at], scan.removed_if_bin[at]) = (w, ws, k);
             }
         }
         scan
+    }
+}
+
+impl IfScan {
+    /// Per IF bin: whether it holds a line (significance above [`IF_LINE_SIGMA`]).
+    pub fn in_line(&self) -> Vec<bool> {
+        self.if_profile_sigma.iter().map(|z| *z > IF_LINE_SIGMA).collect()
     }
 }
 

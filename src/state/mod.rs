@@ -55,12 +55,13 @@ mod export;
 pub mod interference;
 mod profile_file;
 mod rescan;
+mod span;
 mod status;
 mod store;
 mod sums;
 mod tiles;
 
-pub use accumulate::{RESCAN_TARGET_SNR, ReducedNight, Update, add_nights, add_reduced_night, plan_hash, reduce_night};
+pub use accumulate::{RESCAN_TARGET_SNR, ReducedNight, Update, add_night, add_nights, add_reduced_night, collecting_span, plan_hash, reduce_night};
 pub use candidates::{CandidateBlockRecord, Candidates};
 pub use export::export_grand;
 pub use interference::{IF_LINE_SIGMA, IfLine, IfProfile, IfScan};

@@ -1,6 +1,6 @@
 //! Tracking candidates across nights: classes, evidence, and the rescan plan.
 
-use crate::stage::Spectrum;
+use super::span::SparseSpectrum;
 use serde::{Deserialize, Serialize};
 
 /// What the data so far say about a candidate.
@@ -118,7 +118,7 @@ impl InterferenceEvidence {
 /// The spectrum without the IF-line samples, and what explains a candidate there.
 pub struct LineView<'a> {
     /// The accumulated spectrum with the IF-line samples set aside, spectrum stages applied.
-    pub without: &'a Spectrum,
+    pub without: &'a SparseSpectrum,
     /// The IF lines whose samples fall in the filter window of a candidate at grand bin j
     /// (None if no such sample).
     pub explain: &'a dyn Fn(usize) -> Option<(Vec<LineSource>, u32)>,
@@ -131,9 +131,9 @@ pub struct LineView<'a> {
 /// samples (None when there are none): a candidate above threshold in `sp` whose neighbourhood
 /// is at or below threshold there, with line samples in its window, is interference. Returns
 /// one line per change of class.
-pub fn update(
+pub(super) fn update(
     tracked: &mut Vec<TrackedCandidate>,
-    sp: &Spectrum,
+    sp: &SparseSpectrum,
     lines: Option<&LineView>,
     night: usize,
     match_hz: f64,
@@ -143,11 +143,13 @@ pub fn update(
     let threshold = sp.threshold.unwrap_or(f64::INFINITY);
     let bin_of = |f: f64| ((f + sp.bin_width_hz / 2.0 - sp.rf_start_hz) / sp.bin_width_hz).round() as i64;
     let reach = (match_hz / sp.bin_width_hz).ceil() as i64;
-    let peak_near = |grand: &[f64], f: f64| -> Option<(usize, f64)> {
+    // Reads the bins within `reach` of a tracked candidate or of a bin above threshold, all
+    // of which `sp` and the spectrum without the line samples keep.
+    let peak_near = |spectrum: &SparseSpectrum, f: f64| -> Option<(usize, f64)> {
         let centre = bin_of(f);
         (centre - reach..=centre + reach)
-            .filter(|&j| j >= 0 && (j as usize) < grand.len())
-            .map(|j| (j as usize, grand[j as usize]))
+            .filter(|&j| j >= 0 && (j as usize) < spectrum.len)
+            .map(|j| (j as usize, spectrum.grand(j as usize)))
             .filter(|(_, g)| g.is_finite())
             .max_by(|a, b| a.1.total_cmp(&b.1))
     };
@@ -155,21 +157,21 @@ pub fn update(
     // IF-line samples.
     let interference = |f: f64| -> Option<InterferenceEvidence> {
         let view = lines?;
-        let (_, without) = peak_near(&view.without.grand, f)?;
+        let (_, without) = peak_near(view.without, f)?;
         if without > threshold {
             return None;
         }
-        let (peak, _) = peak_near(&sp.grand, f)?;
+        let (peak, _) = peak_near(sp, f)?;
         let (lines, n_steps) = (view.explain)(peak)?;
         Some(InterferenceEvidence { lines, n_steps, significance_without: without })
     };
     let mut changes = Vec::new();
     for c in tracked.iter_mut().filter(|c| c.class.is_open() && c.first_night < night) {
         let j = bin_of(c.frequency_hz);
-        if j < 0 || j as usize >= sp.grand.len() || !covered(j as usize) {
+        if j < 0 || j as usize >= sp.len || !covered(j as usize) {
             continue;
         }
-        let Some((peak, g)) = peak_near(&sp.grand, c.frequency_hz) else { continue };
+        let Some((peak, g)) = peak_near(sp, c.frequency_hz) else { continue };
         let before = c.class;
         c.significance = g;
         let explained = if g > threshold { interference(c.frequency_hz) } else { None };

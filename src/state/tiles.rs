@@ -9,7 +9,7 @@
 //! bin): an update that recomputes the tiles whose input it changed gets the same bits as a
 //! recomputation of the whole campaign, and every other tile keeps its values because its
 //! data did not change. The stages that work on the grand spectrum (input form `Grand`: the
-//! flag) then run once over the concatenated tiles.
+//! flag) then run over the tiles in grid order, as blocks of one grid ([`span`](super::span)).
 
 use super::State;
 use super::sums::Sums;
@@ -61,54 +61,50 @@ impl<'p> Stages<'p> {
         self.input_bins(st, *tiles.start()).start..tiles.clone().map(|t| self.input_bins(st, t).end).max().unwrap_or(0)
     }
 
-    /// The grand spectrum of tiles `tiles` from `sums` (which must hold their input bins);
-    /// with `without_lines`, of the sums without the IF-line samples. `steps` are the steps
-    /// the flag reports as covering a candidate; `step_span_hz` the RF width of one step.
-    pub(super) fn grand(
+    /// Tile `tile`'s spectrum from `sums` (which must hold its input bins): the stages that
+    /// take the combined spectrum (the filter) applied, every per-bin array cut to the block's
+    /// own bins; with `without_lines`, of the sums without the IF-line samples. `steps` are
+    /// the steps the stages may report; `step_span_hz` the RF width of one step.
+    pub(super) fn tile(
         &self,
         st: &State,
-        tiles: &RangeInclusive<i64>,
+        tile: i64,
         sums: &Sums,
         without_lines: bool,
         steps: &[(usize, StepMeta)],
         step_span_hz: f64,
     ) -> Result<Spectrum, String> {
-        let first_bin = st.block_range(*tiles.start()).start;
-        let mut span = Spectrum { rf_start_hz: st.freq_hz(first_bin), bin_width_hz: st.bin_width_hz, step_span_hz, ..Spectrum::default() };
-        for tile in tiles.clone() {
-            let input = self.input_bins(st, tile);
-            let mut sp = spectrum_of(st, sums, input.clone(), without_lines, step_span_hz);
-            let info = NightInfo {
-                bin_width_hz: st.bin_width_hz,
-                n_bins: 0,
-                rf_span_hz: (st.freq_hz(input.start), st.freq_hz(input.end - 1)),
-                headers: Vec::new(),
-                bin_correlation: st.bin_correlation.clone(),
-            };
-            for stage in self.built(&info, Form::Combined)? {
-                stage.apply(&mut sp, steps)?;
-            }
-            let n = st.block_bins;
-            span.combined.extend_from_slice(&sp.combined[..n]);
-            span.combined_sigma.extend_from_slice(&sp.combined_sigma[..n]);
-            span.coverage.extend_from_slice(&sp.coverage[..n]);
-            span.amplitude.extend_from_slice(&sp.amplitude[..n]);
-            span.sigma_a.extend_from_slice(&sp.sigma_a[..n]);
-            span.predicted_spread.extend_from_slice(&sp.predicted_spread[..n]);
-            span.grand.extend_from_slice(&sp.grand[..n]);
-            span.mean_beta_sq = sp.mean_beta_sq;
-        }
+        let input = self.input_bins(st, tile);
+        let mut sp = spectrum_of(st, sums, input.clone(), without_lines, step_span_hz);
         let info = NightInfo {
             bin_width_hz: st.bin_width_hz,
             n_bins: 0,
-            rf_span_hz: (span.rf_start_hz, span.freq_hz(span.combined.len().saturating_sub(1))),
+            rf_span_hz: (st.freq_hz(input.start), st.freq_hz(input.end - 1)),
             headers: Vec::new(),
             bin_correlation: st.bin_correlation.clone(),
         };
-        for stage in self.built(&info, Form::Grand)? {
-            stage.apply(&mut span, steps)?;
+        for stage in self.built(&info, Form::Combined)? {
+            stage.apply(&mut sp, steps)?;
         }
-        Ok(span)
+        let n = st.block_bins;
+        for v in [&mut sp.combined, &mut sp.combined_sigma, &mut sp.amplitude, &mut sp.sigma_a, &mut sp.predicted_spread, &mut sp.grand] {
+            v.truncate(n);
+        }
+        sp.coverage.truncate(n);
+        Ok(sp)
+    }
+
+    /// The stages that take the grand spectrum (the flag), built for a span of the grid from
+    /// `rf_span_hz.0` to `rf_span_hz.1` (bin centres, Hz); they run over the span's tiles in
+    /// grid order as blocks of one grid.
+    pub(super) fn on_grand(&self, st: &State, rf_span_hz: (f64, f64)) -> Result<Vec<Box<dyn SpectrumStage>>, String> {
+        let info = NightInfo { bin_width_hz: st.bin_width_hz, n_bins: 0, rf_span_hz, headers: Vec::new(), bin_correlation: st.bin_correlation.clone() };
+        self.built(&info, Form::Grand)
+    }
+
+    /// The threshold the plan flags the grand spectrum at (infinite without a flag stage).
+    pub(super) fn threshold(&self) -> f64 {
+        self.plan.stages.iter().find_map(|s| s.config.flag_threshold()).unwrap_or(f64::INFINITY)
     }
 
     /// The plan's spectrum stages that take `input`, built for `info`'s RF span.
