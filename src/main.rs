@@ -514,6 +514,7 @@ fn reduce_into_state(
         Some(st) => st,
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
     };
+    st.stage_in(state_dir).map_err(|e| Failure::Run(e.into()))?;
     let Some(calibration) = calibration else {
         // Without limits to compute, the recomputed span is written tile by tile as it is made.
         let mut outputs = output::BlockOutputs::new(out)?;

@@ -19,6 +19,7 @@ struct Combined {
     block: usize,
     combined: Vec<f64>,
     sigma: Vec<f64>,
+    coverage: Vec<u32>,
 }
 
 /// The blocks between the combination and the output.
@@ -69,7 +70,8 @@ impl<'a> Finisher<'a> {
             c.block = self.taken;
             c.combined.clear();
             c.sigma.clear();
-            combiner.finish_block(self.taken, &mut c.combined, &mut c.sigma, None);
+            c.coverage.clear();
+            combiner.finish_block(self.taken, &mut c.combined, &mut c.sigma, Some(&mut c.coverage));
             self.waiting.push_back(c);
             self.taken += 1;
         }
@@ -85,6 +87,7 @@ impl<'a> Finisher<'a> {
             // The block takes the combined buffers; its previous ones go back as spares.
             std::mem::swap(&mut b.combined, &mut front.combined);
             std::mem::swap(&mut b.combined_sigma, &mut front.sigma);
+            std::mem::swap(&mut b.coverage, &mut front.coverage);
             if let Some(next) = next {
                 let reach = self.lookahead.min(next.combined.len());
                 b.combined.extend_from_slice(&next.combined[..reach]);

@@ -5,7 +5,8 @@ use super::schedule::Schedule;
 use super::{Prepared, ReduceError, Reduction, Writer, prepare, run_stages, stream_chunks};
 use crate::config::Plan;
 use crate::stage::no_data::NoDataTally;
-use crate::stage::{Block, Spectrum, Step};
+use crate::stage::{BLOCK_BINS, Block, Spectrum, Step};
+use crate::state::{IfProfile, TopSamples};
 use std::path::PathBuf;
 
 /// Reduces run files as [`super::reduce`] does, with the same results, but finishes the RF
@@ -18,7 +19,7 @@ use std::path::PathBuf;
 ///
 /// The returned reduction's spectrum holds the grid's origin, bin width, stage facts and
 /// every candidate, but no per-bin arrays (they went to `finished`), and its IF profile is
-/// empty (it is made for the analysis state, which reduces with [`super::reduce`]).
+/// empty (see [`reduce_streamed_profiled`]).
 pub fn reduce_streamed<J: Send>(
     plan: &Plan,
     paths: &[PathBuf],
@@ -26,10 +27,37 @@ pub fn reduce_streamed<J: Send>(
     finished: &mut (dyn FnMut(&Block) -> Result<Option<J>, String> + Send),
     write: Writer<'_, J>,
 ) -> Result<Reduction, ReduceError> {
+    reduce_blocks(plan, paths, progress, false, &mut |block, _| finished(block), write)
+}
+
+/// As [`reduce_streamed`], also making the night's IF profile (for the analysis state):
+/// `finished` gets each block with its most significant single-step samples (None where no
+/// step touched the block), and the returned reduction's IF scan holds the profile and its
+/// lines but no RF samples (they went to `finished`: [`crate::state::TopSamples::in_lines`]
+/// picks those of the lines).
+pub fn reduce_streamed_profiled<J: Send>(
+    plan: &Plan,
+    paths: &[PathBuf],
+    progress: &dyn Fn(usize, usize),
+    finished: &mut (dyn FnMut(&Block, Option<TopSamples>) -> Result<Option<J>, String> + Send),
+    write: Writer<'_, J>,
+) -> Result<Reduction, ReduceError> {
+    reduce_blocks(plan, paths, progress, true, finished, write)
+}
+
+fn reduce_blocks<J: Send>(
+    plan: &Plan,
+    paths: &[PathBuf],
+    progress: &dyn Fn(usize, usize),
+    with_profile: bool,
+    finished: &mut (dyn FnMut(&Block, Option<TopSamples>) -> Result<Option<J>, String> + Send),
+    write: Writer<'_, J>,
+) -> Result<Reduction, ReduceError> {
     let mut buffers: [Vec<Step>; 2] = Default::default();
     let Prepared { readers, night, step_stages, mut combiner, spectrum_stages, total } = prepare(plan, paths, None, &mut buffers)?;
     let schedule = Schedule::new(&readers, &night, combiner.grid_bins());
     let mut finisher = Finisher::new(schedule, &spectrum_stages, &*combiner, &night).map_err(ReduceError::Night)?;
+    let mut profile = with_profile.then(|| IfProfile::new(&night));
     let (mut cuts, mut used_steps, mut candidates) = (Vec::new(), Vec::new(), Vec::new());
     let mut no_data = NoDataTally::default();
     let mut done = 0;
@@ -41,13 +69,22 @@ pub fn reduce_streamed<J: Send>(
         &mut buffers,
         |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, &mut no_data, paths),
         |kept, through| {
-            combiner.add_all(kept).map_err(ReduceError::Night)?;
+            let (combined, ()) = rayon::join(
+                || combiner.add_all(kept).map_err(ReduceError::Night),
+                || {
+                    if let Some(p) = profile.as_mut() {
+                        p.add_all(kept);
+                    }
+                },
+            );
+            combined?;
             used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
             let mut jobs = Vec::new();
             complete = finisher
                 .advance(&mut *combiner, through, &used_steps, &mut |block| {
                     candidates.extend_from_slice(&block.candidates);
-                    jobs.extend(finished(block)?);
+                    let top = profile.as_mut().and_then(|p| p.take_block(block.first_bin / BLOCK_BINS));
+                    jobs.extend(finished(block, top)?);
                     Ok(())
                 })
                 .map_err(ReduceError::Night)?;
@@ -73,5 +110,6 @@ pub fn reduce_streamed<J: Send>(
         candidates,
         ..Spectrum::default()
     };
-    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan: Default::default(), no_data })
+    let if_scan = profile.map(|p| p.profile()).unwrap_or_default();
+    Ok(Reduction { spectrum, n_steps_in: total, used_steps, cuts, night, if_scan, no_data })
 }

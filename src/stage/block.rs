@@ -50,6 +50,8 @@ pub struct Block {
     pub combined: Vec<f64>,
     /// Its standard deviation (infinite = no data), over the same bins.
     pub combined_sigma: Vec<f64>,
+    /// Steps contributing, per owned bin.
+    pub coverage: Vec<u32>,
     /// Filtered amplitude, reference-axion units, per owned bin.
     pub amplitude: Vec<f64>,
     /// Its standard deviation, reference-axion units.
@@ -92,6 +94,7 @@ impl Block {
             len: sp.combined.len(),
             combined: std::mem::take(&mut sp.combined),
             combined_sigma: std::mem::take(&mut sp.combined_sigma),
+            coverage: std::mem::take(&mut sp.coverage),
             amplitude: std::mem::take(&mut sp.amplitude),
             sigma_a: std::mem::take(&mut sp.sigma_a),
             predicted_spread: std::mem::take(&mut sp.predicted_spread),
@@ -103,12 +106,13 @@ impl Block {
         }
     }
 
-    /// Appends the bins the block owns to the per-bin arrays of `spectrum` (all but
-    /// `coverage`, which a block does not carry), and its candidates.
+    /// Appends the bins the block owns to the per-bin arrays of `spectrum`, and its
+    /// candidates.
     pub fn append_to(&self, spectrum: &mut Spectrum) {
         let n = self.len;
         spectrum.combined.extend_from_slice(&self.combined[..n]);
         spectrum.combined_sigma.extend_from_slice(&self.combined_sigma[..n]);
+        spectrum.coverage.extend_from_slice(&self.coverage[..n.min(self.coverage.len())]);
         spectrum.amplitude.extend_from_slice(&self.amplitude[..n]);
         spectrum.sigma_a.extend_from_slice(&self.sigma_a[..n]);
         spectrum.predicted_spread.extend_from_slice(&self.predicted_spread[..n]);
@@ -122,6 +126,7 @@ impl Block {
         let sp = spectrum;
         sp.combined = self.combined;
         sp.combined_sigma = self.combined_sigma;
+        sp.coverage = self.coverage;
         sp.amplitude = self.amplitude;
         sp.sigma_a = self.sigma_a;
         sp.predicted_spread = self.predicted_spread;

@@ -3,19 +3,21 @@
 //! candidate tracking there.
 
 use super::interference::IfScan;
+use super::night_sums::{self, NightCoverage, SumsMerger};
 use super::profile_file::IfProfileRecord;
 use super::rescan;
 use super::span::{SparseSpectrum, Tiler};
 use super::store::{FileRecord, NightRecord, State, StateError};
 use super::sums::Sums;
 use super::tiles::Stages;
+use super::top_spill::TopSpill;
 use crate::calib::PlanInfo;
 use crate::config::{Plan, load};
 use crate::output::Provenance;
 use crate::physics::constants::BOLTZMANN_J_PER_K;
 use crate::physics::signal::{CavityState, Haloscope, signal_power_w};
 use crate::pipeline::{Reduction, reduce};
-use crate::stage::{Block, Spectrum};
+use crate::stage::{BLOCK_BINS, Block, Spectrum};
 use sha2::{Digest, Sha256};
 use std::ops::Range;
 use std::path::PathBuf;
@@ -127,12 +129,67 @@ fn check_new(state: &State, inputs: &[(String, String)]) -> Result<(), StateErro
 
 /// Adds one night (its run files, in acquisition order) to the state, handing each tile of
 /// the span the update recomputes to `out` as it is made, in grid order (see
-/// [`add_reduced_night`]). The state is changed in memory only; save it with [`State::save`].
+/// [`add_reduced_night`], whose result this is, bit for bit). The state is changed in memory
+/// only (save it with [`State::save`]); with [`State::stage_in`] the blocks of the sums are
+/// written to the state's folder as they are finished, so memory stays bounded whatever the
+/// night's RF span: the night streams through the combination block by block
+/// ([`crate::pipeline::reduce_streamed_profiled`]) into the sums, its most significant
+/// samples set aside on disk until its IF profile tells which are IF-line samples. On an
+/// error the state in memory may hold part of the night: load it again from its folder.
 pub fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf], out: &mut dyn FnMut(&Block) -> Result<(), String>) -> Result<Update, StateError> {
     check_config(state, plan)?;
     let inputs = hash_inputs(plan, paths)?;
     check_new(state, &inputs)?;
-    add_reduced_night(state, plan, reduce_hashed(plan, paths, inputs)?, out)
+    let front = up_to_combine(plan)?;
+    let (readers, info) = crate::pipeline::open_night(paths).map_err(|e| refused(e.to_string()))?;
+    let n_steps: Vec<usize> = readers.iter().map(|r| r.steps().len()).collect();
+    drop(readers);
+    let night_index = state.nights.len();
+    let n_rf = ((info.rf_span_hz.1 - info.rf_span_hz.0) / info.bin_width_hz).round() as usize + 1;
+    let night_bins = night_sums::place(state, info.rf_span_hz.0, info.bin_width_hz, &info.bin_correlation, n_rf)?;
+    let mut merger = SumsMerger::new(&night_bins);
+    let mut spill = TopSpill::new()?;
+    // A failure of the merge (reading or writing the state's blocks), with its file.
+    let mut failed: Option<StateError> = None;
+    let reduced = crate::pipeline::reduce_streamed_profiled(
+        &front,
+        paths,
+        &|_, _| {},
+        &mut |block, top| {
+            Ok(Some((block.first_bin, block.combined[..block.len].to_vec(), block.combined_sigma[..block.len].to_vec(), block.coverage.clone(), top)))
+        },
+        &mut |(first, combined, sigma, coverage, top)| {
+            let merged = merger.add(state, first, &combined, &sigma, &coverage).and_then(|()| spill.push(first / BLOCK_BINS, top.as_ref()));
+            merged.map_err(|e| {
+                let message = e.to_string();
+                failed = Some(e);
+                message
+            })
+        },
+    );
+    let mut night_red = match (reduced, failed) {
+        (Err(_), Some(e)) => return Err(e),
+        (reduced, _) => reduced.map_err(|e| refused(e.to_string()))?,
+    };
+    let coverage = merger.finish(state)?;
+    let in_line = night_red.if_scan.in_line();
+    if in_line.contains(&true) {
+        let (sigma, first) = (std::mem::take(&mut night_red.if_scan.if_profile_sigma), night_bins.start);
+        spill.read_back(|block, top| {
+            let samples = top.in_lines(&in_line).map(|(j, w, ws, k)| (block * BLOCK_BINS + j, w, ws, k));
+            night_sums::add_line_samples(state, first, samples, night_index, &sigma)
+        })?;
+        night_red.if_scan.if_profile_sigma = sigma;
+    }
+    let night_start = night_bins.start;
+    let covered = |bin: i64| usize::try_from(bin - night_start).is_ok_and(|k| coverage.get(k));
+    let record = NightRecord {
+        index: night_index,
+        files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
+        n_steps_used: night_red.used_steps.len(),
+        if_lines: night_red.if_scan.lines.clone(),
+    };
+    finish_update(state, plan, record, night_red, night_bins, &covered, out)
 }
 
 /// Adds a night reduced by [`reduce_night`] to the state: the same operations, in the same
@@ -154,10 +211,12 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight, ou
     check_new(state, &night.inputs)?;
     let ReducedNight { inputs, n_steps, reduction: mut night_red } = night;
     let night_index = state.nights.len();
-    let night_bins = merge(state, &night_red.spectrum, &night_red.if_scan, &night_red.night.bin_correlation, night_index)?;
-    let coverage = std::mem::take(&mut night_red.spectrum.coverage);
+    let (night_bins, coverage) = merge(state, &night_red.spectrum, &night_red.if_scan, &night_red.night.bin_correlation, night_index)?;
+    // What follows needs the night's facts, not its per-bin arrays.
+    night_red.spectrum = Spectrum { combined: Vec::new(), combined_sigma: Vec::new(), coverage: Vec::new(), ..night_red.spectrum };
+    night_red.if_scan = IfScan { removed_weight: Vec::new(), removed_weighted_sum: Vec::new(), removed_if_bin: Vec::new(), ..night_red.if_scan };
     let night_start = night_bins.start;
-    let covered = |bin: i64| usize::try_from(bin - night_start).ok().and_then(|k| coverage.get(k)).is_some_and(|&c| c > 0);
+    let covered = |bin: i64| usize::try_from(bin - night_start).is_ok_and(|k| coverage.get(k));
     let records = NightRecord {
         index: night_index,
         files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
@@ -267,55 +326,20 @@ fn line_sources(sums: &Sums, bin: i64, reach: i64, bin_width_hz: f64) -> Option<
     (!steps.is_empty()).then_some((sources, steps.len() as u32))
 }
 
-/// Adds a night's combined spectrum, and the IF-line samples of its IF profile, to the
-/// state's sums; returns the grid bins the night spans. `bin_correlation` is the night's
-/// (its run files').
-fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, bin_correlation: &[f64], night_index: usize) -> Result<Range<i64>, StateError> {
-    if state.grid_bins.is_none() {
-        state.bin_width_hz = sp.bin_width_hz;
-        state.rf_origin_hz = sp.rf_start_hz;
-        state.bin_correlation = bin_correlation.to_vec();
+/// Adds a night's combined spectrum (held whole), and the IF-line samples of its IF
+/// profile, to the state's sums; returns the grid bins the night spans and which of them
+/// its data reached. `bin_correlation` is the night's (its run files').
+fn merge(state: &mut State, sp: &Spectrum, scan: &IfScan, bin_correlation: &[f64], night_index: usize) -> Result<(Range<i64>, NightCoverage), StateError> {
+    let bins = night_sums::place(state, sp.rf_start_hz, sp.bin_width_hz, bin_correlation, sp.combined.len())?;
+    let mut merger = SumsMerger::new(&bins);
+    for first in (0..sp.combined.len()).step_by(BLOCK_BINS) {
+        let r = first..(first + BLOCK_BINS).min(sp.combined.len());
+        merger.add(state, first, &sp.combined[r.clone()], &sp.combined_sigma[r.clone()], &sp.coverage[r])?;
     }
-    if sp.bin_width_hz != state.bin_width_hz {
-        return Err(refused(format!("bin width {} Hz differs from the state's {} Hz", sp.bin_width_hz, state.bin_width_hz)));
-    }
-    if bin_correlation != state.bin_correlation {
-        return Err(refused(format!(
-            "field `bin_correlation` of the night's run files, {bin_correlation:?}, differs from the state's {:?}: the nights of one state must come from the same spectrum estimator (window and overlap)",
-            state.bin_correlation
-        )));
-    }
-    let offset = (sp.rf_start_hz - state.rf_origin_hz) / state.bin_width_hz;
-    let whole = offset.round();
-    if (offset - whole).abs() > 1e-3 {
-        return Err(refused(format!("the night's RF grid lies {:.4} bins off the state's grid (origin {} Hz)", offset - whole, state.rf_origin_hz)));
-    }
-    let first = whole as i64;
-    let bins = first..first + sp.combined.len() as i64;
-    let mut sums = state.sums(bins.clone())?;
-    for (k, &w) in scan.removed_weight.iter().enumerate().filter(|(k, w)| **w > 0.0 && *k < sp.combined.len()) {
-        let if_bin = scan.removed_if_bin[k];
-        sums.line_weight[k] += w;
-        sums.line_weighted_sum[k] += scan.removed_weighted_sum[k];
-        sums.line_steps[k] += 1;
-        sums.line_night[k] = night_index as i32;
-        sums.line_if_bin[k] = if_bin;
-        sums.line_if_profile_sigma[k] = usize::try_from(if_bin).ok().and_then(|i| scan.if_profile_sigma.get(i)).copied().unwrap_or(f64::NAN);
-    }
-    for (k, (&c, &s)) in sp.combined.iter().zip(&sp.combined_sigma).enumerate() {
-        if c.is_finite() && s.is_finite() && s > 0.0 {
-            let w = 1.0 / (s * s);
-            sums.weight[k] += w;
-            sums.weighted_sum[k] += w * c;
-            sums.coverage[k] += sp.coverage[k];
-        }
-    }
-    state.put_sums(&sums)?;
-    state.grid_bins = Some(match state.grid_bins {
-        Some((a, b)) => (a.min(bins.start), b.max(bins.end)),
-        None => (bins.start, bins.end),
-    });
-    Ok(bins)
+    let coverage = merger.finish(state)?;
+    let samples = (0..sp.combined.len()).map(|k| (k, scan.removed_weight[k], scan.removed_weighted_sum[k], scan.removed_if_bin[k]));
+    night_sums::add_line_samples(state, bins.start, samples, night_index, &scan.if_profile_sigma)?;
+    Ok((bins, coverage))
 }
 
 /// Integration of one rescan step, tuned onto the candidate (Lorentzian = 1), that brings a

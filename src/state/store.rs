@@ -94,9 +94,17 @@ pub struct State {
     /// Folder the stored blocks are read from (None for a state not yet saved).
     #[serde(skip)]
     source: Option<PathBuf>,
-    /// Blocks changed since the state was loaded or saved, by index.
+    /// Blocks changed since the state was loaded or saved, by index, held in memory.
     #[serde(skip)]
     changed: BTreeMap<i64, Sums>,
+    /// Folder that changed blocks are written to as soon as an update finishes them
+    /// ([`State::stage_in`]); None: they are held in memory until saved.
+    #[serde(skip)]
+    staging: Option<PathBuf>,
+    /// Blocks changed since then and written to the staging folder under the next
+    /// generation's names, by index, with their covered bins.
+    #[serde(skip)]
+    staged: BTreeMap<i64, usize>,
     /// IF profiles of the nights added since then, by night.
     #[serde(skip)]
     new_profiles: BTreeMap<usize, IfProfileRecord>,
@@ -183,8 +191,23 @@ impl State {
             limit: None,
             source: None,
             changed: BTreeMap::new(),
+            staging: None,
+            staged: BTreeMap::new(),
             new_profiles: BTreeMap::new(),
         }
+    }
+
+    /// Writes the blocks of the sums an update finishes into `dir` (the folder the state is
+    /// to be saved to) as soon as they are finished, under the next generation's names,
+    /// instead of holding them in memory until [`State::save`]: memory then stays bounded
+    /// whatever the RF span of a night. Until the save commits, `state.json` names none of
+    /// them, so a run killed before it leaves the previous state as it was (the next save
+    /// removes the files).
+    pub fn stage_in(&mut self, dir: &Path) -> Result<(), StateError> {
+        let blocks = dir.join("blocks");
+        std::fs::create_dir_all(&blocks).map_err(|e| io(&blocks, e))?;
+        self.staging = Some(dir.to_path_buf());
+        Ok(())
     }
 
     /// Loads the index of the state in `dir` (blocks are read when needed), or `None` if the
@@ -245,8 +268,13 @@ impl State {
 
     /// Bins with at least one contributing step, over the whole grid.
     pub fn covered_bins(&self) -> usize {
-        let stored: usize = self.blocks.iter().filter(|b| !self.changed.contains_key(&b.index)).map(|b| b.covered_bins).sum();
-        stored + self.changed.values().map(Sums::covered_bins).sum::<usize>()
+        let stored: usize = self.blocks.iter().filter(|b| !self.is_changed(b.index)).map(|b| b.covered_bins).sum();
+        stored + self.changed.values().map(Sums::covered_bins).sum::<usize>() + self.staged.values().sum::<usize>()
+    }
+
+    /// Whether block `index` was changed since the state was loaded or saved.
+    fn is_changed(&self, index: i64) -> bool {
+        self.changed.contains_key(&index) || self.staged.contains_key(&index)
     }
 
     /// One block of the sums: as changed by an update not yet saved, as stored, or empty.
@@ -254,6 +282,9 @@ impl State {
         let range = self.block_range(index);
         if let Some(sums) = self.changed.get(&index) {
             return Ok(sums.clone());
+        }
+        if let (Some(dir), true) = (&self.staging, self.staged.contains_key(&index)) {
+            return block_file::read(&dir.join("blocks").join(block_name(index, self.generation + 1)), range.start, self.block_bins);
         }
         match (&self.source, self.blocks.binary_search_by_key(&index, |b| b.index)) {
             (Some(dir), Ok(i)) => block_file::read(&dir.join("blocks").join(block_name(index, self.blocks[i].generation)), range.start, self.block_bins),
@@ -273,15 +304,19 @@ impl State {
         Ok(sums)
     }
 
-    /// Replaces the sums over `sums.bins()`; the blocks touched are held until saved.
-    pub(super) fn put_sums(&mut self, sums: &Sums) -> Result<(), StateError> {
-        if sums.is_empty() {
-            return Ok(());
-        }
-        for index in self.block_of(sums.first_bin)..=self.block_of(sums.first_bin + sums.len() as i64 - 1) {
-            let mut block = self.block(index)?;
-            block.copy_overlap(sums);
-            self.changed.insert(index, block);
+    /// Replaces block `index` (`sums` holds exactly its bins): written to the staging folder
+    /// if there is one ([`State::stage_in`]), held in memory until saved otherwise.
+    pub(super) fn put_block(&mut self, index: i64, sums: Sums) -> Result<(), StateError> {
+        match &self.staging {
+            Some(dir) => {
+                let path = dir.join("blocks").join(block_name(index, self.generation + 1));
+                write_renamed(&path, |tmp| block_file::write(tmp, &sums))?;
+                self.changed.remove(&index);
+                self.staged.insert(index, sums.covered_bins());
+            }
+            None => {
+                self.changed.insert(index, sums);
+            }
         }
         Ok(())
     }
@@ -315,7 +350,7 @@ impl State {
         let same_folder = |a: &Path| a.canonicalize().ok() == dir.canonicalize().ok();
         // A state saved to another folder takes its unchanged blocks and profiles along.
         if let Some(source) = self.source.clone().filter(|s| !same_folder(s)) {
-            for b in self.blocks.iter().filter(|b| !self.changed.contains_key(&b.index)) {
+            for b in self.blocks.iter().filter(|b| !self.is_changed(b.index)) {
                 let name = block_name(b.index, b.generation);
                 let from = source.join("blocks").join(&name);
                 write_renamed(&blocks_dir.join(&name), |tmp| std::fs::copy(&from, tmp).map(|_| ()).map_err(|e| io(&from, e)))?;
@@ -334,6 +369,15 @@ impl State {
         for (&index, sums) in &self.changed {
             write_renamed(&blocks_dir.join(block_name(index, generation)), |tmp| block_file::write(tmp, sums))?;
             records.insert(index, BlockRecord { index, generation, covered_bins: sums.covered_bins() });
+        }
+        for (&index, &covered_bins) in &self.staged {
+            // Staged in another folder than this one: copied here.
+            if let Some(staging) = self.staging.clone().filter(|s| !same_folder(s)) {
+                let name = block_name(index, generation);
+                let from = staging.join("blocks").join(&name);
+                write_renamed(&blocks_dir.join(&name), |tmp| std::fs::copy(&from, tmp).map(|_| ()).map_err(|e| io(&from, e)))?;
+            }
+            records.insert(index, BlockRecord { index, generation, covered_bins });
         }
         for (&night, profile) in &self.new_profiles {
             write_renamed(&nights_dir.join(night_name(night)), |tmp| profile_file::write(tmp, profile))?;
@@ -358,6 +402,7 @@ impl State {
             return Err(e);
         }
         self.changed.clear();
+        self.staged.clear();
         self.new_profiles.clear();
         self.source = Some(dir.to_path_buf());
         self.candidates.saved(dir);
