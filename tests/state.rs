@@ -595,3 +595,73 @@ fn status_reports_the_limit_range_of_a_calibrated_update() {
     let text = String::from_utf8(text.stdout).unwrap();
     assert!(text.contains(&format!("|g_gamma| / KSVZ {min:.3} to {max:.3} over {} bins", excluded.len())), "{text}");
 }
+
+/// Every per-bin sum of two states over the union of their grids, as bits.
+fn sums_bits(st: &State) -> Vec<Vec<u64>> {
+    let s = whole(st);
+    let wide = |v: &[u32]| v.iter().map(|&x| u64::from(x)).collect::<Vec<u64>>();
+    let signed = |v: &[i32]| v.iter().map(|&x| x as u64).collect::<Vec<u64>>();
+    vec![
+        bits(&s.weight),
+        bits(&s.weighted_sum),
+        wide(&s.coverage),
+        bits(&s.line_weight),
+        bits(&s.line_weighted_sum),
+        wide(&s.line_steps),
+        signed(&s.line_night),
+        signed(&s.line_if_bin),
+        bits(&s.line_if_profile_sigma),
+    ]
+}
+
+/// A night streamed block by block into a state staged in its folder (what `reduce --state`
+/// does: the sums written as they are finished, the top samples set aside until the IF
+/// profile is complete) gives the same bits as the same night reduced whole and then added
+/// (what a shard merge does): sums, IF-line samples, grand spectrum of the span and tracked
+/// candidates, over two nights of 400 steps (two blocks of the night's grid each) with an IF
+/// line on part of the first, into states of 4096-bin blocks (so a night spans about 20 of
+/// them and the night's blocks and the state's are not aligned). Before the save the staged
+/// blocks are in the folder but `state.json` is not; after it, the folder holds exactly the
+/// files `state.json` names.
+#[test]
+fn a_night_streamed_into_a_staged_state_equals_the_night_reduced_whole() {
+    let plan = config::load(PIPELINE, "pipeline.toml").unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let mut sc = null_scenario(61);
+    sc.scan.n_steps = 400;
+    sc.scan.first_cavity_freq_hz = 5.2e9;
+    sc.axion.push(Axion { freq_hz: 5.2021e9, coupling_rel_ksvz: 1.2 });
+    sc.if_burst = BURST_IF_BINS.map(|if_bin| IfBurst { if_bin, power_rel: 0.045, first_step: 60, last_step: 71 }).collect();
+    let first = dir.path().join("first.h5");
+    sim::simulate(&sc, &first).unwrap();
+    let second = night_of_steps(62, 5.2031e9, dir.path(), true, 400);
+    let (streamed_dir, whole_dir) = (dir.path().join("streamed"), dir.path().join("whole"));
+    for (k, n) in [first, second].iter().enumerate() {
+        let load = |d: &Path| State::load(d).unwrap().unwrap_or_else(|| State::with_block_bins(state::plan_hash(&plan), 4096));
+        let (mut streamed, mut whole_st) = (load(&streamed_dir), load(&whole_dir));
+        streamed.stage_in(&streamed_dir).unwrap();
+        let a = state::collecting_span(|out| state::add_night(&mut streamed, &plan, std::slice::from_ref(n), out)).unwrap();
+        let reduced = state::reduce_night(&plan, std::slice::from_ref(n)).unwrap();
+        let b = state::collecting_span(|out| state::add_reduced_night(&mut whole_st, &plan, reduced, out)).unwrap();
+        if k == 0 {
+            assert!(!streamed.nights[0].if_lines.is_empty(), "the first night should show its IF line");
+            assert!(!streamed_dir.join("state.json").exists());
+            assert!(std::fs::read_dir(streamed_dir.join("blocks")).unwrap().count() >= 15, "staged blocks");
+        }
+        assert_eq!(sums_bits(&streamed), sums_bits(&whole_st), "night {k}");
+        let (sa, sb) = (&a.reduction.spectrum, &b.reduction.spectrum);
+        assert!(sa.grand.len() > 65536, "{} bins", sa.grand.len());
+        assert_eq!((bits(&sa.grand), bits(&sa.amplitude), &sa.coverage), (bits(&sb.grand), bits(&sb.amplitude), &sb.coverage), "night {k}");
+        assert_eq!((&sa.candidates, &a.changes), (&sb.candidates, &b.changes), "night {k}");
+        assert_eq!(streamed.candidates.all().unwrap(), whole_st.candidates.all().unwrap(), "night {k}");
+        assert_eq!(streamed.nights, whole_st.nights);
+        streamed.save(&streamed_dir).unwrap();
+        whole_st.save(&whole_dir).unwrap();
+        let named: std::collections::BTreeSet<String> = streamed.blocks.iter().map(|b| format!("b{}-g{}.h5", b.index, b.generation)).collect();
+        let present: std::collections::BTreeSet<String> =
+            std::fs::read_dir(streamed_dir.join("blocks")).unwrap().map(|e| e.unwrap().file_name().to_string_lossy().into_owned()).collect();
+        assert_eq!(named, present, "night {k}");
+    }
+    let interference = State::load(&streamed_dir).unwrap().unwrap().candidates.all().unwrap().iter().filter(|c| c.class == Class::Interference).count();
+    assert!(interference > 0, "the IF line's candidates are interference");
+}
