@@ -619,8 +619,9 @@ fn sums_bits(st: &State) -> Vec<Vec<u64>> {
 /// profile is complete) gives the same bits as the same night reduced whole and then added
 /// (what a shard merge does): sums, IF-line samples, grand spectrum of the span and tracked
 /// candidates, over two nights of 400 steps (two blocks of the night's grid each) with an IF
-/// line on part of the first, into states of 4096-bin blocks (so a night spans about 20 of
-/// them and the night's blocks and the state's are not aligned). Before the save the staged
+/// line on part of the first, into states of 1000-bin blocks (so a night spans about 80 of
+/// them, the night's blocks and the state's are not aligned, and runs above threshold sit
+/// within a line width of tile edges). Before the save the staged
 /// blocks are in the folder but `state.json` is not; after it, the folder holds exactly the
 /// files `state.json` names.
 #[test]
@@ -637,7 +638,7 @@ fn a_night_streamed_into_a_staged_state_equals_the_night_reduced_whole() {
     let second = night_of_steps(62, 5.2031e9, dir.path(), true, 400);
     let (streamed_dir, whole_dir) = (dir.path().join("streamed"), dir.path().join("whole"));
     for (k, n) in [first, second].iter().enumerate() {
-        let load = |d: &Path| State::load(d).unwrap().unwrap_or_else(|| State::with_block_bins(state::plan_hash(&plan), 4096));
+        let load = |d: &Path| State::load(d).unwrap().unwrap_or_else(|| State::with_block_bins(state::plan_hash(&plan), 1000));
         let (mut streamed, mut whole_st) = (load(&streamed_dir), load(&whole_dir));
         streamed.stage_in(&streamed_dir).unwrap();
         let a = state::collecting_span(|out| state::add_night(&mut streamed, &plan, std::slice::from_ref(n), out)).unwrap();
@@ -655,6 +656,19 @@ fn a_night_streamed_into_a_staged_state_equals_the_night_reduced_whole() {
         assert_eq!((&sa.candidates, &a.changes), (&sb.candidates, &b.changes), "night {k}");
         assert_eq!(streamed.candidates.all().unwrap(), whole_st.candidates.all().unwrap(), "night {k}");
         assert_eq!(streamed.nights, whole_st.nights);
+        if k == 1 {
+            // Each earlier candidate the second night re-examined took the highest grand value
+            // within a line width of it, here read from the whole span's values.
+            let bw = sa.bin_width_hz;
+            let reach = (a.match_hz / bw).ceil() as i64;
+            let rechecked: Vec<_> = streamed.candidates.all().unwrap().into_iter().filter(|c| c.first_night == 0 && c.evidence.contains("night 1")).collect();
+            assert!(rechecked.len() >= 3, "{} re-examined", rechecked.len());
+            for c in rechecked {
+                let centre = ((c.frequency_hz + bw / 2.0 - sa.rf_start_hz) / bw).round() as i64;
+                let peak = (centre - reach..=centre + reach).map(|j| sa.grand[j as usize]).filter(|g| g.is_finite()).fold(f64::NEG_INFINITY, f64::max);
+                assert_eq!(c.significance.to_bits(), peak.to_bits(), "{c:?}");
+            }
+        }
         streamed.save(&streamed_dir).unwrap();
         whole_st.save(&whole_dir).unwrap();
         let named: std::collections::BTreeSet<String> = streamed.blocks.iter().map(|b| format!("b{}-g{}.h5", b.index, b.generation)).collect();

@@ -69,15 +69,10 @@ fn reduce_blocks<J: Send>(
         &mut buffers,
         |chunk, fresh| run_stages(&step_stages, chunk, fresh, &night, &mut cuts, &mut no_data, paths),
         |kept, through| {
-            let (combined, ()) = rayon::join(
-                || combiner.add_all(kept).map_err(ReduceError::Night),
-                || {
-                    if let Some(p) = profile.as_mut() {
-                        p.add_all(kept);
-                    }
-                },
-            );
-            combined?;
+            match profile.as_mut() {
+                Some(p) => rayon::join(|| combiner.add_all(kept).map_err(ReduceError::Night), || p.add_all(kept)).0?,
+                None => combiner.add_all(kept).map_err(ReduceError::Night)?,
+            }
             used_steps.extend(kept.iter().map(|step| (step.index, step.meta)));
             let mut jobs = Vec::new();
             complete = finisher

@@ -240,8 +240,9 @@ impl<'a> Tiler<'a> {
             }
             for j in (0..n).filter(|&j| Self::above(&pair, j, threshold)) {
                 let p = o + j;
-                marks.push(p.saturating_sub(reach)..(p + reach + 1).min(span_len));
-                keep_until = keep_until.max(p + reach + 1);
+                // The part in the next tile is kept when it comes.
+                marks.push(p.saturating_sub(reach)..(p + reach + 1).min(o + n));
+                keep_until = keep_until.max((p + reach + 1).min(span_len));
             }
             for &c in &tracked {
                 let (a, b) = (c.saturating_sub(reach).max(o), (c + reach + 1).min(o + n));
