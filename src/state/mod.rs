@@ -38,7 +38,9 @@
 //!
 //! An update writes the blocks of the sums and of the candidates it changed under its new
 //! generation and the new night's IF profile (each under a temporary name, renamed into
-//! place), then a new `state.json`; the rename of `state.json` is the commit, after which the
+//! place; the blocks of the sums as soon as the night is through them when the state is
+//! staged in its folder, [`State::stage_in`], so that memory is bounded whatever the night's
+//! RF span), then a new `state.json`; the rename of `state.json` is the commit, after which the
 //! files it no longer names are removed. A run killed at any point leaves the previous `state.json` and the files it names
 //! untouched.
 //!
