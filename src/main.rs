@@ -440,41 +440,36 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
         pipeline::ReduceError::Night(_) => Failure::Run(e.into()),
     };
     let bar = progress::Bar::new(quiet, "reducing", "steps");
-    let Some(calibration) = calibration else {
-        // Without limits to compute, the outputs are written block by block as the RF grid
-        // is finished: memory stays bounded by the steps in flight, whatever the night's span.
-        let mut outputs = output::BlockOutputs::new(out)?;
-        let mut results = outputs.results_sink();
-        let (reduction, provenance) = with_provenance(config_text, runs, || {
-            pipeline::reduce_streamed(
-                &plan,
-                runs,
-                &|done, total| bar.update(done, total),
-                &mut |block| Ok(Some(outputs.take(&output::Bins::of_block(block)))),
-                &mut |values| results.write(values).map_err(|e| e.to_string()),
-            )
-            .map_err(failure)
-        })?;
-        bar.finish();
-        warn_no_data(&reduction);
-        let (written, stats) = outputs.finish(&reduction, results, config_text, &provenance, None)?;
-        if !quiet {
-            let summary = reduction.summary_with(&stats, &provenance, None, None);
-            print!("{}", output::console::night_report(&reduction, &summary, None, &written));
+    // The outputs are written block by block as the RF grid is finished, the limits too (a
+    // bin's limit needs only its own values in a single night): memory stays bounded by the
+    // steps in flight, whatever the night's span.
+    let mut outputs = match &calibration {
+        None => output::BlockOutputs::new(out)?,
+        Some(cal) => {
+            if !plan.stages.iter().any(|s| s.entry.kind == "flag") {
+                return Err(Failure::BadInput(anyhow::anyhow!("{config_name}: limits need a flag stage (its threshold)")));
+            }
+            let basis = axsift::limits::LimitBasis::new(&plan, cal, axsift::limits::DEFAULT_CONFIDENCE).map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
+            output::BlockOutputs::calibrated(out, basis)?
         }
-        return Ok(());
     };
-    let (reduction, provenance) =
-        with_provenance(config_text, runs, || pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(failure))?;
+    let mut results = outputs.results_sink();
+    let (reduction, provenance) = with_provenance(config_text, runs, || {
+        pipeline::reduce_streamed(
+            &plan,
+            runs,
+            &|done, total| bar.update(done, total),
+            &mut |block| outputs.take(&output::Bins::of_block(block)).map(Some).map_err(|e| format!("{e:#}")),
+            &mut |values| results.write(values).map_err(|e| e.to_string()),
+        )
+        .map_err(failure)
+    })?;
     bar.finish();
     warn_no_data(&reduction);
-    let limits = axsift::limits::for_reduction(&plan, &reduction.spectrum, &calibration, axsift::limits::DEFAULT_CONFIDENCE)
-        .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
-    let calibrated = Some((&calibration, &limits));
-    let written = reduction.write(out, config_text, &provenance, calibrated)?;
+    let done = outputs.finish(&reduction, results, config_text, &provenance, calibration.as_ref())?;
     if !quiet {
-        let summary = reduction.summary(&provenance, Some(&calibration), Some(&limits));
-        print!("{}", output::console::night_report(&reduction, &summary, calibrated, &written));
+        let summary = reduction.summary_with(&done.stats, &provenance, calibration.as_ref(), done.limits);
+        print!("{}", output::console::night_report_for(&reduction, &summary, calibration.as_ref().map(|c| (c, &done.peaks)), &done.written));
     }
     Ok(())
 }

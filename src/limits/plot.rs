@@ -8,29 +8,62 @@ use std::path::Path;
 const WIDTH: u32 = 1000;
 const HEIGHT: u32 = 560;
 
-/// Draws `points` (mass in micro-eV, |g_agg| limit in GeV^-1; NaN = not excluded) into a PNG
-/// and an SVG. Many points are reduced to the largest (most conservative) limit per pixel
-/// column.
-pub fn exclusion_plot(points: &[(f64, f64)], title: &str, png: &Path, svg: &Path) -> anyhow::Result<()> {
+/// Draws the exclusion curve of `columns` into a PNG and an SVG.
+pub fn exclusion_plot(columns: &ExclusionColumns, title: &str, png: &Path, svg: &Path) -> anyhow::Result<()> {
     crate::fonts::register_fonts()?;
-    let columns = reduce_columns(points, WIDTH as usize);
+    let columns = columns.envelope();
     draw(&columns, title, BitMapBackend::new(png, (WIDTH, HEIGHT)).into_drawing_area())?;
     draw(&columns, title, SVGBackend::new(svg, (WIDTH, HEIGHT)).into_drawing_area())?;
     Ok(())
 }
 
-/// Per pixel column, the largest limit; a column holding any bin that is not excluded
-/// becomes a gap, so candidates awaiting a rescan stay visible.
-fn reduce_columns(points: &[(f64, f64)], columns: usize) -> Vec<(f64, Option<f64>)> {
-    let per = points.len().div_ceil(columns.max(1)).max(1);
-    points
-        .chunks(per)
-        .map(|c| {
-            let all_excluded = c.iter().all(|p| p.1.is_finite());
-            let worst = c.iter().map(|p| p.1.abs()).reduce(f64::max).filter(|_| all_excluded);
-            (c[c.len() / 2].0, worst)
-        })
-        .collect()
+/// The curve reduced to one value per pixel column, gathered point by point in order
+/// (mass in micro-eV, |g_agg| limit in GeV^-1; NaN = not excluded): points `c * per ..
+/// (c + 1) * per` fall in column c, which keeps the largest (most conservative) limit and
+/// the mass of its middle point; a column holding any point that is not excluded becomes a
+/// gap, so candidates awaiting a rescan stay visible. Memory: three numbers per column,
+/// whatever the number of points.
+#[derive(Debug, Clone)]
+pub struct ExclusionColumns {
+    n_points: usize,
+    per: usize,
+    mass_uev: Vec<f64>,
+    worst: Vec<f64>,
+    gap: Vec<bool>,
+}
+
+impl ExclusionColumns {
+    /// Empty columns for a curve of `n_points` points.
+    pub fn new(n_points: usize) -> Self {
+        let per = n_points.div_ceil(WIDTH as usize).max(1);
+        let columns = n_points.div_ceil(per);
+        Self { n_points, per, mass_uev: vec![f64::NAN; columns], worst: vec![f64::NEG_INFINITY; columns], gap: vec![false; columns] }
+    }
+
+    /// The columns of a whole curve.
+    pub fn of_points(points: &[(f64, f64)]) -> Self {
+        let mut columns = Self::new(points.len());
+        columns.add(0, points.iter().copied());
+        columns
+    }
+
+    /// Takes in consecutive points, the first being point `first` of the curve.
+    pub fn add(&mut self, first: usize, points: impl IntoIterator<Item = (f64, f64)>) {
+        for (i, (mass_uev, g)) in (first..self.n_points).zip(points) {
+            let c = i / self.per;
+            let in_column = self.per.min(self.n_points - c * self.per);
+            if i - c * self.per == in_column / 2 {
+                self.mass_uev[c] = mass_uev;
+            }
+            self.worst[c] = self.worst[c].max(g.abs());
+            self.gap[c] |= !g.is_finite();
+        }
+    }
+
+    /// Per column, (mass of its middle point, largest limit or None for a gap).
+    fn envelope(&self) -> Vec<(f64, Option<f64>)> {
+        (0..self.mass_uev.len()).map(|c| (self.mass_uev[c], (!self.gap[c]).then_some(self.worst[c]))).collect()
+    }
 }
 
 fn draw<DB: DrawingBackend>(columns: &[(f64, Option<f64>)], title: &str, area: DrawingArea<DB, plotters::coord::Shift>) -> anyhow::Result<()>
