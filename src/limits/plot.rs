@@ -19,25 +19,34 @@ pub fn exclusion_plot(columns: &ExclusionColumns, title: &str, png: &Path, svg: 
 
 /// The curve reduced to one value per pixel column, gathered point by point in order
 /// (mass in micro-eV, |g_agg| limit in GeV^-1; NaN = not excluded): points `c * per ..
-/// (c + 1) * per` fall in column c, which keeps the largest (most conservative) limit and
-/// the mass of its middle point; a column holding any point that is not excluded becomes a
-/// gap, so candidates awaiting a rescan stay visible. Memory: three numbers per column,
-/// whatever the number of points.
+/// (c + 1) * per` fall in column c, which keeps the largest (most conservative) limit over
+/// its excluded points, the mass of its middle point, and whether it holds a point that is
+/// not excluded. The curve runs through the columns with an excluded point (a gap where a
+/// column has none); columns holding points not excluded (candidates awaiting a rescan, bins
+/// without data) are marked along the bottom, so they stay visible even where, as on a wide
+/// night, nearly every column holds one. Memory: four numbers per column, whatever the
+/// number of points.
 #[derive(Debug, Clone)]
 pub struct ExclusionColumns {
     n_points: usize,
     per: usize,
     mass_uev: Vec<f64>,
+    /// Largest excluded limit (-inf: none yet).
     worst: Vec<f64>,
-    gap: Vec<bool>,
+    /// Holds a point not excluded.
+    open: Vec<bool>,
 }
+
+/// One column to draw: mass of its middle point, largest excluded limit (None: no excluded
+/// point), whether it holds a point not excluded.
+type Column = (f64, Option<f64>, bool);
 
 impl ExclusionColumns {
     /// Empty columns for a curve of `n_points` points.
     pub fn new(n_points: usize) -> Self {
         let per = n_points.div_ceil(WIDTH as usize).max(1);
         let columns = n_points.div_ceil(per);
-        Self { n_points, per, mass_uev: vec![f64::NAN; columns], worst: vec![f64::NEG_INFINITY; columns], gap: vec![false; columns] }
+        Self { n_points, per, mass_uev: vec![f64::NAN; columns], worst: vec![f64::NEG_INFINITY; columns], open: vec![false; columns] }
     }
 
     /// The columns of a whole curve.
@@ -55,18 +64,18 @@ impl ExclusionColumns {
             if i - c * self.per == in_column / 2 {
                 self.mass_uev[c] = mass_uev;
             }
-            self.worst[c] = self.worst[c].max(g.abs());
-            self.gap[c] |= !g.is_finite();
+            let excluded = g.is_finite();
+            self.worst[c] = if excluded { self.worst[c].max(g.abs()) } else { self.worst[c] };
+            self.open[c] |= !excluded;
         }
     }
 
-    /// Per column, (mass of its middle point, largest limit or None for a gap).
-    fn envelope(&self) -> Vec<(f64, Option<f64>)> {
-        (0..self.mass_uev.len()).map(|c| (self.mass_uev[c], (!self.gap[c]).then_some(self.worst[c]))).collect()
+    fn envelope(&self) -> Vec<Column> {
+        (0..self.mass_uev.len()).map(|c| (self.mass_uev[c], Some(self.worst[c]).filter(|w| w.is_finite()), self.open[c])).collect()
     }
 }
 
-fn draw<DB: DrawingBackend>(columns: &[(f64, Option<f64>)], title: &str, area: DrawingArea<DB, plotters::coord::Shift>) -> anyhow::Result<()>
+fn draw<DB: DrawingBackend>(columns: &[Column], title: &str, area: DrawingArea<DB, plotters::coord::Shift>) -> anyhow::Result<()>
 where
     DB::ErrorType: 'static,
 {
@@ -95,7 +104,7 @@ where
         .map_err(|e| err(&e))?;
     let mut segment = Vec::new();
     let mut segments = Vec::new();
-    for &(m, g) in columns {
+    for &(m, g, _) in columns {
         match g {
             Some(g) => segment.push((m, g)),
             None if !segment.is_empty() => segments.push(std::mem::take(&mut segment)),
@@ -106,8 +115,18 @@ where
     for (i, s) in segments.into_iter().filter(|s| !s.is_empty()).enumerate() {
         let series = chart.draw_series(LineSeries::new(s, BLUE.stroke_width(2))).map_err(|e| err(&e))?;
         if i == 0 {
-            series.label("excluded above this line (gaps: not excluded)").legend(|(x, y)| PathElement::new([(x, y), (x + 20, y)], BLUE));
+            series.label("excluded above this line (worst bin per column)").legend(|(x, y)| PathElement::new([(x, y), (x + 20, y)], BLUE));
         }
+    }
+    // A short stroke at the bottom of each column holding bins not excluded.
+    let tick_top = y_lo * (y_hi / y_lo).powf(0.03);
+    let open: Vec<f64> = columns.iter().filter(|c| c.2).map(|c| c.0).collect();
+    if !open.is_empty() {
+        chart
+            .draw_series(open.iter().map(|&m| PathElement::new([(m, y_lo), (m, tick_top)], MAGENTA.stroke_width(1))))
+            .map_err(|e| err(&e))?
+            .label("column holds bins not excluded (candidates, no data)")
+            .legend(|(x, y)| PathElement::new([(x + 10, y - 5), (x + 10, y + 5)], MAGENTA));
     }
     for (name, colour, f) in [("KSVZ", RED, &ksvz as &dyn Fn(f64) -> f64), ("DFSZ", GREEN, &dfsz)] {
         chart
