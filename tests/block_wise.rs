@@ -262,19 +262,11 @@ fn block_wise_night_is_bit_identical_across_thread_counts() {
 /// injection realisations of a 60-step demo night: enough for an eta), written to
 /// `dir/calib/calibration.json`.
 fn small_calibration(dir: &Path) -> (axsift::calib::Calibration, PathBuf) {
-    use axsift::calib::{self, CampaignSpec, NoiseSource};
+    use axsift::calib::{self, NoiseSource};
     let plan = config::load(PIPELINE, "pipeline.toml").expect("pipeline loads");
     let mut small = null_scenario(61);
     small.scan.n_steps = 60;
-    let spec = CampaignSpec {
-        seed: 9,
-        null_realisations: 1,
-        eta_realisations: 3,
-        eta_snr: 20.0,
-        snr_grid: vec![],
-        realisations_per_snr: 0,
-        max_injections_per_realisation: 40,
-    };
+    let spec = common::eta_campaign(9);
     let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &small, scratch: dir }, &spec, &|_, _| {}).expect("campaign runs");
     let cal_dir = dir.join("calib");
     cal.write(&cal_dir).expect("calibration writes");
@@ -295,6 +287,9 @@ fn reduce_calibrated(night: &Path, calibration: &Path, out: &Path, threads: usiz
         .unwrap();
     assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
 }
+
+/// One per-bin limit quantity, as stored in results.h5.
+type LimitOf = fn(&axsift::limits::BinLimit) -> f64;
 
 fn csv_rows(path: &Path) -> Vec<Vec<String>> {
     let mut reader = csv::Reader::from_path(path).unwrap();
@@ -322,7 +317,7 @@ fn calibrated_block_wise_outputs_equal_the_in_memory_limits() {
     let night = simulate(dir.path());
     let (cal, cal_path) = small_calibration(dir.path());
     let plan = config::load(PIPELINE, "pipeline.toml").expect("pipeline loads");
-    let mem = pipeline::reduce(&plan, &[night.clone()], &|_, _| {}).expect("in-memory reduction");
+    let mem = pipeline::reduce(&plan, std::slice::from_ref(&night), &|_, _| {}).expect("in-memory reduction");
     let limits = axsift::limits::for_reduction(&plan, &mem.spectrum, &cal, axsift::limits::DEFAULT_CONFIDENCE).expect("limits");
     let n = mem.spectrum.grand.len();
     assert!(mem.spectrum.candidates.iter().filter(|c| crosses_a_block_edge(c)).count() >= 2, "blocked runs cross block edges");
@@ -332,7 +327,7 @@ fn calibrated_block_wise_outputs_equal_the_in_memory_limits() {
     let file = hdf5::File::open(out.join("results.h5")).unwrap();
     let mass: Vec<f64> = file.dataset("mass_uev").unwrap().read_raw().unwrap();
     assert_eq!(bits(&mass), bits(&limits.bins.iter().map(|b| b.mass_uev).collect::<Vec<_>>()), "mass_uev");
-    let columns: [(&str, fn(&axsift::limits::BinLimit) -> f64); 4] = [
+    let columns: [(&str, LimitOf); 4] = [
         ("limit_g_gamma", |b| b.g_gamma),
         ("limit_g_agg_per_gev", |b| b.g_agg_per_gev.abs()),
         ("limit_rel_ksvz", |b| b.rel_ksvz),
