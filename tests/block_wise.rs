@@ -427,3 +427,34 @@ fn calibrated_block_wise_outputs_are_bit_identical_across_thread_counts() {
         assert!(bits(&x) == bits(&y), "results.h5 {name} differs between 1 and 2 threads");
     }
 }
+
+/// A grid above the documented size of `limits.csv` (`output::LIMITS_CSV_MAX_BINS`, 2^20
+/// bins; README "Outputs"): the night's steps spread 3600 bins apart give 1 080 496 bins.
+/// `reduce --calibration` writes no `limits.csv` and removes one an earlier reduction left in
+/// the folder (it would not describe this one), while `results.h5` holds every bin's limit
+/// and `limit_blocks.csv` one row per MHz of the grid.
+#[test]
+fn a_large_grid_has_its_per_bin_limits_in_results_h5_only() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut sc = scenario();
+    sc.scan.step_bins = 3600;
+    sc.axion.clear();
+    let night = dir.path().join("wide.h5");
+    sim::simulate(&sc, &night).expect("simulation writes");
+    let n = (N_STEPS - 1) * 3600 + N_BINS;
+    assert!(n > axsift::output::LIMITS_CSV_MAX_BINS, "{n} bins");
+    let (_, cal_path) = small_calibration(dir.path());
+    let out = dir.path().join("out");
+    std::fs::create_dir_all(&out).unwrap();
+    std::fs::write(out.join("limits.csv"), "left by an earlier reduction\n").unwrap();
+    reduce_calibrated(&night, &cal_path, &out, 2);
+    assert!(!out.join("limits.csv").exists(), "limits.csv of a grid above the size");
+    let file = hdf5::File::open(out.join("results.h5")).unwrap();
+    let limit: Vec<f32> = file.dataset("limit_g_gamma").unwrap().read_raw().unwrap();
+    assert_eq!(limit.len(), n);
+    assert!(limit.iter().filter(|v| v.is_finite()).count() > n / 2, "most bins excluded");
+    let width_hz = sc.scan.bin_width_hz * n as f64;
+    assert_eq!(csv_rows(&out.join("limit_blocks.csv")).len(), (width_hz / axsift::output::LIMIT_BLOCK_HZ).ceil() as usize, "one row per MHz");
+    let leftovers: Vec<_> = std::fs::read_dir(&out).unwrap().map(|e| e.unwrap().file_name()).filter(|n| n.to_string_lossy().starts_with(".tmp")).collect();
+    assert!(leftovers.is_empty(), "temporary files left: {leftovers:?}");
+}

@@ -15,7 +15,7 @@ use super::{LIMIT_BLOCK_HZ, LimitRange, staged};
 use crate::limits::{BIN_CSV_HEADER, BLOCK_CSV_HEADER, BinLimit, BlockSummariser, ExclusionColumns, LimitAssumptions, LimitBlock};
 use anyhow::Context;
 use std::fs::File;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 /// Largest grid whose per-bin limits are also written as text, `limits.csv` (about 71 bytes
 /// a row: 75 MB at this size, 1.4 GB for the 19.7 M bins of the wide night). Larger grids
@@ -29,9 +29,13 @@ pub(super) const LIMIT_BLOCKS_CSV: &str = "limit_blocks.csv";
 /// Name of the temporary file of excluded values.
 const SPILL: &str = "limit_values.bin";
 
-/// The limit outputs being written.
+/// The limit outputs being written. Dropped before [`LimitOutputs::finish`] (a failed run),
+/// their temporary files are removed.
 pub(super) struct LimitOutputs {
     pub assumptions: LimitAssumptions,
+    dir: PathBuf,
+    /// Set by a completed [`LimitOutputs::finish`]: the tables stay for the rename.
+    finished: bool,
     n_bins: usize,
     /// Bins taken in so far.
     seen: usize,
@@ -62,6 +66,8 @@ impl LimitOutputs {
         let excluded = SpilledValues::create(&staged(dir, SPILL)).context("creating the temporary file of excluded limits")?;
         Ok(Self {
             assumptions,
+            dir: dir.to_path_buf(),
+            finished: false,
             n_bins,
             seen: 0,
             table,
@@ -128,6 +134,17 @@ impl LimitOutputs {
             worst_rel_ksvz: self.worst.unwrap_or(f64::NAN),
             assumptions: self.assumptions.clone(),
         };
-        Ok((range, self.columns))
+        self.finished = true;
+        Ok((range, std::mem::replace(&mut self.columns, ExclusionColumns::new(0))))
+    }
+}
+
+impl Drop for LimitOutputs {
+    fn drop(&mut self) {
+        if !self.finished {
+            for name in [LIMITS_CSV, LIMIT_BLOCKS_CSV] {
+                let _ = std::fs::remove_file(staged(&self.dir, name));
+            }
+        }
     }
 }
