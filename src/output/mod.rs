@@ -257,9 +257,9 @@ impl Reduction {
         }
     }
 
-    /// Writes all outputs of this in-memory reduction into `dir` (created if needed).
-    /// Returns the written paths.
-    /// With a calibration, `calibrated` gives it and the limits of every bin.
+    /// Writes all outputs of this in-memory reduction into `dir` (created if needed); with a
+    /// calibration, `calibrated` gives it and the limits of every bin. Returns the written
+    /// paths.
     pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance, calibrated: Option<(&Calibration, &Limits)>) -> anyhow::Result<Vec<PathBuf>> {
         let mut outputs = BlockOutputs::new(dir)?;
         let mut results = outputs.results_sink();
@@ -270,6 +270,7 @@ impl Reduction {
             };
             results.write(block)?;
         }
+        outputs.peaks = PeakValues::of_spectrum(&self.spectrum);
         outputs.finish(self, results, config_text, provenance, calibrated.map(|c| c.0)).map(|done| done.written)
     }
 }
@@ -293,7 +294,8 @@ pub struct BlockOutputs {
     basis: Option<LimitBasis>,
     /// With a calibration, the limit outputs, made with the first run of bins.
     limits: Option<LimitOutputs>,
-    /// With a calibration, the values at bins above the threshold.
+    /// With a calibration, the values the candidates' implied couplings need (kept at every
+    /// bin above the threshold by [`BlockOutputs::take`]).
     peaks: PeakValues,
 }
 
@@ -366,7 +368,9 @@ impl BlockOutputs {
             bins.predicted_spread,
             bins.grand,
         );
-        self.take_with(bins, assumptions, &limits)
+        let block = self.take_with(bins, assumptions, &limits)?;
+        self.peaks.keep_above(bins);
+        Ok(block)
     }
 
     /// Takes in one run of bins as [`BlockOutputs::take`] does, with the limits of a whole
@@ -389,7 +393,6 @@ impl BlockOutputs {
             None => self.limits.insert(LimitOutputs::open(&self.dir, assumptions, bins.grid_bins)?),
         };
         open.add(bins.first_bin, limits)?;
-        self.peaks.keep_above(bins);
         Ok(ResultBlock::of(bins).with_limits(limits))
     }
 
