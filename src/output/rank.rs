@@ -9,7 +9,7 @@
 //! bucket holds at most [`GATHER_VALUES`] values, which are gathered and selected in memory
 //! (or all 64 bits are fixed). The value found is the one a full sort by `total_cmp` puts
 //! at that rank, bit for bit. Memory: a histogram of 65 536 counts and at most
-//! [`GATHER_VALUES`] values; passes over the file: at most four.
+//! [`GATHER_VALUES`] values; reads of the file: at most three.
 
 use std::fs::File;
 use std::io::{BufReader, BufWriter, Read, Write};
