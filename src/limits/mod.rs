@@ -274,16 +274,21 @@ impl BlockSummariser {
         if self.n_bins == 0 {
             return;
         }
-        self.rel.sort_by(f64::total_cmp);
-        self.gagg.sort_by(f64::total_cmp);
-        let median = |v: &[f64]| v.get(v.len() / 2).copied().unwrap_or(f64::NAN);
+        // The element of index len / 2 in ascending `total_cmp` order (the upper median), by
+        // selection: values equal in that order have the same bits, so it is the element a
+        // sort puts there.
+        let median = |v: &mut [f64]| {
+            let half = v.len() / 2;
+            if v.is_empty() { f64::NAN } else { *v.select_nth_unstable_by(half, f64::total_cmp).1 }
+        };
+        let best = self.rel.iter().copied().min_by(f64::total_cmp).unwrap_or(f64::NAN);
         out.push(LimitBlock {
             start_hz: start,
             stop_hz: start + self.block_hz,
             excluded_fraction: self.rel.len() as f64 / self.n_bins as f64,
-            median_rel_ksvz: median(&self.rel),
-            best_rel_ksvz: self.rel.first().copied().unwrap_or(f64::NAN),
-            median_g_agg_per_gev: median(&self.gagg),
+            median_rel_ksvz: median(&mut self.rel),
+            best_rel_ksvz: best,
+            median_g_agg_per_gev: median(&mut self.gagg),
         });
         self.n_bins = 0;
         self.rel.clear();

@@ -82,13 +82,16 @@ impl ResultBlock {
 
     /// Adds the limits of the same bins (`limits[i]` of bin `first_bin + i`).
     pub fn with_limits(mut self, limits: &[BinLimit]) -> Self {
-        let narrowed = [
-            limits.iter().map(|b| b.g_gamma as f32).collect(),
-            limits.iter().map(|b| b.g_agg_per_gev.abs() as f32).collect(),
-            limits.iter().map(|b| b.rel_ksvz as f32).collect(),
-            limits.iter().map(|b| b.rel_dfsz as f32).collect(),
-        ];
-        self.limits = Some(LimitColumns { mass_uev: limits.iter().map(|b| b.mass_uev).collect(), narrowed });
+        let mut mass_uev = Vec::with_capacity(limits.len());
+        let mut narrowed: [Vec<f32>; 4] = std::array::from_fn(|_| Vec::with_capacity(limits.len()));
+        // One pass over the limits, each value rounded to the nearest single-precision value.
+        for b in limits {
+            mass_uev.push(b.mass_uev);
+            for (column, v) in narrowed.iter_mut().zip([b.g_gamma, b.g_agg_per_gev.abs(), b.rel_ksvz, b.rel_dfsz]) {
+                column.push(v as f32);
+            }
+        }
+        self.limits = Some(LimitColumns { mass_uev, narrowed });
         self
     }
 }
