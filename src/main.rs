@@ -440,41 +440,36 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
         pipeline::ReduceError::Night(_) => Failure::Run(e.into()),
     };
     let bar = progress::Bar::new(quiet, "reducing", "steps");
-    let Some(calibration) = calibration else {
-        // Without limits to compute, the outputs are written block by block as the RF grid
-        // is finished: memory stays bounded by the steps in flight, whatever the night's span.
-        let mut outputs = output::BlockOutputs::new(out)?;
-        let mut results = outputs.results_sink();
-        let (reduction, provenance) = with_provenance(config_text, runs, || {
-            pipeline::reduce_streamed(
-                &plan,
-                runs,
-                &|done, total| bar.update(done, total),
-                &mut |block| Ok(Some(outputs.take(&output::Bins::of_block(block)))),
-                &mut |values| results.write(values).map_err(|e| e.to_string()),
-            )
-            .map_err(failure)
-        })?;
-        bar.finish();
-        warn_no_data(&reduction);
-        let (written, stats) = outputs.finish(&reduction, results, config_text, &provenance, None)?;
-        if !quiet {
-            let summary = reduction.summary_with(&stats, &provenance, None, None);
-            print!("{}", output::console::night_report(&reduction, &summary, None, &written));
+    // The outputs are written block by block as the RF grid is finished, the limits too (a
+    // bin's limit needs only its own values in a single night): memory stays bounded by the
+    // steps in flight, whatever the night's span.
+    let mut outputs = match &calibration {
+        None => output::BlockOutputs::new(out)?,
+        Some(cal) => {
+            if !plan.stages.iter().any(|s| s.entry.kind == "flag") {
+                return Err(Failure::BadInput(anyhow::anyhow!("{config_name}: limits need a flag stage (its threshold)")));
+            }
+            let basis = axsift::limits::LimitBasis::new(&plan, cal, axsift::limits::DEFAULT_CONFIDENCE).map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
+            output::BlockOutputs::calibrated(out, basis)?
         }
-        return Ok(());
     };
-    let (reduction, provenance) =
-        with_provenance(config_text, runs, || pipeline::reduce(&plan, runs, &|done, total| bar.update(done, total)).map_err(failure))?;
+    let mut results = outputs.results_sink();
+    let (reduction, provenance) = with_provenance(config_text, runs, || {
+        pipeline::reduce_streamed(
+            &plan,
+            runs,
+            &|done, total| bar.update(done, total),
+            &mut |block| outputs.take(&output::Bins::of_block(block)).map(Some).map_err(|e| format!("{e:#}")),
+            &mut |values| results.write(values).map_err(|e| e.to_string()),
+        )
+        .map_err(failure)
+    })?;
     bar.finish();
     warn_no_data(&reduction);
-    let limits = axsift::limits::for_reduction(&plan, &reduction.spectrum, &calibration, axsift::limits::DEFAULT_CONFIDENCE)
-        .map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
-    let calibrated = Some((&calibration, &limits));
-    let written = reduction.write(out, config_text, &provenance, calibrated)?;
+    let done = outputs.finish(&reduction, results, config_text, &provenance, calibration.as_ref())?;
     if !quiet {
-        let summary = reduction.summary(&provenance, Some(&calibration), Some(&limits));
-        print!("{}", output::console::night_report(&reduction, &summary, calibrated, &written));
+        let summary = reduction.summary_with(&done.stats, &provenance, calibration.as_ref(), done.limits);
+        print!("{}", output::console::night_report_for(&reduction, &summary, calibration.as_ref().map(|c| (c, &done.peaks)), &done.written));
     }
     Ok(())
 }
@@ -515,46 +510,48 @@ fn reduce_into_state(
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),
     };
     st.stage_in(state_dir).map_err(|e| Failure::Run(e.into()))?;
-    let Some(calibration) = calibration else {
-        // Without limits to compute, the recomputed span is written tile by tile as it is made.
-        let mut outputs = output::BlockOutputs::new(out)?;
-        let mut results = outputs.results_sink();
-        let mut write_failure = None;
-        let added = axsift::state::add_night(&mut st, &plan, runs, &mut |block| {
-            results.write(outputs.take(&output::Bins::of_block(block))).map_err(|e| {
-                let message = format!("writing results.h5: {e}");
-                write_failure = Some(message.clone());
-                message
-            })
-        });
-        let update = match (added, write_failure) {
-            (Err(_), Some(message)) => return Err(Failure::Run(anyhow::anyhow!(message))),
-            (added, _) => added.map_err(|e| bad(e.to_string()))?,
-        };
-        warn_no_data(&update.reduction);
-        // Adding the night hashed its files; the state holds those hashes.
-        let provenance = output::Provenance::of_hashed(config_text, st.nights[update.night].inputs());
-        let (written, stats) = outputs.finish(&update.reduction, results, config_text, &provenance, None)?;
-        st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
-        if !quiet {
-            let summary = update.reduction.summary_with(&stats, &provenance, None, None);
-            print!("{}", output::console::night_report(&update.reduction, &summary, None, &written));
-            print!("{}", output::console::state_report(&st, &update.changes).map_err(|e| Failure::BadInput(e.into()))?);
-        }
-        return Ok(());
+    // The recomputed span is written tile by tile as it is made, its limits too (in the
+    // outputs every candidate of the span blocks its bins, so a bin's limit needs only its
+    // own values); the limit range the state records is tallied on the way.
+    let basis = calibration.as_ref().map(|cal| axsift::limits::LimitBasis::new(&plan, cal, axsift::limits::DEFAULT_CONFIDENCE)).transpose().map_err(bad)?;
+    if basis.is_some() && !plan.stages.iter().any(|s| s.entry.kind == "flag") {
+        return Err(bad(format!("{config_name}: limits need a flag stage (its threshold)")));
+    }
+    let mut tally = basis.clone().map(axsift::state::LimitTally::new);
+    let mut outputs = match basis {
+        None => output::BlockOutputs::new(out)?,
+        Some(basis) => output::BlockOutputs::calibrated(out, basis)?,
     };
-    // The limits need the span's per-bin values together: the span is collected in memory.
-    let update = axsift::state::collecting_span(|out| axsift::state::add_night(&mut st, &plan, runs, out)).map_err(|e| bad(e.to_string()))?;
+    let mut results = outputs.results_sink();
+    let mut write_failure = None;
+    let added = axsift::state::add_night(&mut st, &plan, runs, &mut |block| {
+        let bins = output::Bins::of_block(block);
+        if let Some(tally) = tally.as_mut() {
+            tally.add(&bins)?;
+        }
+        let written = outputs.take(&bins).and_then(|values| Ok(results.write(values)?));
+        written.map_err(|e| {
+            let message = format!("writing the outputs: {e:#}");
+            write_failure = Some(message.clone());
+            message
+        })
+    });
+    let update = match (added, write_failure) {
+        (Err(_), Some(message)) => return Err(Failure::Run(anyhow::anyhow!(message))),
+        (added, _) => added.map_err(|e| bad(e.to_string()))?,
+    };
     warn_no_data(&update.reduction);
+    // Adding the night hashed its files; the state holds those hashes.
     let provenance = output::Provenance::of_hashed(config_text, st.nights[update.night].inputs());
-    let limits = axsift::limits::for_reduction(&plan, &update.reduction.spectrum, &calibration, axsift::limits::DEFAULT_CONFIDENCE).map_err(bad)?;
-    let calibrated = Some((&calibration, &limits));
-    let written = update.reduction.write(out, config_text, &provenance, calibrated)?;
-    st.record_limit(&limits, &update.reduction.spectrum, update.match_hz).map_err(|e| Failure::BadInput(e.into()))?;
+    let done = outputs.finish(&update.reduction, results, config_text, &provenance, calibration.as_ref())?;
+    if let Some(tally) = &tally {
+        let span = &update.reduction.spectrum;
+        st.record_limit_tally(tally, &span.candidates, span.rf_start_hz, update.match_hz).map_err(|e| Failure::BadInput(e.into()))?;
+    }
     st.save(state_dir).map_err(|e| Failure::Run(e.into()))?;
     if !quiet {
-        let summary = update.reduction.summary(&provenance, Some(&calibration), Some(&limits));
-        print!("{}", output::console::night_report(&update.reduction, &summary, calibrated, &written));
+        let summary = update.reduction.summary_with(&done.stats, &provenance, calibration.as_ref(), done.limits);
+        print!("{}", output::console::night_report_for(&update.reduction, &summary, calibration.as_ref().map(|c| (c, &done.peaks)), &done.written));
         print!("{}", output::console::state_report(&st, &update.changes).map_err(|e| Failure::BadInput(e.into()))?);
     }
     Ok(())

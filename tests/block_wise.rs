@@ -1,7 +1,8 @@
 //! The block-wise night reduction (`pipeline::reduce_streamed`, what `axsift reduce` runs
-//! without --state or --calibration) against the in-memory one (`pipeline::reduce`, which
-//! `tests/reduction.rs` checks against the unit normal and a direct Monte Carlo), and the
-//! single-precision rounding of `results.h5`.
+//! without --state) against the in-memory one (`pipeline::reduce`, which
+//! `tests/reduction.rs` checks against the unit normal and a direct Monte Carlo), the
+//! single-precision rounding of `results.h5`, and with a calibration the block-wise limit
+//! outputs against the in-memory limits.
 //!
 //! The night: the demo facility, 300 steps of 4096 bins moved 1024 bins apart (308 224 RF
 //! bins, five blocks of 65 536) with three synthetic axions, two of them placed just below
@@ -255,4 +256,205 @@ fn block_wise_night_is_bit_identical_across_thread_counts() {
     }
     assert!(!one_candidates.is_empty());
     assert_eq!(one_candidates, two_candidates);
+}
+
+/// A calibration for the default pipeline from a small campaign (one null and three
+/// injection realisations of a 60-step demo night: enough for an eta), written to
+/// `dir/calib/calibration.json`.
+fn small_calibration(dir: &Path) -> (axsift::calib::Calibration, PathBuf) {
+    use axsift::calib::{self, NoiseSource};
+    let plan = config::load(PIPELINE, "pipeline.toml").expect("pipeline loads");
+    let mut small = null_scenario(61);
+    small.scan.n_steps = 60;
+    let spec = common::eta_campaign(9);
+    let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &small, scratch: dir }, &spec, &|_, _| {}).expect("campaign runs");
+    let cal_dir = dir.join("calib");
+    cal.write(&cal_dir).expect("calibration writes");
+    (cal, cal_dir.join("calibration.json"))
+}
+
+/// `axsift reduce --calibration` (block-wise) into `out`, with `threads` worker threads.
+fn reduce_calibrated(night: &Path, calibration: &Path, out: &Path, threads: usize) {
+    let pipeline_path = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    let run = Command::new(env!("CARGO_BIN_EXE_axsift"))
+        .env("RAYON_NUM_THREADS", threads.to_string())
+        .args(["-q", "reduce", "--config", pipeline_path, "--calibration"])
+        .arg(calibration)
+        .arg("--out")
+        .arg(out)
+        .arg(night)
+        .output()
+        .unwrap();
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+}
+
+/// One per-bin limit quantity, as stored in results.h5.
+type LimitOf = fn(&axsift::limits::BinLimit) -> f64;
+
+fn csv_rows(path: &Path) -> Vec<Vec<String>> {
+    let mut reader = csv::Reader::from_path(path).unwrap();
+    reader.records().map(|r| r.unwrap().iter().map(str::to_string).collect()).collect()
+}
+
+/// Reference: the in-memory limits, `limits::for_reduction` over the whole in-memory
+/// spectrum (every candidate blocked; its formula is checked against the written-out method
+/// in `tests/limits.rs`). The block-wise `reduce --calibration` must give, with the night's
+/// runs above threshold crossing block edges:
+/// - in results.h5, per bin: `mass_uev` equal bit for bit (double precision), and each of
+///   the four limits the double-precision value rounded once to nearest single precision
+///   (bit for bit, NaN exactly where the bin is not excluded), so within 2^-24 of it (IEEE
+///   754 binary32 unit roundoff, as for the other datasets above);
+/// - limits.csv: every bin's row as formatted from the in-memory limits;
+/// - limit_blocks.csv: per 1 MHz block counted from the first bin's line start (10 000 bins
+///   of 100 Hz, so blocks cross the 65 536-bin edges), the excluded fraction, the upper
+///   median v[n / 2] and the smallest of the sorted excluded values, computed here;
+/// - summary.json's range: the excluded fraction, smallest and largest excluded value and
+///   the lower median (0-based rank floor((n - 1) / 2) of the sorted values), bit for bit;
+/// - candidates.csv as the in-memory reduction writes it (`Reduction::write`).
+#[test]
+fn calibrated_block_wise_outputs_equal_the_in_memory_limits() {
+    let dir = tempfile::tempdir().unwrap();
+    let night = simulate(dir.path());
+    let (cal, cal_path) = small_calibration(dir.path());
+    let plan = config::load(PIPELINE, "pipeline.toml").expect("pipeline loads");
+    let mem = pipeline::reduce(&plan, std::slice::from_ref(&night), &|_, _| {}).expect("in-memory reduction");
+    let limits = axsift::limits::for_reduction(&plan, &mem.spectrum, &cal, axsift::limits::DEFAULT_CONFIDENCE).expect("limits");
+    let n = mem.spectrum.grand.len();
+    assert!(mem.spectrum.candidates.iter().filter(|c| crosses_a_block_edge(c)).count() >= 2, "blocked runs cross block edges");
+    let out = dir.path().join("out");
+    reduce_calibrated(&night, &cal_path, &out, 2);
+
+    let file = hdf5::File::open(out.join("results.h5")).unwrap();
+    let mass: Vec<f64> = file.dataset("mass_uev").unwrap().read_raw().unwrap();
+    assert_eq!(bits(&mass), bits(&limits.bins.iter().map(|b| b.mass_uev).collect::<Vec<_>>()), "mass_uev");
+    let columns: [(&str, LimitOf); 4] = [
+        ("limit_g_gamma", |b| b.g_gamma),
+        ("limit_g_agg_per_gev", |b| b.g_agg_per_gev.abs()),
+        ("limit_rel_ksvz", |b| b.rel_ksvz),
+        ("limit_rel_dfsz", |b| b.rel_dfsz),
+    ];
+    for (name, of) in columns {
+        let ds = file.dataset(name).unwrap();
+        assert_eq!(ds.dtype().unwrap().size(), 4, "{name} is stored in single precision");
+        let stored: Vec<f32> = ds.read_raw().unwrap();
+        assert_eq!(stored.len(), n, "{name}: bins");
+        for (j, (&s, b)) in stored.iter().zip(&limits.bins).enumerate() {
+            let x = of(b);
+            assert_eq!(s.is_nan(), !b.excluded, "{name} bin {j}: NaN exactly where not excluded");
+            assert!(s.to_bits() == (x as f32).to_bits() || (s.is_nan() && x.is_nan()), "{name} bin {j}: stored {s}, {x} rounds to {}", x as f32);
+            if x.is_finite() {
+                assert!((f64::from(s) - x).abs() <= F32_UNIT_ROUNDOFF * x.abs(), "{name} bin {j}: {s} vs {x}");
+            }
+        }
+    }
+    let excluded: Vec<f64> = limits.bins.iter().filter(|b| b.excluded).map(|b| b.rel_ksvz).collect();
+    let blocked = limits.bins.iter().filter(|b| !b.excluded && b.mass_uev.is_finite()).count();
+    assert!(!excluded.is_empty() && blocked > 0, "some bins excluded ({}), some not ({blocked})", excluded.len());
+
+    let rows = csv_rows(&out.join("limits.csv"));
+    assert_eq!(rows.len(), n, "limits.csv: one row per bin");
+    for (j, (row, b)) in rows.iter().zip(&limits.bins).enumerate() {
+        assert_eq!(row.as_slice(), b.csv_row().as_slice(), "limits.csv row of bin {j}");
+    }
+
+    let block_hz = axsift::output::LIMIT_BLOCK_HZ;
+    let first_hz = limits.bins[0].freq_hz;
+    let mut expected_blocks: Vec<[String; 6]> = Vec::new();
+    let (mut k, mut crossing) = (0, 0);
+    while k < n {
+        let block = ((limits.bins[k].freq_hz - first_hz) / block_hz).floor();
+        let end = (k..n).find(|&i| ((limits.bins[i].freq_hz - first_hz) / block_hz).floor() != block).unwrap_or(n);
+        let mut rel: Vec<f64> = limits.bins[k..end].iter().filter(|b| b.excluded).map(|b| b.rel_ksvz).collect();
+        let mut gagg: Vec<f64> = limits.bins[k..end].iter().filter(|b| b.excluded).map(|b| b.g_agg_per_gev.abs()).collect();
+        rel.sort_by(f64::total_cmp);
+        gagg.sort_by(f64::total_cmp);
+        let start = first_hz + block * block_hz;
+        let row = axsift::limits::LimitBlock {
+            start_hz: start,
+            stop_hz: start + block_hz,
+            excluded_fraction: rel.len() as f64 / (end - k) as f64,
+            median_rel_ksvz: rel.get(rel.len() / 2).copied().unwrap_or(f64::NAN),
+            best_rel_ksvz: rel.first().copied().unwrap_or(f64::NAN),
+            median_g_agg_per_gev: gagg.get(gagg.len() / 2).copied().unwrap_or(f64::NAN),
+        };
+        crossing += usize::from(k / BLOCK_BINS != (end - 1) / BLOCK_BINS);
+        expected_blocks.push(row.csv_row());
+        k = end;
+    }
+    assert!(crossing >= 4, "coarse blocks cross the 65 536-bin block edges ({crossing} do)");
+    let got_blocks = csv_rows(&out.join("limit_blocks.csv"));
+    assert_eq!(got_blocks.len(), expected_blocks.len(), "limit_blocks.csv rows");
+    for (i, (g, e)) in got_blocks.iter().zip(&expected_blocks).enumerate() {
+        assert_eq!(g.as_slice(), e.as_slice(), "limit_blocks.csv row {i}");
+    }
+
+    let summary: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
+    let range = &summary["limits"];
+    let mut sorted = excluded.clone();
+    sorted.sort_by(f64::total_cmp);
+    let f = |key: &str| range[key].as_f64().unwrap_or_else(|| panic!("summary limits.{key}: {range}"));
+    assert_eq!(f("excluded_fraction").to_bits(), (excluded.len() as f64 / n as f64).to_bits(), "excluded fraction");
+    assert_eq!(f("best_rel_ksvz").to_bits(), sorted[0].to_bits(), "best");
+    assert_eq!(f("median_rel_ksvz").to_bits(), sorted[(sorted.len() - 1) / 2].to_bits(), "lower median");
+    assert_eq!(f("worst_rel_ksvz").to_bits(), sorted[sorted.len() - 1].to_bits(), "worst");
+
+    let mem_out = dir.path().join("mem-out");
+    let provenance = axsift::output::Provenance::new(PIPELINE, std::slice::from_ref(&night)).unwrap();
+    mem.write(&mem_out, PIPELINE, &provenance, Some((&cal, &limits))).expect("in-memory outputs");
+    assert_eq!(std::fs::read(out.join("candidates.csv")).unwrap(), std::fs::read(mem_out.join("candidates.csv")).unwrap(), "candidates.csv");
+    eprintln!("{n} bins, {} excluded, {blocked} blocked; {} coarse blocks; lower median {:.6}", excluded.len(), expected_blocks.len(), f("median_rel_ksvz"));
+}
+
+/// `reduce --calibration` gives the same bits with 1 and 2 threads (the house rule on
+/// determinism): every dataset of results.h5 and every other output, byte for byte.
+#[test]
+fn calibrated_block_wise_outputs_are_bit_identical_across_thread_counts() {
+    let dir = tempfile::tempdir().unwrap();
+    let night = simulate(dir.path());
+    let (_, cal_path) = small_calibration(dir.path());
+    let (one, two) = (dir.path().join("one"), dir.path().join("two"));
+    reduce_calibrated(&night, &cal_path, &one, 1);
+    reduce_calibrated(&night, &cal_path, &two, 2);
+    let names = ["limits.csv", "limit_blocks.csv", "summary.json", "candidates.csv", "exclusion.png", "exclusion.svg", "grand_spectrum.png"];
+    for name in names {
+        assert!(std::fs::read(one.join(name)).unwrap() == std::fs::read(two.join(name)).unwrap(), "{name} differs between 1 and 2 threads");
+    }
+    let (a, b) = (hdf5::File::open(one.join("results.h5")).unwrap(), hdf5::File::open(two.join("results.h5")).unwrap());
+    let datasets = a.member_names().unwrap().into_iter().filter(|m| a.dataset(m).is_ok()).collect::<Vec<_>>();
+    assert!(datasets.len() >= 11, "{datasets:?}");
+    for name in datasets {
+        let (x, y): (Vec<f64>, Vec<f64>) = (a.dataset(&name).unwrap().read_raw().unwrap(), b.dataset(&name).unwrap().read_raw().unwrap());
+        assert!(bits(&x) == bits(&y), "results.h5 {name} differs between 1 and 2 threads");
+    }
+}
+
+/// A grid above the documented size of `limits.csv` (`output::LIMITS_CSV_MAX_BINS`, 2^20
+/// bins; README "Outputs"): the night's steps spread 3600 bins apart give 1 080 496 bins.
+/// `reduce --calibration` writes no `limits.csv` and removes one an earlier reduction left in
+/// the folder (it would not describe this one), while `results.h5` holds every bin's limit
+/// and `limit_blocks.csv` one row per MHz of the grid.
+#[test]
+fn a_large_grid_has_its_per_bin_limits_in_results_h5_only() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut sc = scenario();
+    sc.scan.step_bins = 3600;
+    sc.axion.clear();
+    let night = dir.path().join("wide.h5");
+    sim::simulate(&sc, &night).expect("simulation writes");
+    let n = (N_STEPS - 1) * 3600 + N_BINS;
+    assert!(n > axsift::output::LIMITS_CSV_MAX_BINS, "{n} bins");
+    let (_, cal_path) = small_calibration(dir.path());
+    let out = dir.path().join("out");
+    std::fs::create_dir_all(&out).unwrap();
+    std::fs::write(out.join("limits.csv"), "left by an earlier reduction\n").unwrap();
+    reduce_calibrated(&night, &cal_path, &out, 2);
+    assert!(!out.join("limits.csv").exists(), "limits.csv of a grid above the size");
+    let file = hdf5::File::open(out.join("results.h5")).unwrap();
+    let limit: Vec<f32> = file.dataset("limit_g_gamma").unwrap().read_raw().unwrap();
+    assert_eq!(limit.len(), n);
+    assert!(limit.iter().filter(|v| v.is_finite()).count() > n / 2, "most bins excluded");
+    let width_hz = sc.scan.bin_width_hz * n as f64;
+    assert_eq!(csv_rows(&out.join("limit_blocks.csv")).len(), (width_hz / axsift::output::LIMIT_BLOCK_HZ).ceil() as usize, "one row per MHz");
+    let leftovers: Vec<_> = std::fs::read_dir(&out).unwrap().map(|e| e.unwrap().file_name()).filter(|n| n.to_string_lossy().starts_with(".tmp")).collect();
+    assert!(leftovers.is_empty(), "temporary files left: {leftovers:?}");
 }

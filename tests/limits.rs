@@ -3,7 +3,7 @@
 
 mod common;
 
-use axsift::calib::{self, CampaignSpec, NoiseSource};
+use axsift::calib::{self, NoiseSource};
 use axsift::config;
 use axsift::dsp::savgol::SavitzkyGolay;
 use axsift::inject::{SignalModel, SyntheticAxion};
@@ -90,15 +90,7 @@ fn a_signal_at_the_limit_is_flagged_95_percent_of_the_time() {
     let dir = tempfile::tempdir().unwrap();
     let mut small = null_scenario(300);
     small.scan.n_steps = 60;
-    let spec = CampaignSpec {
-        seed: 4,
-        null_realisations: 1,
-        eta_realisations: 3,
-        eta_snr: 20.0,
-        snr_grid: vec![],
-        realisations_per_snr: 0,
-        max_injections_per_realisation: 40,
-    };
+    let spec = common::eta_campaign(4);
     let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &small, scratch: dir.path() }, &spec, &|_, _| {}).unwrap();
     let eta = cal.attenuation.eta;
     let halo = HaloModel::default();

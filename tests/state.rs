@@ -539,7 +539,7 @@ fn status_reports_text_and_json() {
 /// limits.csv (its values rounded to 5 decimals), with the same number of excluded bins.
 #[test]
 fn status_reports_the_limit_range_of_a_calibrated_update() {
-    use axsift::calib::{self, CampaignSpec, NoiseSource};
+    use axsift::calib::{self, NoiseSource};
     let dir = tempfile::tempdir().unwrap();
     let exe = env!("CARGO_BIN_EXE_axsift");
     let pipeline = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
@@ -547,15 +547,7 @@ fn status_reports_the_limit_range_of_a_calibrated_update() {
     // A small campaign, enough for an eta: one null and three injection realisations.
     let mut small = null_scenario(61);
     small.scan.n_steps = 60;
-    let spec = CampaignSpec {
-        seed: 9,
-        null_realisations: 1,
-        eta_realisations: 3,
-        eta_snr: 20.0,
-        snr_grid: vec![],
-        realisations_per_snr: 0,
-        max_injections_per_realisation: 40,
-    };
+    let spec = common::eta_campaign(9);
     let cal = calib::calibrate(&plan, &NoiseSource::Simulated { scenario: &small, scratch: dir.path() }, &spec, &|_, _| {}).unwrap();
     let cal_dir = dir.path().join("calib");
     cal.write(&cal_dir).unwrap();

@@ -272,7 +272,12 @@ impl Forecast {
         w.flush()?;
         drop(w);
         let points: Vec<(f64, f64)> = self.reach.iter().map(|r| (r.mass_uev, r.g_agg_per_gev)).collect();
-        super::exclusion_plot(&points, &format!("Forecast reach ({:.2} MHz/day at the target)", self.rate_mhz_per_day), &tmp(names[1]), &tmp(names[2]))?;
+        super::exclusion_plot(
+            &super::ExclusionColumns::of_points(&points),
+            &format!("Forecast reach ({:.2} MHz/day at the target)", self.rate_mhz_per_day),
+            &tmp(names[1]),
+            &tmp(names[2]),
+        )?;
         names
             .iter()
             .map(|n| {

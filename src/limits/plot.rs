@@ -8,32 +8,74 @@ use std::path::Path;
 const WIDTH: u32 = 1000;
 const HEIGHT: u32 = 560;
 
-/// Draws `points` (mass in micro-eV, |g_agg| limit in GeV^-1; NaN = not excluded) into a PNG
-/// and an SVG. Many points are reduced to the largest (most conservative) limit per pixel
-/// column.
-pub fn exclusion_plot(points: &[(f64, f64)], title: &str, png: &Path, svg: &Path) -> anyhow::Result<()> {
+/// Draws the exclusion curve of `columns` into a PNG and an SVG.
+pub fn exclusion_plot(columns: &ExclusionColumns, title: &str, png: &Path, svg: &Path) -> anyhow::Result<()> {
     crate::fonts::register_fonts()?;
-    let columns = reduce_columns(points, WIDTH as usize);
+    let columns = columns.envelope();
     draw(&columns, title, BitMapBackend::new(png, (WIDTH, HEIGHT)).into_drawing_area())?;
     draw(&columns, title, SVGBackend::new(svg, (WIDTH, HEIGHT)).into_drawing_area())?;
     Ok(())
 }
 
-/// Per pixel column, the largest limit; a column holding any bin that is not excluded
-/// becomes a gap, so candidates awaiting a rescan stay visible.
-fn reduce_columns(points: &[(f64, f64)], columns: usize) -> Vec<(f64, Option<f64>)> {
-    let per = points.len().div_ceil(columns.max(1)).max(1);
-    points
-        .chunks(per)
-        .map(|c| {
-            let all_excluded = c.iter().all(|p| p.1.is_finite());
-            let worst = c.iter().map(|p| p.1.abs()).reduce(f64::max).filter(|_| all_excluded);
-            (c[c.len() / 2].0, worst)
-        })
-        .collect()
+/// The curve reduced to one value per pixel column, gathered point by point in order
+/// (mass in micro-eV, |g_agg| limit in GeV^-1; NaN = not excluded): points `c * per ..
+/// (c + 1) * per` fall in column c, which keeps the largest (most conservative) limit over
+/// its excluded points, the mass of its middle point, and whether it holds a point that is
+/// not excluded. The curve runs through the columns with an excluded point (a gap where a
+/// column has none); columns holding points not excluded (candidates awaiting a rescan, bins
+/// without data) are marked along the bottom, so they stay visible even where, as on a wide
+/// night, nearly every column holds one. Memory: four numbers per column, whatever the
+/// number of points.
+#[derive(Debug, Clone)]
+pub struct ExclusionColumns {
+    n_points: usize,
+    per: usize,
+    mass_uev: Vec<f64>,
+    /// Largest excluded limit (-inf: none yet).
+    worst: Vec<f64>,
+    /// Holds a point not excluded.
+    open: Vec<bool>,
 }
 
-fn draw<DB: DrawingBackend>(columns: &[(f64, Option<f64>)], title: &str, area: DrawingArea<DB, plotters::coord::Shift>) -> anyhow::Result<()>
+/// One column to draw: mass of its middle point, largest excluded limit (None: no excluded
+/// point), whether it holds a point not excluded.
+type Column = (f64, Option<f64>, bool);
+
+impl ExclusionColumns {
+    /// Empty columns for a curve of `n_points` points.
+    pub fn new(n_points: usize) -> Self {
+        let per = n_points.div_ceil(WIDTH as usize).max(1);
+        let columns = n_points.div_ceil(per);
+        Self { n_points, per, mass_uev: vec![f64::NAN; columns], worst: vec![f64::NEG_INFINITY; columns], open: vec![false; columns] }
+    }
+
+    /// The columns of a whole curve.
+    pub fn of_points(points: &[(f64, f64)]) -> Self {
+        let mut columns = Self::new(points.len());
+        columns.add(0, points.iter().copied());
+        columns
+    }
+
+    /// Takes in consecutive points, the first being point `first` of the curve.
+    pub fn add(&mut self, first: usize, points: impl IntoIterator<Item = (f64, f64)>) {
+        for (i, (mass_uev, g)) in (first..self.n_points).zip(points) {
+            let c = i / self.per;
+            let in_column = self.per.min(self.n_points - c * self.per);
+            if i - c * self.per == in_column / 2 {
+                self.mass_uev[c] = mass_uev;
+            }
+            let excluded = g.is_finite();
+            self.worst[c] = if excluded { self.worst[c].max(g.abs()) } else { self.worst[c] };
+            self.open[c] |= !excluded;
+        }
+    }
+
+    fn envelope(&self) -> Vec<Column> {
+        (0..self.mass_uev.len()).map(|c| (self.mass_uev[c], Some(self.worst[c]).filter(|w| w.is_finite()), self.open[c])).collect()
+    }
+}
+
+fn draw<DB: DrawingBackend>(columns: &[Column], title: &str, area: DrawingArea<DB, plotters::coord::Shift>) -> anyhow::Result<()>
 where
     DB::ErrorType: 'static,
 {
@@ -62,7 +104,7 @@ where
         .map_err(|e| err(&e))?;
     let mut segment = Vec::new();
     let mut segments = Vec::new();
-    for &(m, g) in columns {
+    for &(m, g, _) in columns {
         match g {
             Some(g) => segment.push((m, g)),
             None if !segment.is_empty() => segments.push(std::mem::take(&mut segment)),
@@ -73,8 +115,18 @@ where
     for (i, s) in segments.into_iter().filter(|s| !s.is_empty()).enumerate() {
         let series = chart.draw_series(LineSeries::new(s, BLUE.stroke_width(2))).map_err(|e| err(&e))?;
         if i == 0 {
-            series.label("excluded above this line (gaps: not excluded)").legend(|(x, y)| PathElement::new([(x, y), (x + 20, y)], BLUE));
+            series.label("excluded above this line (worst bin per column)").legend(|(x, y)| PathElement::new([(x, y), (x + 20, y)], BLUE));
         }
+    }
+    // A short stroke at the bottom of each column holding bins not excluded.
+    let tick_top = y_lo * (y_hi / y_lo).powf(0.03);
+    let open: Vec<f64> = columns.iter().filter(|c| c.2).map(|c| c.0).collect();
+    if !open.is_empty() {
+        chart
+            .draw_series(open.iter().map(|&m| PathElement::new([(m, y_lo), (m, tick_top)], MAGENTA.stroke_width(1))))
+            .map_err(|e| err(&e))?
+            .label("column holds bins not excluded (candidates, no data)")
+            .legend(|(x, y)| PathElement::new([(x + 10, y - 5), (x + 10, y + 5)], MAGENTA));
     }
     for (name, colour, f) in [("KSVZ", RED, &ksvz as &dyn Fn(f64) -> f64), ("DFSZ", GREEN, &dfsz)] {
         chart

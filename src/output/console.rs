@@ -1,6 +1,6 @@
 //! Human-readable summaries printed on the terminal.
 
-use super::{Summary, implied_coupling};
+use super::{PeakValues, Summary};
 use crate::calib::Calibration;
 use crate::limits::Limits;
 use crate::pipeline::Reduction;
@@ -19,6 +19,13 @@ control the magnet, cryostat or RF chain; retune and ramp only under the laborat
 /// The morning summary of a reduction (`s` its summary): steps, coverage, grand-spectrum
 /// statistics, candidates.
 pub fn night_report(r: &Reduction, s: &Summary, calibrated: Option<(&Calibration, &Limits)>, written: &[PathBuf]) -> String {
+    let peaks = PeakValues::of_spectrum(&r.spectrum);
+    night_report_for(r, s, calibrated.map(|c| (c.0, &peaks)), written)
+}
+
+/// The morning summary of a reduction as [`night_report`] gives it, with the calibration it
+/// was made with and the values at its candidates' peaks (its limits are in the summary `s`).
+pub fn night_report_for(r: &Reduction, s: &Summary, calibrated: Option<(&Calibration, &PeakValues)>, written: &[PathBuf]) -> String {
     let calibration = calibrated.map(|c| c.0);
     let mut out = String::new();
     let _ = writeln!(out, "Steps: {} read, {} used, {} cut", s.n_steps_in, s.n_steps_used, s.cuts.len());
@@ -84,7 +91,7 @@ pub fn night_report(r: &Reduction, s: &Summary, calibrated: Option<(&Calibration
                 c.revisit_cavity_hz / 1e6,
                 c.covering_steps.len()
             );
-            let implied = calibration.map(|cal| format!("  {:>14.3}", implied_coupling(&r.spectrum, c, cal.attenuation.eta).0));
+            let implied = calibrated.map(|(cal, peaks)| format!("  {:>14.3}", peaks.implied(c, cal.attenuation.eta).0));
             let _ = writeln!(out, "{}", implied.unwrap_or_default());
         }
         if s.n_candidates > MAX_LISTED {

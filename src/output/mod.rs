@@ -5,18 +5,24 @@
 
 mod bins;
 pub mod console;
+mod limit_outputs;
 mod plot;
+mod rank;
 mod results_file;
 mod stats;
 
 use crate::calib::Calibration;
-use crate::limits::Limits;
+use crate::limits::BinLimit;
+use crate::limits::{LimitBasis, Limits};
 use crate::pipeline::Reduction;
 use crate::stage::Candidate;
+use anyhow::Context;
 use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
 
 pub use bins::Bins;
+pub use limit_outputs::LIMITS_CSV_MAX_BINS;
+use limit_outputs::{LIMIT_BLOCKS_CSV, LIMITS_CSV, LimitOutputs};
 pub use plot::Columns;
 pub use results_file::{CHUNK_BINS, ResultBlock, ResultsFile};
 pub use stats::{GrandStats, Moments};
@@ -28,8 +34,9 @@ pub const SUMMARY_CANDIDATES: usize = 100;
 /// Width of the blocks of the coarse limit summary, Hz.
 pub const LIMIT_BLOCK_HZ: f64 = 1e6;
 
-/// Outputs written only by a calibrated reduction (earlier ones are removed by an uncalibrated one).
-const LIMIT_OUTPUTS: [&str; 4] = ["limits.csv", "limit_blocks.csv", "exclusion.png", "exclusion.svg"];
+/// Outputs written only by a calibrated reduction (earlier ones are removed by an uncalibrated
+/// one; `limits.csv` also by one whose grid is too large for it, [`LIMITS_CSV_MAX_BINS`]).
+const LIMIT_OUTPUTS: [&str; 4] = [LIMITS_CSV, LIMIT_BLOCKS_CSV, "exclusion.png", "exclusion.svg"];
 
 /// Provenance written into every output.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -109,7 +116,9 @@ pub struct LimitRange {
     pub confidence: f64,
     /// Fraction of the grand-spectrum bins excluded.
     pub excluded_fraction: f64,
-    /// Best, median and worst limit relative to KSVZ over the excluded bins.
+    /// Best (smallest), median and worst (largest) limit relative to KSVZ over the n excluded
+    /// bins; the median is the lower one, the value of 0-based rank floor((n - 1) / 2) in
+    /// ascending order.
     pub best_rel_ksvz: f64,
     pub median_rel_ksvz: f64,
     pub worst_rel_ksvz: f64,
@@ -158,24 +167,64 @@ impl CalibrationUse {
 /// Per-candidate figures that need eta: (implied |g|/g_ref, SNR a reference axion has there).
 pub fn implied_coupling(sp: &crate::stage::Spectrum, c: &crate::stage::Candidate, eta: f64) -> (f64, f64) {
     let j = c.peak_bin;
-    let rel = (sp.amplitude[j].max(0.0) / eta).sqrt();
-    (rel, eta / (sp.sigma_a[j] * sp.predicted_spread[j]))
+    implied_coupling_of([sp.amplitude[j], sp.sigma_a[j], sp.predicted_spread[j]], eta)
+}
+
+/// (implied |g|/g_ref, reference-axion SNR) of a bin's [amplitude, sigma_A, predicted spread].
+fn implied_coupling_of([amplitude, sigma_a, predicted_spread]: [f64; 3], eta: f64) -> (f64, f64) {
+    ((amplitude.max(0.0) / eta).sqrt(), eta / (sigma_a * predicted_spread))
+}
+
+/// The values the implied couplings need at the candidates' peak bins (amplitude, sigma_A,
+/// predicted spread), by grid bin in increasing order: kept for every bin above the
+/// threshold as a block-wise reduction's bins go by (a candidate's peak is one of them), or
+/// read from an in-memory spectrum.
+#[derive(Debug, Clone, Default)]
+pub struct PeakValues {
+    bins: Vec<(usize, [f64; 3])>,
+}
+
+impl PeakValues {
+    /// The values at the peaks of an in-memory spectrum's candidates.
+    pub fn of_spectrum(sp: &crate::stage::Spectrum) -> Self {
+        let mut bins: Vec<(usize, [f64; 3])> =
+            sp.candidates.iter().map(|c| c.peak_bin).map(|j| (j, [sp.amplitude[j], sp.sigma_a[j], sp.predicted_spread[j]])).collect();
+        bins.sort_by_key(|b| b.0);
+        bins.dedup_by_key(|b| b.0);
+        Self { bins }
+    }
+
+    /// Keeps the values of the bins of `b` above its threshold (runs of bins in grid order).
+    fn keep_above(&mut self, b: &Bins<'_>) {
+        for (i, _) in b.grand.iter().enumerate().filter(|(_, g)| **g > b.threshold) {
+            self.bins.push((b.first_bin + i, [b.amplitude[i], b.sigma_a[i], b.predicted_spread[i]]));
+        }
+    }
+
+    /// (implied |g|/g_ref, reference-axion SNR) of candidate `c` with attenuation `eta`; NaN
+    /// if its peak bin was not kept.
+    pub fn implied(&self, c: &crate::stage::Candidate, eta: f64) -> (f64, f64) {
+        match self.bins.binary_search_by_key(&c.peak_bin, |b| b.0) {
+            Ok(k) => implied_coupling_of(self.bins[k].1, eta),
+            Err(_) => (f64::NAN, f64::NAN),
+        }
+    }
 }
 
 impl Reduction {
     /// Builds the summary of this reduction from its in-memory spectrum.
     pub fn summary<'a>(&'a self, provenance: &'a Provenance, calibration: Option<&Calibration>, limits: Option<&Limits>) -> Summary<'a> {
-        self.summary_with(&GrandStats::of_spectrum(&self.spectrum), provenance, calibration, limits)
+        self.summary_with(&GrandStats::of_spectrum(&self.spectrum), provenance, calibration, limits.map(LimitRange::from))
     }
 
-    /// Builds the summary of this reduction with the grand-spectrum statistics `stats`
-    /// (gathered while a streamed reduction's blocks went by).
+    /// Builds the summary of this reduction with the grand-spectrum statistics `stats` and
+    /// the limit range `limits` (gathered while a streamed reduction's blocks went by).
     pub fn summary_with<'a>(
         &'a self,
         stats: &GrandStats,
         provenance: &'a Provenance,
         calibration: Option<&Calibration>,
-        limits: Option<&Limits>,
+        limits: Option<LimitRange>,
     ) -> Summary<'a> {
         let sp = &self.spectrum;
         let threshold = sp.threshold.unwrap_or(f64::NAN);
@@ -204,19 +253,25 @@ impl Reduction {
             no_data: &self.no_data,
             provenance,
             calibration: calibration.map(CalibrationUse::from),
-            limits: limits.map(LimitRange::from),
+            limits,
         }
     }
 
-    /// Writes all outputs of this in-memory reduction into `dir` (created if needed).
-    /// Returns the written paths.
+    /// Writes all outputs of this in-memory reduction into `dir` (created if needed); with a
+    /// calibration, `calibrated` gives it and the limits of every bin. Returns the written
+    /// paths.
     pub fn write(&self, dir: &Path, config_text: &str, provenance: &Provenance, calibrated: Option<(&Calibration, &Limits)>) -> anyhow::Result<Vec<PathBuf>> {
         let mut outputs = BlockOutputs::new(dir)?;
         let mut results = outputs.results_sink();
         for bins in Bins::blocks_of(&self.spectrum) {
-            results.write(outputs.take(&bins))?;
+            let block = match calibrated {
+                Some((_, limits)) => outputs.take_limited(&bins, limits)?,
+                None => outputs.take(&bins)?,
+            };
+            results.write(block)?;
         }
-        outputs.finish(self, results, config_text, provenance, calibrated).map(|(written, _)| written)
+        outputs.peaks = PeakValues::of_spectrum(&self.spectrum);
+        outputs.finish(self, results, config_text, provenance, calibrated.map(|c| c.0)).map(|done| done.written)
     }
 }
 
@@ -235,6 +290,13 @@ pub struct BlockOutputs {
     dir: PathBuf,
     stats: GrandStats,
     columns: Option<Columns>,
+    /// With a calibration, what the limits assume (for limits computed here, [`BlockOutputs::take`]).
+    basis: Option<LimitBasis>,
+    /// With a calibration, the limit outputs, made with the first run of bins.
+    limits: Option<LimitOutputs>,
+    /// With a calibration, the values the candidates' implied couplings need (kept at every
+    /// bin above the threshold by [`BlockOutputs::take`]).
+    peaks: PeakValues,
 }
 
 /// Where the per-bin values go: `results.h5` under its temporary name, made with the first
@@ -269,9 +331,15 @@ impl Drop for ResultsSink {
 impl BlockOutputs {
     /// Outputs to be written into `dir` (created if needed).
     pub fn new(dir: &Path) -> anyhow::Result<Self> {
-        use anyhow::Context;
         std::fs::create_dir_all(dir).with_context(|| format!("cannot create output folder {}", dir.display()))?;
-        Ok(Self { dir: dir.to_path_buf(), stats: GrandStats::default(), columns: None })
+        Ok(Self { dir: dir.to_path_buf(), stats: GrandStats::default(), columns: None, basis: None, limits: None, peaks: PeakValues::default() })
+    }
+
+    /// Outputs of a single night's calibrated reduction, into `dir`: [`BlockOutputs::take`]
+    /// also computes each bin's limit from its own values, with `basis` and the flag stage's
+    /// threshold ([`crate::limits::single_night_limits`]), and the limit outputs are written.
+    pub fn calibrated(dir: &Path, basis: LimitBasis) -> anyhow::Result<Self> {
+        Ok(Self { basis: Some(basis), ..Self::new(dir)? })
     }
 
     /// The sink for `results.h5`.
@@ -279,31 +347,84 @@ impl BlockOutputs {
         ResultsSink { path: staged(&self.dir, "results.h5"), file: None }
     }
 
-    /// Takes in one run of bins (in grid order): the statistics and plot columns here, and
-    /// the values for `results.h5`, returned.
-    pub fn take(&mut self, bins: &Bins<'_>) -> ResultBlock {
+    /// Takes in one run of bins (in grid order): the statistics, plot columns and (made by
+    /// [`BlockOutputs::calibrated`]) the limit outputs here, and the values for `results.h5`,
+    /// returned.
+    pub fn take(&mut self, bins: &Bins<'_>) -> anyhow::Result<ResultBlock> {
+        let Some(basis) = &self.basis else {
+            self.add_spectrum(bins);
+            return Ok(ResultBlock::of(bins));
+        };
+        let assumptions = match &self.limits {
+            Some(open) => open.assumptions.clone(),
+            None => basis.at_threshold(Some(bins.threshold).filter(|t| !t.is_nan())).map_err(anyhow::Error::msg)?,
+        };
+        let limits = crate::limits::single_night_limits(
+            &assumptions,
+            bins.origin_hz,
+            bins.bin_width_hz,
+            bins.first_bin,
+            bins.sigma_a,
+            bins.predicted_spread,
+            bins.grand,
+        );
+        let block = self.take_with(bins, assumptions, &limits)?;
+        self.peaks.keep_above(bins);
+        Ok(block)
+    }
+
+    /// Takes in one run of bins as [`BlockOutputs::take`] does, with the limits of a whole
+    /// in-memory reduction (those of these bins are used).
+    pub fn take_limited(&mut self, bins: &Bins<'_>, limits: &Limits) -> anyhow::Result<ResultBlock> {
+        let own = limits.bins.get(bins.first_bin..bins.first_bin + bins.grand.len()).context("the limits do not cover the reduction's grid")?;
+        self.take_with(bins, limits.assumptions.clone(), own)
+    }
+
+    fn add_spectrum(&mut self, bins: &Bins<'_>) {
         self.stats.add(bins);
         self.columns.get_or_insert_with(|| Columns::new(bins.grid_bins)).add(bins);
-        ResultBlock::of(bins)
+    }
+
+    /// Takes in `bins` with their `limits` (made with `assumptions`).
+    fn take_with(&mut self, bins: &Bins<'_>, assumptions: crate::limits::LimitAssumptions, limits: &[BinLimit]) -> anyhow::Result<ResultBlock> {
+        self.add_spectrum(bins);
+        let open = match &mut self.limits {
+            Some(open) => open,
+            None => self.limits.insert(LimitOutputs::open(&self.dir, assumptions, bins.grid_bins)?),
+        };
+        open.add(bins.first_bin, limits)?;
+        Ok(ResultBlock::of(bins).with_limits(limits))
     }
 
     /// Writes the remaining outputs of `reduction` (whose bins all went through
     /// [`BlockOutputs::take`], and into `results`) and renames every file into place.
-    /// Returns the written paths and the grand-spectrum statistics.
+    /// `calibration` is the one the limits were made with (None without).
     pub fn finish(
         self,
         reduction: &Reduction,
         mut results: ResultsSink,
         config_text: &str,
         provenance: &Provenance,
-        calibrated: Option<(&Calibration, &Limits)>,
-    ) -> anyhow::Result<(Vec<PathBuf>, GrandStats)> {
-        use anyhow::Context;
+        calibration: Option<&Calibration>,
+    ) -> anyhow::Result<Finished> {
         let dir = &self.dir;
         let mut names = vec!["results.h5", "candidates.csv", "summary.json", "grand_spectrum.png", "grand_spectrum.svg"];
         let tmp = |n: &str| staged(dir, n);
-        let calibration = calibrated.map(|c| c.0);
-        let limits = calibrated.map(|c| c.1);
+        let clean = || {
+            // Earlier results stay as they were; the partial temporary files go.
+            for n in names.iter().chain(LIMIT_OUTPUTS.iter()) {
+                let _ = std::fs::remove_file(tmp(n));
+            }
+        };
+        anyhow::ensure!(calibration.is_some() == self.limits.is_some(), "writing the outputs: a calibration needs limits and limits a calibration");
+        let has_table = self.limits.as_ref().is_some_and(LimitOutputs::has_table);
+        let (limits, exclusion) = match self.limits.map(LimitOutputs::finish).transpose() {
+            Ok(done) => done.unzip(),
+            Err(e) => {
+                clean();
+                return Err(e);
+            }
+        };
         let sp = &reduction.spectrum;
         let columns = self.columns.unwrap_or_else(|| Columns::new(0));
         let facts = plot::PlotFacts { origin_hz: sp.rf_start_hz, bin_width_hz: sp.bin_width_hz, threshold: sp.threshold, candidates: &sp.candidates };
@@ -311,35 +432,27 @@ impl BlockOutputs {
         // Tables and plots are drawn side by side (the plots make no HDF5 call).
         let (tables, plots) = rayon::join(
             || -> anyhow::Result<()> {
-                finish_hdf5(file, sp, config_text, provenance, limits).context("writing results.h5")?;
-                reduction.write_csv(&tmp(names[1]), calibration).context("writing candidates.csv")?;
-                let summary = reduction.summary_with(&self.stats, provenance, calibration, limits);
+                finish_hdf5(file, sp, config_text, provenance, limits.as_ref().map(|l| &l.assumptions)).context("writing results.h5")?;
+                reduction.write_csv(&tmp(names[1]), calibration.map(|c| (c, &self.peaks))).context("writing candidates.csv")?;
+                let summary = reduction.summary_with(&self.stats, provenance, calibration, limits.clone());
                 std::fs::write(tmp(names[2]), serde_json::to_string_pretty(&summary)?).context("writing summary.json")?;
-                if let Some(limits) = limits {
-                    limits.write_tables(&tmp(LIMIT_OUTPUTS[0]), &tmp(LIMIT_OUTPUTS[1]), LIMIT_BLOCK_HZ).context("writing the limit tables")?;
-                }
                 Ok(())
             },
             || -> anyhow::Result<()> {
                 plot::grand_spectrum(&columns, &facts, &tmp(names[3]), &tmp(names[4])).context("drawing the grand spectrum")?;
-                if let Some(limits) = limits {
-                    let points: Vec<(f64, f64)> = limits.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev)).collect();
-                    let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.assumptions.confidence, limits.assumptions.eta);
-                    crate::limits::exclusion_plot(&points, &title, &tmp(LIMIT_OUTPUTS[2]), &tmp(LIMIT_OUTPUTS[3])).context("drawing the exclusion plot")?;
+                if let (Some(limits), Some(exclusion)) = (&limits, &exclusion) {
+                    let title = format!("Exclusion at {:.0}% confidence (eta = {:.3})", 100.0 * limits.confidence, limits.assumptions.eta);
+                    crate::limits::exclusion_plot(exclusion, &title, &tmp(LIMIT_OUTPUTS[2]), &tmp(LIMIT_OUTPUTS[3])).context("drawing the exclusion plot")?;
                 }
                 Ok(())
             },
         );
-        let staged_all = tables.and(plots);
-        if limits.is_some() {
-            names.extend(LIMIT_OUTPUTS);
-        }
-        if let Err(e) = staged_all {
-            // Earlier results stay as they were; the partial temporary files go.
-            for n in names.iter().chain(LIMIT_OUTPUTS.iter()) {
-                let _ = std::fs::remove_file(tmp(n));
-            }
+        if let Err(e) = tables.and(plots) {
+            clean();
             return Err(e);
+        }
+        if limits.is_some() {
+            names.extend(LIMIT_OUTPUTS.iter().filter(|&&n| has_table || n != LIMITS_CSV));
         }
         let written = names
             .iter()
@@ -349,24 +462,37 @@ impl BlockOutputs {
                 Ok(to)
             })
             .collect::<anyhow::Result<Vec<PathBuf>>>()?;
-        if limits.is_none() {
-            // Limits of an earlier, calibrated reduction would not describe this one.
-            for n in LIMIT_OUTPUTS {
-                let stale = dir.join(n);
-                if stale.exists() {
-                    std::fs::remove_file(&stale).with_context(|| format!("removing the earlier {}", stale.display()))?;
-                    tracing::info!("removed {} of an earlier reduction: this one has no calibration, hence no limits", stale.display());
+        // Limits of an earlier reduction would not describe this one.
+        for n in LIMIT_OUTPUTS.iter().filter(|n| !names.contains(n)) {
+            let stale = dir.join(n);
+            if stale.exists() {
+                std::fs::remove_file(&stale).with_context(|| format!("removing the earlier {}", stale.display()))?;
+                match limits {
+                    None => tracing::info!("removed {} of an earlier reduction: this one has no calibration, hence no limits", stale.display()),
+                    Some(_) => tracing::info!("removed {} of an earlier reduction: this one's per-bin limits are in results.h5 only", stale.display()),
                 }
             }
         }
-        Ok((written, self.stats))
+        Ok(Finished { written, stats: self.stats, limits, peaks: self.peaks })
     }
+}
+
+/// What [`BlockOutputs::finish`] gives back for the console.
+pub struct Finished {
+    /// The written paths.
+    pub written: Vec<PathBuf>,
+    /// The grand-spectrum statistics.
+    pub stats: GrandStats,
+    /// With a calibration, the limit range.
+    pub limits: Option<LimitRange>,
+    /// With a calibration, the values the candidates' implied couplings need.
+    pub peaks: PeakValues,
 }
 
 impl Reduction {
     /// One row per candidate; with a calibration also the implied coupling |g|/g_ref and the
     /// SNR a reference axion has at that frequency (both use eta).
-    fn write_csv(&self, path: &Path, calibration: Option<&Calibration>) -> anyhow::Result<()> {
+    fn write_csv(&self, path: &Path, calibration: Option<(&Calibration, &PeakValues)>) -> anyhow::Result<()> {
         let mut w = csv::Writer::from_path(path)?;
         let mut header = vec!["frequency_hz", "significance", "first_bin", "last_bin", "revisit_cavity_hz", "n_covering_steps"];
         if calibration.is_some() {
@@ -382,8 +508,8 @@ impl Reduction {
                 format!("{:.3}", c.revisit_cavity_hz),
                 c.covering_steps.len().to_string(),
             ];
-            if let Some(cal) = calibration {
-                let (rel, snr) = implied_coupling(&self.spectrum, c, cal.attenuation.eta);
+            if let Some((cal, peaks)) = calibration {
+                let (rel, snr) = peaks.implied(c, cal.attenuation.eta);
                 row.extend([format!("{rel:.4}"), format!("{snr:.3}")]);
             }
             w.write_record(&row)?;
@@ -393,23 +519,18 @@ impl Reduction {
     }
 }
 
-/// Completes a results file whose per-bin datasets are written: the limit datasets (with a
-/// calibration), the candidates and the provenance; closes it.
-fn finish_hdf5(results: ResultsFile, sp: &crate::stage::Spectrum, config_text: &str, provenance: &Provenance, limits: Option<&Limits>) -> anyhow::Result<()> {
+/// Completes a results file whose per-bin datasets (the limits' too) are written: the limit
+/// assumptions (with a calibration), the candidates and the provenance; closes it.
+fn finish_hdf5(
+    results: ResultsFile,
+    sp: &crate::stage::Spectrum,
+    config_text: &str,
+    provenance: &Provenance,
+    limits: Option<&crate::limits::LimitAssumptions>,
+) -> anyhow::Result<()> {
     let file = results.file();
-    if let Some(l) = limits {
-        let column = |f: fn(&crate::limits::BinLimit) -> f64| l.bins.iter().map(f).collect::<Vec<f64>>();
-        let limit_sets: [(&str, Vec<f64>, &str, &str); 5] = [
-            ("mass_uev", column(|b| b.mass_uev), "ueV", "axion mass of the line starting at the bin's lower edge"),
-            ("limit_g_gamma", column(|b| b.g_gamma), "1", "upper limit on |g_gamma| (NaN: not excluded)"),
-            ("limit_g_agg_per_gev", column(|b| b.g_agg_per_gev.abs()), "GeV^-1", "upper limit on |g_agg| (NaN: not excluded)"),
-            ("limit_rel_ksvz", column(|b| b.rel_ksvz), "1", "limit on |g_gamma| relative to KSVZ"),
-            ("limit_rel_dfsz", column(|b| b.rel_dfsz), "1", "limit on |g_gamma| relative to DFSZ"),
-        ];
-        for (name, data, units, description) in limit_sets {
-            ResultsFile::described(file, name, &data, units, description)?;
-        }
-        results.text_attr("limit_assumptions", &serde_json::to_string(&l.assumptions)?)?;
+    if let Some(assumptions) = limits {
+        results.text_attr("limit_assumptions", &serde_json::to_string(assumptions)?)?;
     }
     let cand_f: Vec<f64> = sp.candidates.iter().map(|c| c.frequency_hz).collect();
     let cand_s: Vec<f64> = sp.candidates.iter().map(|c| c.significance).collect();

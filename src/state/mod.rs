@@ -55,6 +55,7 @@ mod candidate_file;
 mod candidates;
 mod export;
 pub mod interference;
+mod limit_tally;
 mod night_sums;
 mod profile_file;
 mod rescan;
@@ -69,6 +70,7 @@ pub use accumulate::{RESCAN_TARGET_SNR, ReducedNight, Update, add_night, add_nig
 pub use candidates::{CandidateBlockRecord, Candidates};
 pub use export::export_grand;
 pub use interference::{IF_LINE_SIGMA, IfLine, IfProfile, IfScan, TopSamples};
+pub use limit_tally::LimitTally;
 pub use profile_file::IfProfileRecord;
 pub use rescan::{Class, InterferenceEvidence, LineSource, TrackedCandidate};
 pub use status::{CandidateSummary, ClassCounts, NightSummary, StatusSummary};

@@ -117,35 +117,3 @@ impl StatusSummary {
         })
     }
 }
-
-impl State {
-    /// Records the limit range of an update from its per-bin limits: over the covered bins
-    /// that no open tracked candidate holds (a candidate within `match_hz` of a bin's
-    /// frequency holds it; only the candidate blocks of the spectrum's span are read).
-    /// Limits computed with every current candidate blocked are recomputed here with only
-    /// the open ones blocked, from the same `sigma_eff`.
-    /// Errors when a candidate file of the state cannot be read.
-    pub fn record_limit(&mut self, limits: &crate::limits::Limits, spectrum: &crate::stage::Spectrum, match_hz: f64) -> Result<(), StateError> {
-        let first_bin = ((spectrum.rf_start_hz - self.rf_origin_hz) / self.bin_width_hz).round() as i64;
-        let reach = (match_hz / self.bin_width_hz).ceil() as i64;
-        let tracked = self.open_candidates_near(first_bin..first_bin + spectrum.grand.len() as i64, reach)?;
-        let open: Vec<usize> = spectrum
-            .candidates
-            .iter()
-            .enumerate()
-            .filter(|(_, c)| tracked.iter().any(|t| (t.frequency_hz - c.frequency_hz).abs() <= match_hz))
-            .map(|(i, _)| i)
-            .collect();
-        let per_bin = crate::limits::limits(spectrum, limits.assumptions.clone(), &open);
-        let excluded: Vec<_> = per_bin.bins.iter().filter(|b| b.excluded && b.rel_ksvz.is_finite()).collect();
-        self.limit = (!excluded.is_empty()).then(|| LimitRange {
-            night: self.nights.len().saturating_sub(1),
-            confidence: limits.assumptions.confidence,
-            excluded_bins: excluded.len(),
-            min_rel_ksvz: excluded.iter().map(|b| b.rel_ksvz).fold(f64::INFINITY, f64::min),
-            max_rel_ksvz: excluded.iter().map(|b| b.rel_ksvz).fold(f64::NEG_INFINITY, f64::max),
-            excluded_span_hz: (excluded[0].freq_hz, excluded[excluded.len() - 1].freq_hz),
-        });
-        Ok(())
-    }
-}

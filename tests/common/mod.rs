@@ -1,5 +1,6 @@
 //! Shared set-up of the integration tests: the demo scenario without signals, the default pipeline.
 
+use axsift::calib::CampaignSpec;
 use axsift::sim::Scenario;
 
 /// The default pipeline file.
@@ -14,4 +15,19 @@ pub fn null_scenario(seed: u64) -> Scenario {
     sc.axion.clear();
     sc.interference.clear();
     sc
+}
+
+/// A campaign just large enough for an eta: one null and three injection realisations at
+/// SNR 20, no efficiency curve.
+#[allow(dead_code)] // not every test file makes a calibration
+pub fn eta_campaign(seed: u64) -> CampaignSpec {
+    CampaignSpec {
+        seed,
+        null_realisations: 1,
+        eta_realisations: 3,
+        eta_snr: 20.0,
+        snr_grid: vec![],
+        realisations_per_snr: 0,
+        max_injections_per_realisation: 40,
+    }
 }
