@@ -18,7 +18,7 @@ mod finisher;
 mod schedule;
 mod streamed;
 
-pub use streamed::{reduce_streamed, reduce_streamed_profiled};
+pub use streamed::{ProfiledBlockDone, reduce_streamed, reduce_streamed_profiled};
 
 /// Steps read and processed together per thread of the pool: a chunk holds this many times
 /// the number of threads (4 steps of 32768 bins on 2 cores: 0.5 MB as f32 on disk, 2 MB of

@@ -30,6 +30,10 @@ pub fn reduce_streamed<J: Send>(
     reduce_blocks(plan, paths, progress, false, &mut |block, _| finished(block), write)
 }
 
+/// What [`reduce_streamed_profiled`] calls with each finished block and its most
+/// significant samples; returns the output job for the reading thread, if any.
+pub type ProfiledBlockDone<'a, J> = dyn FnMut(&Block, Option<TopSamples>) -> Result<Option<J>, String> + Send + 'a;
+
 /// As [`reduce_streamed`], also making the night's IF profile (for the analysis state):
 /// `finished` gets each block with its most significant single-step samples (None where no
 /// step touched the block), and the returned reduction's IF scan holds the profile and its
@@ -39,7 +43,7 @@ pub fn reduce_streamed_profiled<J: Send>(
     plan: &Plan,
     paths: &[PathBuf],
     progress: &dyn Fn(usize, usize),
-    finished: &mut (dyn FnMut(&Block, Option<TopSamples>) -> Result<Option<J>, String> + Send),
+    finished: &mut ProfiledBlockDone<'_, J>,
     write: Writer<'_, J>,
 ) -> Result<Reduction, ReduceError> {
     reduce_blocks(plan, paths, progress, true, finished, write)
@@ -50,7 +54,7 @@ fn reduce_blocks<J: Send>(
     paths: &[PathBuf],
     progress: &dyn Fn(usize, usize),
     with_profile: bool,
-    finished: &mut (dyn FnMut(&Block, Option<TopSamples>) -> Result<Option<J>, String> + Send),
+    finished: &mut ProfiledBlockDone<'_, J>,
     write: Writer<'_, J>,
 ) -> Result<Reduction, ReduceError> {
     let mut buffers: [Vec<Step>; 2] = Default::default();

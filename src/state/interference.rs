@@ -168,7 +168,9 @@ impl IfProfile {
                 self.top.entry(block).or_insert_with(|| TopSamples::empty(n));
             }
         }
-        let mut pieces: Vec<(i64, &mut [f32], &mut [f32], &mut [u32])> = Vec::new();
+        // First RF bin of each piece, and its z, 1 / sigma and IF bin.
+        type Piece<'a> = (i64, &'a mut [f32], &'a mut [f32], &'a mut [u32]);
+        let mut pieces: Vec<Piece> = Vec::new();
         for (&block, top) in self.top.iter_mut() {
             let zs = top.z.chunks_mut(PIECE_BINS);
             let invs = top.inverse_sigma.chunks_mut(PIECE_BINS);

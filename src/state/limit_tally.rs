@@ -89,7 +89,8 @@ impl LimitTally {
         let below = (0..bins.grand.len())
             .into_par_iter()
             .with_min_len(PIECE_BINS)
-            .filter(|&i| !(bins.grand[i] > a.threshold))
+            // At or below threshold (a NaN bin has no limit anyway).
+            .filter(|&i| bins.grand[i] <= a.threshold || bins.grand[i].is_nan())
             .filter_map(limit_of)
             .fold(|| Extremes::NONE, |e, (rel, f)| e.with(rel, f))
             .reduce(|| Extremes::NONE, Extremes::and);

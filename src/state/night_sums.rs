@@ -92,8 +92,8 @@ impl SumsMerger {
             return Ok(());
         }
         for index in st.block_of(bins.start)..=st.block_of(bins.end - 1) {
-            if !self.open.contains_key(&index) {
-                self.open.insert(index, st.block(index)?);
+            if let std::collections::btree_map::Entry::Vacant(slot) = self.open.entry(index) {
+                slot.insert(st.block(index)?);
             }
         }
         for (k, ((&c, &s), &n)) in combined.iter().zip(sigma).zip(coverage).enumerate() {
