@@ -14,7 +14,9 @@
 # Environment: BENCH_NIGHTS (default "300 3000 10000 wide campaign") chooses the nights;
 # "campaign" runs scripts/bench_state.sh last (nightly updates of 1e7- and 1e8-bin states,
 # RUNS=3 there, against the same nights reduced without a state; it has no numpy counterpart),
-# BENCH_BASELINE_NIGHTS (default "3000 wide", those of them measured) the baselines' nights,
+# BENCH_STATE_NIGHTS (default "wide", those of them measured) the nights also added to a new
+# analysis state (3 runs each), BENCH_BASELINE_NIGHTS (default "3000 wide", those of them
+# measured) the baselines' nights,
 # BENCH_BASELINE_RUNS (default 3) the baselines' runs per night and fit.
 # With AXSIFT_BEFORE=/path/to/an/older/axsift, that build is measured in the same run,
 # alternating with this one run by run, and the ratio of the medians printed.
@@ -55,11 +57,11 @@ make_night() {
   "$axsift" -q simulate --scenario "$work/night$name.toml" --out "$night"
 }
 
-# Reduces NIGHT with BUILD into a new folder OUT (an earlier one removed first, untimed);
-# prints "seconds peak_kb".
+# Reduces NIGHT with BUILD into a new folder OUT (an earlier one removed first, untimed), with
+# any further arguments; prints "seconds peak_kb".
 reduce_fresh() {
   rm -rf "$2"
-  measure "$1" -q reduce --config "$root/pipeline.toml" --out "$2" "$3"
+  measure "$1" -q reduce --config "$root/pipeline.toml" --out "$2" "$3" "${@:4}"
 }
 
 # Runs of each build per night (hot, alternating with the earlier build if given).
@@ -97,6 +99,25 @@ print(f"{text} | after 12 s idle {ti:5.2f} s {n/ti/1e6:6.1f} M bins/s peak {ki/1
 if before:
     med_before, text = line("before", before)
     print(f"{text} | this build {med_before/med:4.2f}x faster (medians)")
+PY
+done
+
+# The same nights added to a new analysis state (the first morning of a campaign), which
+# streams the night into the state's sums and writes the span's outputs tile by tile.
+for name in ${BENCH_STATE_NIGHTS:-wide}; do
+  [ -n "${hot[$name]:-}" ] || continue
+  runs=()
+  for _ in 1 2 3; do
+    rm -rf "$work/state$name"
+    runs+=("$(reduce_fresh "$axsift" "$work/outstate$name" "$work/night$name.h5" --state "$work/state$name")")
+  done
+  python3 - "$name" "$(steps_of "$name")" "${runs[@]}" <<'PY'
+import statistics, sys
+name, steps = sys.argv[1], int(sys.argv[2])
+runs = [tuple(map(float, r.split())) for r in sys.argv[3:]]
+t = statistics.median(r[0] for r in runs)
+kb = max(r[1] for r in runs)
+print(f"axsift {name:>5} into a new state: median {t:5.2f} s {steps*32768/t/1e6:6.1f} M bins/s ({len(runs)} runs), peak {kb/1024:4.0f} MB")
 PY
 done
 
