@@ -70,7 +70,9 @@ impl ExclusionColumns {
         }
     }
 
-    fn envelope(&self) -> Vec<Column> {
+    /// The columns to draw: the mass of each one's middle point, its largest excluded limit
+    /// (None: no excluded point) and whether it holds a point not excluded.
+    pub fn envelope(&self) -> Vec<Column> {
         (0..self.mass_uev.len()).map(|c| (self.mass_uev[c], Some(self.worst[c]).filter(|w| w.is_finite()), self.open[c])).collect()
     }
 }

@@ -2,8 +2,9 @@
 //! reduction wrote (`summary.json` and `results.h5`), so both paths draw the same page.
 
 use super::diagnostics::{self, StepDiagnostics};
+use super::plots::GrandDigest;
 use crate::calib::Calibration;
-use crate::limits::Limits;
+use crate::limits::{ExclusionColumns, Limits};
 use crate::output::Provenance;
 use crate::pipeline::Reduction;
 use serde::Deserialize;
@@ -20,8 +21,8 @@ pub struct ReportData {
     pub rf_start_hz: f64,
     /// RF bin width, Hz.
     pub bin_width_hz: f64,
-    /// The grand spectrum (NaN = no data), sigma.
-    pub grand: Vec<f64>,
+    /// What the figures draw of the grand spectrum.
+    pub grand: GrandDigest,
     /// Per candidate (same order as `summary.candidates`): implied |g|/g_ref and the SNR a
     /// reference axion has there (with a calibration only).
     pub implied: Vec<Option<(f64, f64)>>,
@@ -159,8 +160,8 @@ pub struct LimitRangeView {
 /// The exclusion curve.
 #[derive(Debug, Clone)]
 pub struct LimitView {
-    /// (axion mass in micro-eV, limit on |g_agg| in GeV^-1; NaN = not excluded), per bin.
-    pub points: Vec<(f64, f64)>,
+    /// The limit on |g_agg| against axion mass, per pixel column.
+    pub columns: ExclusionColumns,
     /// Signal attenuation the limits use.
     pub eta: f64,
 }
@@ -185,10 +186,13 @@ impl ReportData {
             summary,
             rf_start_hz: sp.rf_start_hz,
             bin_width_hz: sp.bin_width_hz,
-            grand: sp.grand.clone(),
+            grand: GrandDigest::of(&sp.grand, sp.rf_start_hz, sp.bin_width_hz),
             implied,
             steps: diagnostics::measure(plan, runs),
-            limits: limits.map(|l| LimitView { points: l.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev.abs())).collect(), eta: l.assumptions.eta }),
+            limits: limits.map(|l| {
+                let points: Vec<(f64, f64)> = l.bins.iter().map(|b| (b.mass_uev, b.g_agg_per_gev.abs())).collect();
+                LimitView { columns: ExclusionColumns::of_points(&points), eta: l.assumptions.eta }
+            }),
             calibration: calibration.cloned(),
             config_text: config_text.to_string(),
             state: None,
@@ -214,25 +218,42 @@ impl ReportData {
         let summary: SummaryView = serde_json::from_str(&text).with_context(|| format!("{}: not a summary written by reduce", summary_path.display()))?;
         let results = dir.join("results.h5");
         let file = hdf5::File::open(&results).with_context(|| format!("cannot open {}", results.display()))?;
-        let read = |name: &str| -> anyhow::Result<Vec<f64>> {
-            Ok(file.dataset(name).with_context(|| format!("{}: dataset `{name}`", results.display()))?.read_raw::<f64>()?)
+        let dataset = |name: &str| file.dataset(name).with_context(|| format!("{}: dataset `{name}`", results.display()));
+        // Bins `r` of a per-bin dataset (every one is read in runs: a wide night's would not
+        // fit in the report's memory whole).
+        let read = |ds: &hdf5::Dataset, r: std::ops::Range<usize>| -> anyhow::Result<Vec<f64>> {
+            Ok(ds.read_slice_1d::<f64, _>(r).with_context(|| format!("{}: dataset `{}`", results.display(), ds.name()))?.to_vec())
         };
-        let grand = read("grand")?;
+        let grand_ds = dataset("grand")?;
+        let n_bins = grand_ds.size();
         let axis = |name: &str| -> anyhow::Result<f64> {
             file.attr(name).and_then(|a| a.read_scalar::<f64>()).with_context(|| format!("{}: attribute `{name}`", results.display()))
         };
         let (rf_start_hz, bin_width_hz) = (axis("rf_start_hz")?, axis("bin_width_hz")?);
+        let grand = GrandDigest::read(n_bins, rf_start_hz, bin_width_hz, crate::output::CHUNK_BINS, |r| read(&grand_ds, r))?;
         let config_text = file.attr("config_text").and_then(|a| a.read_scalar::<hdf5::types::VarLenUnicode>()).map(|s| s.to_string()).unwrap_or_default();
         let eta = summary.calibration.as_ref().map(|c| c.eta);
         let implied = match eta {
             Some(eta) => {
-                let (amp, sigma_a, spread) = (read("amplitude")?, read("sigma_a")?, read("predicted_spread")?);
-                summary.candidates.iter().map(|c| Some(((amp[c.peak_bin].max(0.0) / eta).sqrt(), eta / (sigma_a[c.peak_bin] * spread[c.peak_bin])))).collect()
+                let (amp, sigma_a, spread) = (dataset("amplitude")?, dataset("sigma_a")?, dataset("predicted_spread")?);
+                let at = |ds: &hdf5::Dataset, j: usize| read(ds, j..j + 1).map(|v| v[0]);
+                let implied_at = |j: usize| -> anyhow::Result<Option<(f64, f64)>> {
+                    Ok(Some(((at(&amp, j)?.max(0.0) / eta).sqrt(), eta / (at(&sigma_a, j)? * at(&spread, j)?))))
+                };
+                summary.candidates.iter().map(|c| implied_at(c.peak_bin)).collect::<anyhow::Result<_>>()?
             }
             None => vec![None; summary.candidates.len()],
         };
         let limits = match (file.link_exists("mass_uev"), eta) {
-            (true, Some(eta)) => Some(LimitView { points: read("mass_uev")?.into_iter().zip(read("limit_g_agg_per_gev")?).collect(), eta }),
+            (true, Some(eta)) => {
+                let (mass, g_agg) = (dataset("mass_uev")?, dataset("limit_g_agg_per_gev")?);
+                let mut columns = ExclusionColumns::new(n_bins);
+                for first in (0..n_bins).step_by(crate::output::CHUNK_BINS) {
+                    let r = first..(first + crate::output::CHUNK_BINS).min(n_bins);
+                    columns.add(first, read(&mass, r.clone())?.into_iter().zip(read(&g_agg, r)?));
+                }
+                Some(LimitView { columns, eta })
+            }
             _ => None,
         };
         drop(file);

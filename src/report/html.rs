@@ -315,7 +315,7 @@ fn steps(out: &mut String, d: &ReportData, cut: &HashSet<usize>) -> anyhow::Resu
 fn grand(out: &mut String, d: &ReportData) -> anyhow::Result<()> {
     let s = &d.summary;
     let marks: Vec<(f64, f64)> = s.candidates.iter().map(|c| (c.frequency_hz, c.significance)).collect();
-    out.push_str(&plots::grand_spectrum(d.rf_start_hz, d.bin_width_hz, &d.grand, s.threshold, &marks)?);
+    out.push_str(&plots::grand_spectrum(&d.grand, s.threshold, &marks)?);
     let _ = write!(
         out,
         "<p class=\"legend\">{}{}{}</p><p class=\"note\">{} bins drawn as the minimum and maximum of each pixel column. \
@@ -462,7 +462,7 @@ fn across_nights(out: &mut String, d: &ReportData) {
 
 fn exclusion(out: &mut String, d: &ReportData) -> anyhow::Result<()> {
     let Some(l) = &d.limits else { return Ok(()) };
-    out.push_str(&plots::exclusion(&l.points)?);
+    out.push_str(&plots::exclusion(&l.columns)?);
     let _ = write!(
         out,
         "<p class=\"legend\">{}{}{}</p>",

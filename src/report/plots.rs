@@ -42,50 +42,144 @@ fn svg(width: u32, height: u32, f: impl FnOnce(&Area) -> anyhow::Result<()>) -> 
     Ok(text.replacen(&fixed, "class=\"figure\" role=\"img\"", 1))
 }
 
-/// Min/max per pixel column of `(x, y)` points sorted by x; runs of columns without a finite
-/// value split the result into separate segments. Each segment alternates (x, min), (x, max).
+/// Min/max per pixel column of `(x, y)` points sorted by x;
+/// runs of columns without a finite value split the result into separate segments. Each segment alternates (x, min), (x, max).
 pub fn column_envelope(points: &[(f64, f64)], columns: usize) -> Vec<Vec<(f64, f64)>> {
     let (Some(first), Some(last)) = (points.first(), points.last()) else { return Vec::new() };
-    let (x0, span) = (first.0, (last.0 - first.0).max(f64::MIN_POSITIVE));
-    let columns = columns.max(1);
-    let mut lo = vec![f64::INFINITY; columns];
-    let mut hi = vec![f64::NEG_INFINITY; columns];
-    let mut seen = vec![false; columns];
+    let mut envelope = Envelope::new(first.0, last.0, columns);
     for &(x, y) in points {
-        let c = (((x - x0) / span) * (columns - 1) as f64).round() as usize;
-        let c = c.min(columns - 1);
+        envelope.add(x, y);
+    }
+    envelope.segments()
+}
+
+/// The min/max per pixel column of points with x from `x0` to `x_last`, taken in one at a
+/// time (see [`column_envelope`]).
+#[derive(Debug, Clone)]
+struct Envelope {
+    x0: f64,
+    span: f64,
+    lo: Vec<f64>,
+    hi: Vec<f64>,
+    seen: Vec<bool>,
+}
+
+impl Envelope {
+    fn new(x0: f64, x_last: f64, columns: usize) -> Self {
+        let columns = columns.max(1);
+        Self {
+            x0,
+            span: (x_last - x0).max(f64::MIN_POSITIVE),
+            lo: vec![f64::INFINITY; columns],
+            hi: vec![f64::NEG_INFINITY; columns],
+            seen: vec![false; columns],
+        }
+    }
+
+    fn add(&mut self, x: f64, y: f64) {
+        let columns = self.lo.len();
+        let c = ((((x - self.x0) / self.span) * (columns - 1) as f64).round() as usize).min(columns - 1);
         if y.is_finite() {
-            lo[c] = lo[c].min(y);
-            hi[c] = hi[c].max(y);
-            seen[c] = true;
+            self.lo[c] = self.lo[c].min(y);
+            self.hi[c] = self.hi[c].max(y);
+            self.seen[c] = true;
         }
     }
-    let mut segments = vec![Vec::new()];
-    for c in 0..columns {
-        if seen[c] {
-            let x = x0 + span * c as f64 / (columns - 1).max(1) as f64;
-            let seg = segments.last_mut().expect("never empty");
-            seg.push((x, lo[c]));
-            if hi[c] > lo[c] {
-                seg.push((x, hi[c]));
+
+    fn segments(&self) -> Vec<Vec<(f64, f64)>> {
+        let columns = self.lo.len();
+        let mut segments = vec![Vec::new()];
+        for c in 0..columns {
+            if self.seen[c] {
+                let x = self.x0 + self.span * c as f64 / (columns - 1).max(1) as f64;
+                let seg = segments.last_mut().expect("never empty");
+                seg.push((x, self.lo[c]));
+                if self.hi[c] > self.lo[c] {
+                    seg.push((x, self.hi[c]));
+                }
+            } else if !segments.last().is_some_and(|s| s.is_empty()) {
+                segments.push(Vec::new());
             }
-        } else if !segments.last().is_some_and(|s| s.is_empty()) {
-            segments.push(Vec::new());
         }
+        segments.retain(|s| !s.is_empty());
+        segments
     }
-    segments.retain(|s| !s.is_empty());
-    segments
+}
+
+/// Width of the grand-spectrum figure, pixels.
+const GRAND_WIDTH: u32 = 1100;
+/// Width of a histogram bin, sigma.
+const HISTOGRAM_BIN: f64 = 0.25;
+
+/// What the report draws of a grand spectrum, gathered in two passes over its values in
+/// consecutive runs, so the values never need to be in memory together: the min/max per
+/// pixel column (MHz, sigma) and the histogram of the finite values in bins of 0.25 sigma
+/// from the lowest value (at most -5, at least -12) to the highest (at least 5, at most 40;
+/// values beyond fall into the end bins).
+#[derive(Debug, Clone)]
+pub struct GrandDigest {
+    segments: Vec<Vec<(f64, f64)>>,
+    /// RF frequency of the first and last bin, MHz.
+    x_range_mhz: (f64, f64),
+    /// Lower edge of the first histogram bin, sigma.
+    histogram_start: f64,
+    counts: Vec<u64>,
+    n_finite: usize,
+}
+
+impl GrandDigest {
+    /// The digest of `n` bins, bin j at `rf_start_hz + j * bin_width_hz`, whose values
+    /// `read(range)` returns run by run (each call a run of at most `run_bins` bins, twice
+    /// over the whole range).
+    pub fn read(
+        n: usize,
+        rf_start_hz: f64,
+        bin_width_hz: f64,
+        run_bins: usize,
+        mut read: impl FnMut(std::ops::Range<usize>) -> anyhow::Result<Vec<f64>>,
+    ) -> anyhow::Result<Self> {
+        let runs = || (0..n.div_ceil(run_bins.max(1))).map(move |r| r * run_bins..((r + 1) * run_bins).min(n));
+        let x = |j: usize| (rf_start_hz + j as f64 * bin_width_hz) / 1e6;
+        let (mut lo, mut hi) = (-5.0f64, 5.0f64);
+        for r in runs() {
+            for v in read(r)?.into_iter().filter(|v| v.is_finite()) {
+                (lo, hi) = (lo.min(v), hi.max(v));
+            }
+        }
+        let (lo, hi) = (lo.max(-12.0), hi.min(40.0));
+        let start = (lo / HISTOGRAM_BIN).floor() * HISTOGRAM_BIN;
+        let n_hist = (((hi - start) / HISTOGRAM_BIN).ceil() as usize).max(1) + 1;
+        let mut counts = vec![0u64; n_hist];
+        let mut envelope = Envelope::new(x(0), x(n.saturating_sub(1)), GRAND_WIDTH as usize - 90);
+        let mut n_finite = 0;
+        for r in runs() {
+            let first = r.start;
+            for (i, v) in read(r)?.into_iter().enumerate() {
+                envelope.add(x(first + i), v);
+                if v.is_finite() {
+                    counts[(((v - start) / HISTOGRAM_BIN).floor().max(0.0) as usize).min(n_hist - 1)] += 1;
+                    n_finite += 1;
+                }
+            }
+        }
+        let segments = if n == 0 { Vec::new() } else { envelope.segments() };
+        Ok(Self { segments, x_range_mhz: (x(0), x(n.saturating_sub(1))), histogram_start: start, counts, n_finite })
+    }
+
+    /// The digest of values held in memory.
+    pub fn of(grand: &[f64], rf_start_hz: f64, bin_width_hz: f64) -> Self {
+        Self::read(grand.len(), rf_start_hz, bin_width_hz, 1 << 16, |r| Ok(grand[r].to_vec())).expect("reading a slice cannot fail")
+    }
 }
 
 /// The grand spectrum (MHz, sigma) with the threshold line and the candidates marked.
-pub fn grand_spectrum(freq_start_hz: f64, bin_width_hz: f64, grand: &[f64], threshold: Option<f64>, candidates: &[(f64, f64)]) -> anyhow::Result<String> {
-    const W: u32 = 1100;
-    let points: Vec<(f64, f64)> = grand.iter().enumerate().map(|(j, &g)| ((freq_start_hz + j as f64 * bin_width_hz) / 1e6, g)).collect();
-    let segments = column_envelope(&points, W as usize - 90);
+pub fn grand_spectrum(digest: &GrandDigest, threshold: Option<f64>, candidates: &[(f64, f64)]) -> anyhow::Result<String> {
+    const W: u32 = GRAND_WIDTH;
+    let segments = &digest.segments;
     let finite = || segments.iter().flatten().map(|p| p.1);
     let y_hi = finite().fold(threshold.unwrap_or(4.0) + 1.0, f64::max) + 0.5;
     let y_lo = finite().fold(-5.0, f64::min) - 0.5;
-    let (x_lo, x_hi) = (points.first().map_or(0.0, |p| p.0), points.last().map_or(1.0, |p| p.0));
+    let (x_lo, x_hi) = digest.x_range_mhz;
     svg(W, 420, |area| {
         let mut chart = ChartBuilder::on(area)
             .margin(12)
@@ -114,19 +208,12 @@ pub fn grand_spectrum(freq_start_hz: f64, bin_width_hz: f64, grand: &[f64], thre
 
 /// Histogram of the finite grand-spectrum values (log counts) against the unit normal
 /// expected for the same number of bins.
-pub fn histogram(grand: &[f64], threshold: Option<f64>) -> anyhow::Result<String> {
-    const BIN: f64 = 0.25;
-    let values: Vec<f64> = grand.iter().copied().filter(|v| v.is_finite()).collect();
-    let lo = values.iter().copied().fold(-5.0, f64::min).max(-12.0);
-    let hi = values.iter().copied().fold(5.0, f64::max).min(40.0);
-    let (start, n_hist) = ((lo / BIN).floor() * BIN, (((hi - (lo / BIN).floor() * BIN) / BIN).ceil() as usize).max(1) + 1);
-    let mut counts = vec![0u64; n_hist];
-    for v in &values {
-        let k = (((v - start) / BIN).floor().max(0.0) as usize).min(n_hist - 1);
-        counts[k] += 1;
-    }
+pub fn histogram(digest: &GrandDigest, threshold: Option<f64>) -> anyhow::Result<String> {
+    const BIN: f64 = HISTOGRAM_BIN;
+    let (start, counts) = (digest.histogram_start, &digest.counts);
+    let n_hist = counts.len();
     let normal = Normal::standard();
-    let n = values.len() as f64;
+    let n = digest.n_finite as f64;
     let expected: Vec<(f64, f64)> =
         (0..=(n_hist * 8)).map(|i| start + i as f64 * BIN / 8.0).map(|x| (x, n * BIN * normal.pdf(x))).filter(|p| p.1 >= 0.05).collect();
     let y_hi = counts.iter().copied().max().unwrap_or(1).max(1) as f64 * 3.0;
@@ -249,12 +336,11 @@ pub fn step_panel(d: &StepDiagnostics, cut: &std::collections::HashSet<usize>, q
 
 /// The exclusion curve: per pixel column the weakest limit on |g_agg| (columns holding a bin
 /// that is not excluded become gaps), with the KSVZ and DFSZ lines.
-pub fn exclusion(points: &[(f64, f64)]) -> anyhow::Result<String> {
+pub fn exclusion(columns: &crate::limits::ExclusionColumns) -> anyhow::Result<String> {
     const W: u32 = 1100;
-    let columns = W as usize - 100;
-    let per = points.len().div_ceil(columns).max(1);
-    let reduced: Vec<(f64, Option<f64>)> =
-        points.chunks(per).map(|c| (c[c.len() / 2].0, c.iter().all(|p| p.1.is_finite()).then(|| c.iter().map(|p| p.1).fold(0.0, f64::max)))).collect();
+    // Per pixel column: the mass of its middle bin and its largest limit over the excluded
+    // bins (None: none excluded), as the exclusion plot draws it.
+    let reduced: Vec<(f64, Option<f64>)> = columns.envelope().into_iter().map(|(m, worst, _)| (m, worst)).collect();
     let mut segments = vec![Vec::new()];
     for &(m, g) in &reduced {
         match g {
