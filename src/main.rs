@@ -524,7 +524,8 @@ fn reduce_into_state(
     };
     let mut results = outputs.results_sink();
     let mut write_failure = None;
-    let added = axsift::state::add_night(&mut st, &plan, runs, &mut |block| {
+    let bar = progress::Bar::new(quiet, "reducing", "steps");
+    let added = axsift::state::add_night(&mut st, &plan, runs, &|done, total| bar.update(done, total), &mut |block| {
         let bins = output::Bins::of_block(block);
         if let Some(tally) = tally.as_mut() {
             tally.add(&bins)?;
@@ -536,6 +537,7 @@ fn reduce_into_state(
             message
         })
     });
+    bar.finish();
     let update = match (added, write_failure) {
         (Err(_), Some(message)) => return Err(Failure::Run(anyhow::anyhow!(message))),
         (added, _) => added.map_err(|e| bad(e.to_string()))?,

@@ -633,7 +633,7 @@ fn a_night_streamed_into_a_staged_state_equals_the_night_reduced_whole() {
         let load = |d: &Path| State::load(d).unwrap().unwrap_or_else(|| State::with_block_bins(state::plan_hash(&plan), 1000));
         let (mut streamed, mut whole_st) = (load(&streamed_dir), load(&whole_dir));
         streamed.stage_in(&streamed_dir).unwrap();
-        let a = state::collecting_span(|out| state::add_night(&mut streamed, &plan, std::slice::from_ref(n), out)).unwrap();
+        let a = state::collecting_span(|out| state::add_night(&mut streamed, &plan, std::slice::from_ref(n), &|_, _| {}, out)).unwrap();
         let reduced = state::reduce_night(&plan, std::slice::from_ref(n)).unwrap();
         let b = state::collecting_span(|out| state::add_reduced_night(&mut whole_st, &plan, reduced, out)).unwrap();
         if k == 0 {

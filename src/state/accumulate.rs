@@ -53,7 +53,7 @@ pub fn plan_hash(plan: &Plan) -> String {
 /// into its spectrum ([`collecting_span`]). The state is changed in memory only; save it
 /// with [`State::save`].
 pub fn add_nights(state: &mut State, plan: &Plan, nights: &[Vec<PathBuf>]) -> Result<Vec<Update>, StateError> {
-    nights.iter().map(|paths| collecting_span(|out| add_night(state, plan, paths, out))).collect()
+    nights.iter().map(|paths| collecting_span(|out| add_night(state, plan, paths, &|_, _| {}, out))).collect()
 }
 
 /// Runs `update` (an [`add_night`] or [`add_reduced_night`]) with the tiles it hands out
@@ -136,7 +136,14 @@ fn check_new(state: &State, inputs: &[(String, String)]) -> Result<(), StateErro
 /// ([`crate::pipeline::reduce_streamed_profiled`]) into the sums, its most significant
 /// samples set aside on disk until its IF profile tells which are IF-line samples. On an
 /// error the state in memory may hold part of the night: load it again from its folder.
-pub fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf], out: &mut dyn FnMut(&Block) -> Result<(), String>) -> Result<Update, StateError> {
+/// `progress` is called with (steps done, total) as the night streams through.
+pub fn add_night(
+    state: &mut State,
+    plan: &Plan,
+    paths: &[PathBuf],
+    progress: &dyn Fn(usize, usize),
+    out: &mut dyn FnMut(&Block) -> Result<(), String>,
+) -> Result<Update, StateError> {
     check_config(state, plan)?;
     let inputs = hash_inputs(plan, paths)?;
     check_new(state, &inputs)?;
@@ -154,7 +161,7 @@ pub fn add_night(state: &mut State, plan: &Plan, paths: &[PathBuf], out: &mut dy
     let reduced = crate::pipeline::reduce_streamed_profiled(
         &front,
         paths,
-        &|_, _| {},
+        progress,
         &mut |block, top| {
             Ok(Some((block.first_bin, block.combined[..block.len].to_vec(), block.combined_sigma[..block.len].to_vec(), block.coverage.clone(), top)))
         },
