@@ -96,16 +96,21 @@ impl SumsMerger {
                 slot.insert(st.block(index)?);
             }
         }
-        for (k, ((&c, &s), &n)) in combined.iter().zip(sigma).zip(coverage).enumerate() {
-            if c.is_finite() && s.is_finite() && s > 0.0 {
-                let bin = bins.start + k as i64;
-                let sums = self.open.get_mut(&st.block_of(bin)).expect("opened above");
-                let j = (bin - sums.first_bin) as usize;
-                let w = 1.0 / (s * s);
-                sums.weight[j] += w;
-                sums.weighted_sum[j] += w * c;
-                sums.coverage[j] += n;
-                self.coverage.set(first + k);
+        for (&index, sums) in self.open.range_mut(st.block_of(bins.start)..=st.block_of(bins.end - 1)) {
+            // The night's bins in this block: k0..k1 of these, j0.. of the block.
+            let block = st.block_range(index);
+            let (lo, hi) = (bins.start.max(block.start), bins.end.min(block.end));
+            let (k0, k1, j0) = ((lo - bins.start) as usize, (hi - bins.start) as usize, (lo - sums.first_bin) as usize);
+            for (i, k) in (k0..k1).enumerate() {
+                let (c, s) = (combined[k], sigma[k]);
+                if c.is_finite() && s.is_finite() && s > 0.0 {
+                    let j = j0 + i;
+                    let w = 1.0 / (s * s);
+                    sums.weight[j] += w;
+                    sums.weighted_sum[j] += w * c;
+                    sums.coverage[j] += coverage[k];
+                    self.coverage.set(first + k);
+                }
             }
         }
         // Blocks ending within these bins: no later night bin falls in them.
