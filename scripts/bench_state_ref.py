@@ -13,13 +13,14 @@ touches only the night's span of them:
   add it into the campaign's sums over the night's span; the grand spectrum (the Maxwellian
   lineshape filter of baseline_numpy.py, the lineshape at the centre of the recomputed range,
   divided by the null spread predicted from the lineshape and Savitzky-Golay kernels,
-  ||L - h*L|| / ||L||) over the span and one kernel length on either side; bins above 3.355 (= 5 - z_0.95) and
-  their runs of adjacent bins (one candidate each) written with the range's grand spectrum to
-  --out (HDF5, written to a temporary name and renamed); flush the sums.
+  ||L - h*L|| / ||L||) over the span and one kernel length on either side; bins above 3.355
+  (= 5 - z_0.95) and their runs of adjacent bins (one candidate each) written with the
+  range's grand spectrum to --out (HDF5, written to a temporary name and renamed); flush the
+  sums.
 
-It does not track candidates across nights, make an IF profile or test for interference, keep
-a generation or commit protocol (the sums are changed in place), hash the input or compute
-limits. Subcommands:
+It does not track candidates across nights, make an IF profile or test for interference, cut
+steps by their residual spread, keep a generation or commit protocol (the sums are changed in
+place), hash the input or compute limits. Subcommands:
 
   init FOLDER --bins N --origin-hz F --like RUN --window W   the campaign's files, untimed:
       every bin seen by one step centred on it with RUN's first step's T_sys, Q_L, beta and
