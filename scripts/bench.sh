@@ -13,7 +13,8 @@
 # Usage: bash scripts/bench.sh [work dir, default /tmp/axsift-bench]
 # Environment: BENCH_NIGHTS (default "300 3000 10000 wide campaign") chooses the nights;
 # "campaign" runs scripts/bench_state.sh last (nightly updates of 1e7- and 1e8-bin states,
-# RUNS=3 there, against the same nights reduced without a state; it has no numpy counterpart),
+# RUNS=3 there, against the same nights reduced without a state and the numpy/scipy reference
+# scripts/bench_state_ref.py on campaigns of the same sizes),
 # BENCH_STATE_NIGHTS (default "wide", those of them measured) the nights also added to a new
 # analysis state (3 runs each), BENCH_BASELINE_NIGHTS (default "3000 wide", those of them
 # measured) the baselines' nights,

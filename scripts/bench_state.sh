@@ -7,7 +7,15 @@
 # update starts from a hard-linked copy of the built state (an update never changes a file
 # in place: it writes new block and candidate files and renames a new state.json), so every
 # run sees the same state. Prints median wall time and peak RSS (/usr/bin/time) of RUNS runs
-# per case, and the same night reduced without a state beside it.
+# per case, and the same night reduced without a state beside it. Then the numpy/scipy
+# reference, scripts/bench_state_ref.py (.venv's pinned numpy/scipy/h5py, scripts/setup.sh
+# checks), on the same nights against campaigns of the same grids: the per-bin sums in three
+# memory-mapped .npy files (20 bytes a bin, 0.2 and 2.0 GB, built once from random sums in
+# seconds), into which an update adds the night and over whose span it recomputes the grand
+# spectrum and the bins above threshold (no candidate tracking, IF profile or commit); each
+# run from the same campaign (the span's sums kept and written back, untimed). Prints its
+# median wall time (Python start-up and imports included), peak RSS, the median of the time
+# the script measures itself, and the ratio of the medians, numpy / axsift, per case.
 #
 #   bash scripts/bench_state.sh            # RUNS=5, work in a temporary folder
 #   RUNS=3 WORK=/tmp/bs bash scripts/bench_state.sh
@@ -15,7 +23,10 @@ set -euo pipefail
 cd "$(dirname "$0")/.."
 export HDF5_USE_FILE_LOCKING=FALSE
 cargo build --release --quiet
+bash scripts/setup.sh checks   # .venv with the pinned numpy/scipy/h5py of the reference
 exe="$PWD/target/release/axsift"
+python="$PWD/.venv/bin/python"
+ref="$PWD/scripts/bench_state_ref.py"
 runs="${RUNS:-5}"
 work="${WORK:-$(mktemp -d)}"
 mkdir -p "$work"
@@ -62,6 +73,7 @@ build() {
 }
 
 median() { sort -g | awk '{v[NR] = $1} END {print v[int((NR + 1) / 2)]}'; }
+declare -A medians   # axsift's median wall time per case, "STEPS STATE"
 
 # measure LABEL STATE NIGHT: median wall time and peak RSS of RUNS updates (STATE empty: no state).
 measure() {
@@ -78,8 +90,44 @@ measure() {
         times+=("$t")
         rss+=("$m")
     done
-    printf '%-34s median %6.2f s (%s)  peak RSS median %4d MB\n' "$1" "$(printf '%s\n' "${times[@]}" | median)" "${times[*]}" \
+    medians["$3 $2"]="$(printf '%s\n' "${times[@]}" | median)"
+    printf '%-34s median %6.2f s (%s)  peak RSS median %4d MB\n' "$1" "${medians["$3 $2"]}" "${times[*]}" \
         $(($(printf '%s\n' "${rss[@]}" | median) / 1024))
+}
+
+# ref_build NAME STATE: the numpy reference's campaign (scripts/bench_state_ref.py init) on the
+# grid of the built axsift state STATE: three memory-mapped .npy files, 20 bytes a bin.
+ref_build() {
+    local dir="$work/$1" t0 grid
+    [ -f "$dir/sums.json" ] && return
+    t0=$(date +%s)
+    grid=$("$python" -c 'import json, sys; s = json.load(open(sys.argv[1])); print(s["rf_origin_hz"], s["grid_bins"][1] - s["grid_bins"][0])' "$work/$2/state.json")
+    read -r origin bins <<<"$grid"
+    "$python" "$ref" init "$dir" --bins "$bins" --origin-hz "$origin" --like "$work/night-1000.h5" --window 31
+    echo "built $1 (numpy reference, $bins bins): $(du -sh "$dir" | cut -f1) on disk, $(($(date +%s) - t0)) s"
+}
+
+# measure_ref LABEL CAMPAIGN NIGHT STATE: median wall time and peak RSS of RUNS reference updates,
+# each from the same campaign (the night's span of the sums kept before and written back after,
+# untimed), and the ratio of the medians to axsift's update of NIGHT into STATE.
+measure_ref() {
+    local times=() rss=() own=() k
+    for ((k = 0; k < runs; k++)); do
+        rm -f "$work/ref-out.h5"
+        "$python" "$ref" save-span "$work/$2" "$3" "$work/ref-span.npz"
+        /usr/bin/time -f "%e %M" -o "$work/time.txt" "$python" "$ref" update "$work/$2" "$3" --window 31 --out "$work/ref-out.h5" >"$work/ref.txt"
+        "$python" "$ref" restore-span "$work/$2" "$work/ref-span.npz"
+        read -r t m <"$work/time.txt"
+        times+=("$t")
+        rss+=("$m")
+        own+=("$(cut -d' ' -f1 "$work/ref.txt")")
+    done
+    local med ours
+    med="$(printf '%s\n' "${times[@]}" | median)"
+    ours="${medians["$3 $4"]}"
+    printf '%-34s median %6.2f s (%s)  peak RSS median %4d MB; in the script %.2f s; numpy / axsift %.1fx\n' "$1" "$med" "${times[*]}" \
+        $(($(printf '%s\n' "${rss[@]}" | median) / 1024)) "$(printf '%s\n' "${own[@]}" | median)" "$(awk -v a="$med" -v b="$ours" 'BEGIN { print a / b }')"
+    echo "    $(cat "$work/ref.txt")"
 }
 
 build state-1e7 20 3907   # 20 nights x 500 096 bins: 1.0e7 RF bins
@@ -96,6 +144,13 @@ for steps in 1000 2000; do
     measure "night $steps steps, 1e7-bin state" state-1e7 "$work/night-$steps.h5"
     measure "night $steps steps, 1e8-bin state" state-1e8 "$work/night-$steps.h5"
 done
+ref_build ref-1e7 state-1e7
+ref_build ref-1e8 state-1e8
+for steps in 1000 2000; do
+    measure_ref "numpy $steps steps, 1e7-bin campaign" ref-1e7 "$work/night-$steps.h5" state-1e7
+    measure_ref "numpy $steps steps, 1e8-bin campaign" ref-1e8 "$work/night-$steps.h5" state-1e8
+done
+rm -f "$work/ref-out.h5" "$work/ref-span.npz" "$work/ref.txt"
 rm -rf "$work/run" "$work/run-out"
 /usr/bin/time -f "%e %M" -o "$work/time.txt" "$exe" -q export --config "$work/bench.toml" --state "$work/state-1e7" --out "$work/campaign.h5"
 read -r t m <"$work/time.txt"
