@@ -148,6 +148,7 @@ pub fn add_night(
     let inputs = hash_inputs(plan, paths)?;
     check_new(state, &inputs)?;
     let front = up_to_combine(plan)?;
+    let started = std::time::Instant::now();
     let (readers, info) = crate::pipeline::open_night(paths).map_err(|e| refused(e.to_string()))?;
     let n_steps: Vec<usize> = readers.iter().map(|r| r.steps().len()).collect();
     drop(readers);
@@ -179,6 +180,7 @@ pub fn add_night(
         (reduced, _) => reduced.map_err(|e| refused(e.to_string()))?,
     };
     let coverage = merger.finish(state)?;
+    tracing::debug!("night streamed into the state's sums in {:.2} s", started.elapsed().as_secs_f64());
     let in_line = night_red.if_scan.in_line();
     if in_line.contains(&true) {
         let (sigma, first) = (std::mem::take(&mut night_red.if_scan.if_profile_sigma), night_bins.start);
@@ -267,7 +269,9 @@ fn finish_update(
     let (blocks, mut tracked) = state.take_candidates(first_bin..first_bin + span_bins, reach)?;
     let (origin_hz, bin_width_hz) = (state.rf_origin_hz, state.bin_width_hz);
     let tracked_bins: Vec<i64> = tracked.iter().map(|c| ((c.frequency_hz + bin_width_hz / 2.0 - origin_hz) / bin_width_hz).round() as i64).collect();
+    let started = std::time::Instant::now();
     let span = tiler.pass(state, tiles, &tracked_bins, reach as usize, out)?;
+    tracing::debug!("span of {span_bins} bins recomputed and handed out in {:.2} s", started.elapsed().as_secs_f64());
     let covered_here = |j: usize| covered(first_bin + j as i64);
     // A candidate that only the spectrum without the IF-line samples shows (a negative line
     // sample hid it) has no positive amplitude in the full one: its amplitude there counts.
