@@ -300,10 +300,12 @@ fn csv_rows(path: &Path) -> Vec<Vec<String>> {
 /// spectrum (every candidate blocked; its formula is checked against the written-out method
 /// in `tests/limits.rs`). The block-wise `reduce --calibration` must give, with the night's
 /// runs above threshold crossing block edges:
-/// - in results.h5, per bin: `mass_uev` equal bit for bit (double precision), and each of
-///   the four limits the double-precision value rounded once to nearest single precision
-///   (bit for bit, NaN exactly where the bin is not excluded), so within 2^-24 of it (IEEE
-///   754 binary32 unit roundoff, as for the other datasets above);
+/// - in results.h5, per bin: `limit_g_gamma` the double-precision limit rounded once to
+///   nearest single precision (bit for bit, NaN exactly where the bin is not excluded), so
+///   within 2^-24 of it (IEEE 754 binary32 unit roundoff, as for the other datasets above);
+///   the mass, |g_agg| and the limits relative to KSVZ and DFSZ derived from it with the
+///   dataset's attributes equal the in-memory ones to that rounding; no other per-bin limit
+///   dataset (24 bytes a bin in all);
 /// - limits.csv: every bin's row as formatted from the in-memory limits;
 /// - limit_blocks.csv: per 1 MHz block counted from the first bin's line start (10 000 bins
 ///   of 100 Hz, so blocks cross the 65 536-bin edges), the excluded fraction, the upper
@@ -325,28 +327,34 @@ fn calibrated_block_wise_outputs_equal_the_in_memory_limits() {
     reduce_calibrated(&night, &cal_path, &out, 2);
 
     let file = hdf5::File::open(out.join("results.h5")).unwrap();
-    let mass: Vec<f64> = file.dataset("mass_uev").unwrap().read_raw().unwrap();
-    assert_eq!(bits(&mass), bits(&limits.bins.iter().map(|b| b.mass_uev).collect::<Vec<_>>()), "mass_uev");
-    let columns: [(&str, LimitOf); 4] = [
-        ("limit_g_gamma", |b| b.g_gamma),
-        ("limit_g_agg_per_gev", |b| b.g_agg_per_gev.abs()),
-        ("limit_rel_ksvz", |b| b.rel_ksvz),
-        ("limit_rel_dfsz", |b| b.rel_dfsz),
-    ];
-    for (name, of) in columns {
-        let ds = file.dataset(name).unwrap();
-        assert_eq!(ds.dtype().unwrap().size(), 4, "{name} is stored in single precision");
-        let stored: Vec<f32> = ds.read_raw().unwrap();
-        assert_eq!(stored.len(), n, "{name}: bins");
-        for (j, (&s, b)) in stored.iter().zip(&limits.bins).enumerate() {
-            let x = of(b);
-            assert_eq!(s.is_nan(), !b.excluded, "{name} bin {j}: NaN exactly where not excluded");
-            assert!(s.to_bits() == (x as f32).to_bits() || (s.is_nan() && x.is_nan()), "{name} bin {j}: stored {s}, {x} rounds to {}", x as f32);
-            if x.is_finite() {
-                assert!((f64::from(s) - x).abs() <= F32_UNIT_ROUNDOFF * x.abs(), "{name} bin {j}: {s} vs {x}");
+    let ds = file.dataset("limit_g_gamma").unwrap();
+    assert_eq!(ds.dtype().unwrap().size(), 4, "limit_g_gamma is stored in single precision");
+    let stored: Vec<f32> = ds.read_raw().unwrap();
+    assert_eq!(stored.len(), n, "limit_g_gamma: bins");
+    let attr = |name: &str| ds.attr(name).unwrap().read_scalar::<f64>().unwrap();
+    let (per_hz, g_agg_per_uev, ksvz, dfsz) = (attr("mass_uev_per_hz"), attr("g_agg_per_gev_per_uev"), attr("g_gamma_ksvz"), attr("g_gamma_dfsz"));
+    let axis = |name: &str| file.attr(name).unwrap().read_scalar::<f64>().unwrap();
+    let (rf_start_hz, bin_width_hz) = (axis("rf_start_hz"), axis("bin_width_hz"));
+    for (j, (&s, b)) in stored.iter().zip(&limits.bins).enumerate() {
+        let x = b.g_gamma;
+        assert_eq!(s.is_nan(), !b.excluded, "bin {j}: NaN exactly where not excluded");
+        assert!(s.to_bits() == (x as f32).to_bits() || (s.is_nan() && x.is_nan()), "bin {j}: stored {s}, {x} rounds to {}", x as f32);
+        // The quantities the attributes derive, from the stored limit: the mass to double
+        // precision (a product and a sum), the rest to the limit's single-precision rounding.
+        let mass = per_hz * (rf_start_hz + (j as f64 - 0.5) * bin_width_hz);
+        assert!((mass - b.mass_uev).abs() <= 1e-14 * b.mass_uev, "bin {j}: mass {mass} vs {}", b.mass_uev);
+        if x.is_finite() {
+            let g = f64::from(s);
+            assert!((g - x).abs() <= F32_UNIT_ROUNDOFF * x.abs(), "bin {j}: {s} vs {x}");
+            for (derived, want) in [(g_agg_per_uev * g * mass, b.g_agg_per_gev.abs()), (g / ksvz, b.rel_ksvz), (g / dfsz, b.rel_dfsz)] {
+                assert!((derived - want).abs() <= 2.0 * F32_UNIT_ROUNDOFF * want.abs(), "bin {j}: derived {derived} vs {want}");
             }
         }
     }
+    // The per-bin datasets: six of the reduction and the limit, 4 bytes a bin each.
+    let per_bin: Vec<String> = file.member_names().unwrap().into_iter().filter(|m| file.dataset(m).is_ok_and(|d| d.size() == n)).collect();
+    assert_eq!(per_bin.len(), 7, "{per_bin:?}");
+    assert!(per_bin.iter().all(|m| file.dataset(m).unwrap().dtype().unwrap().size() == 4), "{per_bin:?}");
     let excluded: Vec<f64> = limits.bins.iter().filter(|b| b.excluded).map(|b| b.rel_ksvz).collect();
     let blocked = limits.bins.iter().filter(|b| !b.excluded && b.mass_uev.is_finite()).count();
     assert!(!excluded.is_empty() && blocked > 0, "some bins excluded ({}), some not ({blocked})", excluded.len());
@@ -421,7 +429,7 @@ fn calibrated_block_wise_outputs_are_bit_identical_across_thread_counts() {
     }
     let (a, b) = (hdf5::File::open(one.join("results.h5")).unwrap(), hdf5::File::open(two.join("results.h5")).unwrap());
     let datasets = a.member_names().unwrap().into_iter().filter(|m| a.dataset(m).is_ok()).collect::<Vec<_>>();
-    assert!(datasets.len() >= 11, "{datasets:?}");
+    assert!(datasets.len() >= 7 && datasets.iter().any(|d| d == "limit_g_gamma"), "{datasets:?}");
     for name in datasets {
         let (x, y): (Vec<f64>, Vec<f64>) = (a.dataset(&name).unwrap().read_raw().unwrap(), b.dataset(&name).unwrap().read_raw().unwrap());
         assert!(bits(&x) == bits(&y), "results.h5 {name} differs between 1 and 2 threads");

@@ -13,14 +13,22 @@
 //! noise-like datasets at 30-45x the write time, and shrank the two sigmas 8-9x at about
 //! 10x the write time, too slow for the one writing thread).
 //!
-//! With a calibration, five more per-bin datasets ([`LIMIT_DATASETS`]), in the same chunks
-//! and written with the same blocks: `mass_uev` in double precision (single precision would
-//! resolve only about 1e-6 ueV, several 100 Hz bins), and the four limits in single
-//! precision, each the double-precision value rounded once to nearest (within 2^-24 of
-//! itself, far below the limits' own statistical spread; NaN where a bin is not excluded).
+//! With a calibration, one more per-bin dataset, `limit_g_gamma` (the upper limit on
+//! |g_gamma|; NaN where a bin is not excluded), in the same chunks and written with the same
+//! blocks, in single precision: the double-precision value rounded once to nearest (within
+//! 2^-24 of itself, far below the limits' own statistical spread). What follows from it and
+//! the frequency axis is not stored per bin but given by attributes of the dataset, so the
+//! file stays at 24 bytes per bin: `mass_uev_per_hz` (the axion mass of bin j is
+//! `mass_uev_per_hz * (rf_start_hz + (j - 1/2) * bin_width_hz)`, the line starting at the
+//! bin's lower edge; h / e, CODATA 2018), `g_agg_per_gev_per_uev` (|g_agg| in GeV^-1 =
+//! `g_agg_per_gev_per_uev * limit_g_gamma * mass_uev`), `g_gamma_ksvz` and `g_gamma_dfsz` (the
+//! limit relative to either model is `limit_g_gamma` divided by it), and `derived`, the same
+//! in words.
 
 use super::bins::Bins;
 use crate::limits::BinLimit;
+use crate::physics::constants::{G_GAMMA_DFSZ, G_GAMMA_KSVZ};
+use crate::physics::units::{g_agg_from_g_gamma_per_gev, mass_uev_from_freq_hz};
 use crate::simd::per_bin_loop;
 use hdf5::types::VarLenUnicode;
 use rayon::prelude::*;
@@ -40,15 +48,8 @@ const DATASETS: [(&str, &str, &str, bool); 6] = [
     ("grand", "1", "grand spectrum A / (sigma_A * predicted spread)", false),
 ];
 
-/// The per-bin limit datasets: name, units, description (the first in double precision,
-/// the others in single precision).
-const LIMIT_DATASETS: [(&str, &str, &str); 5] = [
-    ("mass_uev", "ueV", "axion mass of the line starting at the bin's lower edge"),
-    ("limit_g_gamma", "1", "upper limit on |g_gamma| (NaN: not excluded)"),
-    ("limit_g_agg_per_gev", "GeV^-1", "upper limit on |g_agg| (NaN: not excluded)"),
-    ("limit_rel_ksvz", "1", "limit on |g_gamma| relative to KSVZ"),
-    ("limit_rel_dfsz", "1", "limit on |g_gamma| relative to DFSZ"),
-];
+/// The per-bin limit dataset: name, units, description.
+const LIMIT_DATASET: (&str, &str, &str) = ("limit_g_gamma", "1", "upper limit on |g_gamma| (NaN: not excluded)");
 
 /// One run of bins of every per-bin dataset, narrowed to single precision for writing.
 #[derive(Debug, Clone)]
@@ -59,16 +60,8 @@ pub struct ResultBlock {
     bin_width_hz: f64,
     /// In the order of [`DATASETS`].
     columns: [Vec<f32>; 6],
-    /// With a calibration, the limit datasets in the order of [`LIMIT_DATASETS`].
-    limits: Option<LimitColumns>,
-}
-
-/// A run of bins of the limit datasets.
-#[derive(Debug, Clone)]
-struct LimitColumns {
-    mass_uev: Vec<f64>,
-    /// limit_g_gamma, limit_g_agg_per_gev, limit_rel_ksvz, limit_rel_dfsz.
-    narrowed: [Vec<f32>; 4],
+    /// With a calibration, the limit on |g_gamma| per bin ([`LIMIT_DATASET`]).
+    limits: Option<Vec<f32>>,
 }
 
 impl ResultBlock {
@@ -80,18 +73,10 @@ impl ResultBlock {
         Self { first_bin: b.first_bin, grid_bins: b.grid_bins, origin_hz: b.origin_hz, bin_width_hz: b.bin_width_hz, columns, limits: None }
     }
 
-    /// Adds the limits of the same bins (`limits[i]` of bin `first_bin + i`).
+    /// Adds the limits of the same bins (`limits[i]` of bin `first_bin + i`), each rounded
+    /// to the nearest single-precision value.
     pub fn with_limits(mut self, limits: &[BinLimit]) -> Self {
-        let mut mass_uev = Vec::with_capacity(limits.len());
-        let mut narrowed: [Vec<f32>; 4] = std::array::from_fn(|_| Vec::with_capacity(limits.len()));
-        // One pass over the limits, each value rounded to the nearest single-precision value.
-        for b in limits {
-            mass_uev.push(b.mass_uev);
-            for (column, v) in narrowed.iter_mut().zip([b.g_gamma, b.g_agg_per_gev.abs(), b.rel_ksvz, b.rel_dfsz]) {
-                column.push(v as f32);
-            }
-        }
-        self.limits = Some(LimitColumns { mass_uev, narrowed });
+        self.limits = Some(limits.iter().map(|b| b.g_gamma as f32).collect());
         self
     }
 }
@@ -117,8 +102,8 @@ fn describe(ds: &hdf5::Dataset, units: &str, description: &str) -> hdf5::Result<
 pub struct ResultsFile {
     file: hdf5::File,
     datasets: Vec<hdf5::Dataset>,
-    /// With a calibration, the datasets of [`LIMIT_DATASETS`].
-    limit_datasets: Vec<hdf5::Dataset>,
+    /// With a calibration, the dataset of [`LIMIT_DATASET`].
+    limit_dataset: Option<hdf5::Dataset>,
 }
 
 impl ResultsFile {
@@ -138,23 +123,28 @@ impl ResultsFile {
                 Ok(ds)
             })
             .collect::<hdf5::Result<Vec<_>>>()?;
-        let limit_datasets = match &first.limits {
-            None => Vec::new(),
-            Some(_) => LIMIT_DATASETS
-                .iter()
-                .enumerate()
-                .map(|(k, &(name, units, description))| {
-                    let ds = if k == 0 { file.new_dataset::<f64>() } else { file.new_dataset::<f32>() }.chunk(chunk).shape(n).create(name)?;
-                    describe(&ds, units, description)?;
-                    Ok(ds)
-                })
-                .collect::<hdf5::Result<Vec<_>>>()?,
+        let limit_dataset = match &first.limits {
+            None => None,
+            Some(_) => {
+                let (name, units, description) = LIMIT_DATASET;
+                let ds = file.new_dataset::<f32>().chunk(chunk).shape(n).create(name)?;
+                describe(&ds, units, description)?;
+                let number = |name: &str, value: f64| ds.new_attr::<f64>().create(name)?.write_scalar(&value);
+                number("mass_uev_per_hz", mass_uev_from_freq_hz(1.0))?;
+                number("g_agg_per_gev_per_uev", g_agg_from_g_gamma_per_gev(1.0, 1.0))?;
+                number("g_gamma_ksvz", G_GAMMA_KSVZ.abs())?;
+                number("g_gamma_dfsz", G_GAMMA_DFSZ.abs())?;
+                let derived = "axion mass of bin j (line starting at its lower edge): mass_uev = mass_uev_per_hz * (rf_start_hz + (j - 1/2) * bin_width_hz); \
+                               |g_agg| limit (GeV^-1) = g_agg_per_gev_per_uev * limit_g_gamma * mass_uev; limit relative to KSVZ = limit_g_gamma / g_gamma_ksvz, to DFSZ = limit_g_gamma / g_gamma_dfsz";
+                ds.new_attr::<VarLenUnicode>().create("derived")?.write_scalar(&text(derived))?;
+                Some(ds)
+            }
         };
         file.new_attr::<f64>().create("rf_start_hz")?.write_scalar(&first.origin_hz)?;
         file.new_attr::<f64>().create("bin_width_hz")?.write_scalar(&first.bin_width_hz)?;
         file.new_attr::<u64>().create("n_rf_bins")?.write_scalar(&(n as u64))?;
         file.new_attr::<VarLenUnicode>().create("rf_axis")?.write_scalar(&text("bin j has bin-centre RF frequency rf_start_hz + j * bin_width_hz (Hz)"))?;
-        let results = Self { file, datasets, limit_datasets };
+        let results = Self { file, datasets, limit_dataset };
         results.write(first)?;
         Ok(results)
     }
@@ -164,15 +154,9 @@ impl ResultsFile {
         for (ds, column) in self.datasets.iter().zip(&b.columns) {
             ds.write_slice(column.as_slice(), b.first_bin..b.first_bin + column.len())?;
         }
-        match (&b.limits, self.limit_datasets.split_first()) {
+        match (&b.limits, &self.limit_dataset) {
             (None, None) => Ok(()),
-            (Some(l), Some((mass, narrowed))) => {
-                mass.write_slice(l.mass_uev.as_slice(), b.first_bin..b.first_bin + l.mass_uev.len())?;
-                for (ds, column) in narrowed.iter().zip(&l.narrowed) {
-                    ds.write_slice(column.as_slice(), b.first_bin..b.first_bin + column.len())?;
-                }
-                Ok(())
-            }
+            (Some(limits), Some(ds)) => ds.write_slice(limits.as_slice(), b.first_bin..b.first_bin + limits.len()),
             _ => Err(hdf5::Error::from("a run of bins with limits where the file has none, or without where it has them")),
         }
     }
@@ -196,7 +180,7 @@ impl ResultsFile {
     /// Closes the file.
     pub fn close(self) -> hdf5::Result<()> {
         drop(self.datasets);
-        drop(self.limit_datasets);
+        drop(self.limit_dataset);
         self.file.close()
     }
 }

@@ -6,6 +6,7 @@ use super::plots::GrandDigest;
 use crate::calib::Calibration;
 use crate::limits::{ExclusionColumns, Limits};
 use crate::output::Provenance;
+use crate::physics::units::{g_agg_from_g_gamma_per_gev, mass_uev_from_freq_hz};
 use crate::pipeline::Reduction;
 use serde::Deserialize;
 use std::path::{Path, PathBuf};
@@ -244,13 +245,18 @@ impl ReportData {
             }
             None => vec![None; summary.candidates.len()],
         };
-        let limits = match (file.link_exists("mass_uev"), eta) {
+        let limits = match (file.link_exists("limit_g_gamma"), eta) {
             (true, Some(eta)) => {
-                let (mass, g_agg) = (dataset("mass_uev")?, dataset("limit_g_agg_per_gev")?);
+                // Each bin's mass and |g_agg| limit follow from its frequency and |g_gamma| limit.
+                let g_gamma = dataset("limit_g_gamma")?;
                 let mut columns = ExclusionColumns::new(n_bins);
                 for first in (0..n_bins).step_by(crate::output::CHUNK_BINS) {
                     let r = first..(first + crate::output::CHUNK_BINS).min(n_bins);
-                    columns.add(first, read(&mass, r.clone())?.into_iter().zip(read(&g_agg, r)?));
+                    let points = read(&g_gamma, r)?.into_iter().enumerate().map(|(i, g)| {
+                        let mass = mass_uev_from_freq_hz(rf_start_hz + (first + i) as f64 * bin_width_hz - bin_width_hz / 2.0);
+                        (mass, g_agg_from_g_gamma_per_gev(g, mass).abs())
+                    });
+                    columns.add(first, points);
                 }
                 Some(LimitView { columns, eta })
             }
