@@ -309,13 +309,11 @@ fn run_stages(
     for (step, verdict) in chunk.iter().zip(verdicts) {
         kept.push(verdict.is_none());
         no_data.add(&paths[step.file], step.index_in_file, step.no_data);
-        match verdict {
-            None => {}
-            Some((stage, reason)) => {
-                if !cuts.iter().any(|c| c.step == step.index) {
-                    cuts.push(CutStep { step: step.index, file: paths[step.file].clone(), row: step.index_in_file, stage, reason });
-                }
-            }
+        // A step is cut once, by the first stage that cuts it.
+        if let Some((stage, reason)) = verdict
+            && !cuts.iter().any(|c| c.step == step.index)
+        {
+            cuts.push(CutStep { step: step.index, file: paths[step.file].clone(), row: step.index_in_file, stage, reason });
         }
     }
     kept

@@ -190,7 +190,7 @@ fn results_file_rounds_each_value_once_to_single_precision() {
     let dir = tempfile::tempdir().unwrap();
     let night = simulate(dir.path());
     let plan = config::load(PIPELINE, "pipeline.toml").expect("pipeline loads");
-    let mem = pipeline::reduce(&plan, &[night.clone()], &|_, _| {}).expect("in-memory reduction");
+    let mem = pipeline::reduce(&plan, std::slice::from_ref(&night), &|_, _| {}).expect("in-memory reduction");
     let sp = &mem.spectrum;
     let out = dir.path().join("out");
     let pipeline_path = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
@@ -287,9 +287,6 @@ fn reduce_calibrated(night: &Path, calibration: &Path, out: &Path, threads: usiz
         .unwrap();
     assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
 }
-
-/// One per-bin limit quantity, as stored in results.h5.
-type LimitOf = fn(&axsift::limits::BinLimit) -> f64;
 
 fn csv_rows(path: &Path) -> Vec<Vec<String>> {
     let mut reader = csv::Reader::from_path(path).unwrap();

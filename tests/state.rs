@@ -653,7 +653,7 @@ fn a_night_streamed_into_a_staged_state_equals_the_night_reduced_whole() {
             // within a line width of it, here read from the whole span's values.
             let bw = sa.bin_width_hz;
             let reach = (a.match_hz / bw).ceil() as i64;
-            let rechecked: Vec<_> = streamed.candidates.all().unwrap().into_iter().filter(|c| c.first_night == 0 && c.evidence.contains("night 1")).collect();
+            let rechecked: Vec<_> = streamed.candidates.all().unwrap().iter().filter(|c| c.first_night == 0 && c.evidence.contains("night 1")).collect();
             assert!(rechecked.len() >= 3, "{} re-examined", rechecked.len());
             for c in rechecked {
                 let centre = ((c.frequency_hz + bw / 2.0 - sa.rf_start_hz) / bw).round() as i64;

@@ -56,7 +56,7 @@ impl WelchPlan {
     /// `overlap` (0 <= overlap < 1; the overlap in samples is rounded to the nearest whole
     /// sample, as is scipy's `noverlap` when given as `N * overlap`).
     pub fn new(fft_bins: usize, window: Window, overlap: f64) -> Result<Self, String> {
-        if fft_bins < 2 || fft_bins % 2 != 0 {
+        if fft_bins < 2 || !fft_bins.is_multiple_of(2) {
             return Err(format!("--fft-bins {fft_bins} must be even and at least 2"));
         }
         if !(0.0..1.0).contains(&overlap) {

@@ -237,7 +237,7 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> Result<Stri
     let interference: Vec<_> = listing.iter().filter(|c| c.class == Class::Interference).collect();
     if !interference.is_empty() {
         let _ = writeln!(out, "\n  Interference (fixed IF offset; no rescan needed):");
-        let _ = writeln!(out, "  {:>20}  {:>8}  {}", "RF frequency (MHz)", "grand", "evidence");
+        let _ = writeln!(out, "  {:>20}  {:>8}  evidence", "RF frequency (MHz)", "grand");
         for c in interference {
             let _ = writeln!(out, "  {:>20.6}  {:>8.2}  {}", c.frequency_hz / 1e6, c.significance, c.evidence);
         }

@@ -144,7 +144,7 @@ pub fn render(d: &ReportData) -> anyhow::Result<String> {
         s.rf_stop_hz / 1e6
     );
     for h in &present {
-        let _ = write!(out, "<a href=\"#{}\">{}</a>\n", h.to_lowercase().replace(' ', "-"), escape(h));
+        let _ = writeln!(out, "<a href=\"#{}\">{}</a>", h.to_lowercase().replace(' ', "-"), escape(h));
     }
     out.push_str("</nav><main>");
     for h in present {
@@ -163,9 +163,9 @@ pub fn render(d: &ReportData) -> anyhow::Result<String> {
         }
         out.push_str("</section>");
     }
-    let _ = write!(
+    let _ = writeln!(
         out,
-        "<footer>Written by axsift {}. This page needs no network and no script.</footer></main></body></html>\n",
+        "<footer>Written by axsift {}. This page needs no network and no script.</footer></main></body></html>",
         escape(&s.provenance.tool_version)
     );
     Ok(out)

@@ -71,10 +71,10 @@ pub fn read_optional_f64_list(file: &hdf5::File, name: &str, max_len: usize) -> 
 pub fn read_string(file: &hdf5::File, name: &str) -> Result<String, String> {
     // An object header that fails its checksum (1.10 format) is a damaged file, not a missing
     // attribute; `format` is read first, so this is where a damaged root header shows.
-    if let Err(e) = file.attr(name) {
-        if !e.contains_minor(hdf5::MinorErrorCode::NotFound) {
-            return Err(format!("attribute cannot be read (corrupted file?): {e}"));
-        }
+    if let Err(e) = file.attr(name)
+        && !e.contains_minor(hdf5::MinorErrorCode::NotFound)
+    {
+        return Err(format!("attribute cannot be read (corrupted file?): {e}"));
     }
     let (attr, t) = scalar_attr(file, name)?;
     if !attr.shape().is_empty() {

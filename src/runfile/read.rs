@@ -42,7 +42,7 @@ impl RunReader {
             return Err(invalid("spectra", None, format!("has {} dimensions, expected 2 [n_steps, n_bins]", shape.len())));
         }
         let (n_steps, n_bins) = (shape[0], shape[1]);
-        if n_steps == 0 || n_steps > MAX_STEPS_PER_FILE || n_bins < MIN_BINS_PER_STEP || n_bins > MAX_BINS_PER_STEP {
+        if n_steps == 0 || n_steps > MAX_STEPS_PER_FILE || !(MIN_BINS_PER_STEP..=MAX_BINS_PER_STEP).contains(&n_bins) {
             return Err(invalid(
                 "spectra",
                 None,

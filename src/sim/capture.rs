@@ -39,7 +39,7 @@ const NOISE_RMS_COUNTS: f64 = 1000.0;
 pub fn simulate_capture(sc: &Scenario, out: &Path) -> Result<(), RunFileError> {
     let s = &sc.scan;
     let n_samples = (s.n_averages as usize).saturating_mul(s.n_bins);
-    if n_samples > MAX_SIMULATED_SAMPLES || s.n_bins % 2 != 0 {
+    if n_samples > MAX_SIMULATED_SAMPLES || !s.n_bins.is_multiple_of(2) {
         return Err(RunFileError::Invalid {
             path: out.to_path_buf(),
             field: "scan.n_averages".into(),

@@ -50,7 +50,7 @@ impl StageConfig for BaselineConfig {
     }
     fn validate(&self) -> Vec<(String, String)> {
         let mut p = Vec::new();
-        if self.window_bins < 3 || self.window_bins % 2 == 0 {
+        if self.window_bins < 3 || self.window_bins.is_multiple_of(2) {
             p.push(("window_bins".into(), format!("{} must be odd and >= 3", self.window_bins)));
         }
         if self.order >= self.window_bins {

@@ -156,7 +156,7 @@ impl SpectrumStage for OptimalFilter {
     /// multiples of it), each split where the kernel changes: every output comes from the
     /// same correlation of the same inputs however the grid is cut into blocks.
     fn apply_block(&self, sp: &mut Block, _steps: &[(usize, StepMeta)]) -> Result<(), String> {
-        debug_assert!(sp.first_bin % PIECE_BINS == 0 && BLOCK_BINS % PIECE_BINS == 0);
+        debug_assert!(sp.first_bin.is_multiple_of(PIECE_BINS) && BLOCK_BINS.is_multiple_of(PIECE_BINS));
         // The bins the block holds: its own and those read past its end.
         let n = sp.combined.len();
         let weights: Vec<f64> = sp.combined_sigma.iter().map(|s| if s.is_finite() { 1.0 / (s * s) } else { 0.0 }).collect();

@@ -321,7 +321,7 @@ mod tests {
             for step in 0..12u32 {
                 // Values from a small set, so ties and repeats are common.
                 let z: Vec<f32> = (0..n).map(|i| ((i as u32 * 7 + step * 5) % 9) as f32 - 4.0).collect();
-                let inv: Vec<f32> = (0..n).map(|i| if (i as u32 + step) % 5 == 0 { 0.0 } else { 1.0 + step as f32 }).collect();
+                let inv: Vec<f32> = (0..n).map(|i| if (i as u32 + step).is_multiple_of(5) { 0.0 } else { 1.0 + step as f32 }).collect();
                 keep_top(&mut z_top, &mut inv_top, &mut k_top, &z, &inv, 100 * step);
                 for i in 0..n {
                     if inv[i] > 0.0 && z[i] > z_want[i] {
