@@ -199,8 +199,11 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> Result<Stri
         st.rf_span_hz().map_or(f64::NAN, |s| s.1) / 1e6,
         covered as f64 * st.bin_width_hz / 1e6
     );
-    for c in changes {
+    for c in changes.iter().take(crate::state::LISTED_CANDIDATES) {
         let _ = writeln!(out, "  changed: {c}");
+    }
+    if changes.len() > crate::state::LISTED_CANDIDATES {
+        let _ = writeln!(out, "  ... and {} more changes of class (all of them in `axsift status --json`)", changes.len() - crate::state::LISTED_CANDIDATES);
     }
     let count = |k: Class| listing.iter().filter(|c| c.class == k).count();
     let _ = writeln!(
@@ -234,19 +237,29 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> Result<Stri
             l.excluded_bins
         );
     }
-    let interference: Vec<_> = listing.iter().filter(|c| c.class == Class::Interference).collect();
+    fn shown(list: Vec<&crate::state::TrackedCandidate>) -> (Vec<&crate::state::TrackedCandidate>, usize) {
+        crate::state::strongest(list, crate::state::LISTED_CANDIDATES, |c| c.significance, |c| c.frequency_hz)
+    }
+    // Under a table: how many rows were left out.
+    let more = |out: &mut String, (rows, total): (usize, usize)| {
+        if total > rows {
+            let _ = writeln!(out, "  ... the {rows} strongest of {total} shown, in frequency order; all of them: `axsift status --json`");
+        }
+    };
+    let (interference, total) = shown(listing.iter().filter(|c| c.class == Class::Interference).collect());
     if !interference.is_empty() {
         let _ = writeln!(out, "\n  Interference (fixed IF offset; no rescan needed):");
         let _ = writeln!(out, "  {:>20}  {:>8}  evidence", "RF frequency (MHz)", "grand");
-        for c in interference {
+        for c in &interference {
             let _ = writeln!(out, "  {:>20.6}  {:>8.2}  {}", c.frequency_hz / 1e6, c.significance, c.evidence);
         }
+        more(&mut out, (interference.len(), total));
     }
-    let open: Vec<_> = listing.iter().filter(|c| c.class.is_open()).collect();
+    let (open, total) = shown(listing.iter().filter(|c| c.class.is_open()).collect());
     if !open.is_empty() {
         let _ = writeln!(out, "\n  Rescan plan (target SNR {}):", crate::state::RESCAN_TARGET_SNR);
         let _ = writeln!(out, "  {:>20}  {:>9}  {:>8}  {:>24}  {:>14}", "RF frequency (MHz)", "class", "grand", "retune cavity to (MHz)", "integrate (s)");
-        for c in open {
+        for c in &open {
             let _ = writeln!(
                 out,
                 "  {:>20.6}  {:>9}  {:>8.2}  {:>24.6}  {:>14.0}",
@@ -257,6 +270,7 @@ pub fn state_report(st: &crate::state::State, changes: &[String]) -> Result<Stri
                 c.rescan_integration_s
             );
         }
+        more(&mut out, (open.len(), total));
         let _ = writeln!(out, "\n{ADVISORY}");
     }
     Ok(out)

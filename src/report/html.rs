@@ -443,7 +443,8 @@ fn across_nights(out: &mut String, d: &ReportData) {
         return;
     }
     out.push_str("<div class=\"scroll\"><table><tr><th class=\"n\">RF frequency (MHz)</th><th>class</th><th class=\"n\">grand</th><th class=\"n\">first night</th><th class=\"n\">retune cavity to (MHz)</th><th class=\"n\">integrate (s)</th><th>evidence</th></tr>");
-    for t in &st.candidates {
+    let (listed, total) = crate::state::strongest(st.candidates.iter().collect(), crate::state::LISTED_CANDIDATES, |t| t.significance, |t| t.frequency_hz);
+    for t in &listed {
         let class = format!("{:?}", t.class).to_lowercase();
         let integrate = if t.rescan_integration_s > 0.0 { format!("{:.0}", t.rescan_integration_s) } else { "&ndash;".into() };
         let _ = write!(
@@ -457,7 +458,15 @@ fn across_nights(out: &mut String, d: &ReportData) {
             escape(&t.evidence)
         );
     }
-    out.push_str("</table></div><p class=\"note\">New: flagged, not yet revisited. Persists: still above threshold once data covered it again. Cleared: fell below (its bins count for the limits). Interference: explained by a line at a fixed IF offset (no rescan needed). The integration brings a signal of the candidate's present amplitude to SNR 5 with the night's median T_sys and Q_L; it is advice, and retuning is done under the laboratory's safety rules.</p>");
+    out.push_str("</table></div>");
+    if total > listed.len() {
+        let _ = write!(
+            out,
+            "<p class=\"note\">The {} strongest of {total} tracked candidates, in frequency order; all of them: <code>axsift status --json</code>.</p>",
+            listed.len()
+        );
+    }
+    out.push_str("<p class=\"note\">New: flagged, not yet revisited. Persists: still above threshold once data covered it again. Cleared: fell below (its bins count for the limits). Interference: explained by a line at a fixed IF offset (no rescan needed). The integration brings a signal of the candidate's present amplitude to SNR 5 with the night's median T_sys and Q_L; it is advice, and retuning is done under the laboratory's safety rules.</p>");
 }
 
 fn exclusion(out: &mut String, d: &ReportData) -> anyhow::Result<()> {

@@ -73,7 +73,7 @@ pub use interference::{IF_LINE_SIGMA, IfLine, IfProfile, IfScan, TopSamples};
 pub use limit_tally::LimitTally;
 pub use profile_file::IfProfileRecord;
 pub use rescan::{Class, InterferenceEvidence, LineSource, TrackedCandidate};
-pub use status::{CandidateSummary, ClassCounts, NightSummary, StatusSummary};
+pub use status::{CandidateSummary, ClassCounts, LISTED_CANDIDATES, NightSummary, StatusSummary, strongest};
 pub use store::{BLOCK_BINS, BlockRecord, FileRecord, LimitRange, NightRecord, State, StateError};
 pub use sums::Sums;
 

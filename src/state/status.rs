@@ -117,3 +117,40 @@ impl StatusSummary {
         })
     }
 }
+
+/// Rows of a listing of tracked candidates in the terminal and in the report: the strongest
+/// (a campaign of 1e8 bins tracks tens of thousands; all of them are in `axsift status
+/// --json`).
+pub const LISTED_CANDIDATES: usize = 100;
+
+/// The `n` most significant of `items` (by `significance`; of equal ones the first), in
+/// increasing frequency (by `frequency_hz`), and how many items there were.
+pub fn strongest<T>(mut items: Vec<T>, n: usize, significance: impl Fn(&T) -> f64, frequency_hz: impl Fn(&T) -> f64) -> (Vec<T>, usize) {
+    let total = items.len();
+    items.sort_by(|a, b| significance(b).total_cmp(&significance(a)));
+    items.truncate(n);
+    items.sort_by(|a, b| frequency_hz(a).total_cmp(&frequency_hz(b)));
+    (items, total)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::strongest;
+
+    /// The selection against a plain sort: the n largest significances (of equal ones the
+    /// first given), listed by frequency, and the count of all.
+    #[test]
+    fn strongest_keeps_the_most_significant_in_frequency_order() {
+        // (frequency, significance): significances 3.0..=3.9 in scrambled frequency order, one tie.
+        let items: Vec<(f64, f64)> = (0..10).map(|k| (((k * 7) % 10) as f64, 3.0 + k as f64 / 10.0)).chain([(20.0, 3.9)]).collect();
+        let (kept, total) = strongest(items.clone(), 3, |c| c.1, |c| c.0);
+        assert_eq!(total, 11);
+        let mut by_significance = items.clone();
+        by_significance.sort_by(|a, b| b.1.total_cmp(&a.1));
+        let mut want: Vec<(f64, f64)> = by_significance[..3].to_vec();
+        want.sort_by(|a, b| a.0.total_cmp(&b.0));
+        assert_eq!(kept, want);
+        assert!(kept.windows(2).all(|w| w[0].0 <= w[1].0));
+        assert_eq!(strongest(items, 50, |c| c.1, |c| c.0).0.len(), 11);
+    }
+}
