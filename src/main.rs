@@ -505,6 +505,8 @@ fn reduce_into_state(
     let bad = |e: String| Failure::BadInput(anyhow::anyhow!(e));
     let plan = config::load(config_text, config_name).map_err(|e| Failure::BadInput(e.into()))?;
     let calibration = calibration.map(|path| calib::Calibration::load_for(path, &plan)).transpose().map_err(bad)?;
+    // Held until the update is saved: another update of the same folder waits its turn.
+    let _lock = axsift::state::State::lock_folder(state_dir).map_err(|e| bad(e.to_string()))?;
     let mut st = match axsift::state::State::load(state_dir).map_err(|e| bad(e.to_string()))? {
         Some(st) => st,
         None => axsift::state::State::new(axsift::state::plan_hash(&plan)),

@@ -671,3 +671,35 @@ fn a_night_streamed_into_a_staged_state_equals_the_night_reduced_whole() {
     let interference = State::load(&streamed_dir).unwrap().unwrap().candidates.all().unwrap().iter().filter(|c| c.class == Class::Interference).count();
     assert!(interference > 0, "the IF line's candidates are interference");
 }
+
+/// Two updates of one state folder cannot interleave: while one holds the folder's update
+/// lock, `reduce --state` is refused (exit status 2, naming the lock file) and changes
+/// nothing; once the lock is released the same update goes through.
+#[test]
+fn a_second_update_of_a_locked_state_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let n = night(91, 5.2e9, dir.path(), false);
+    let state_dir = dir.path().join("state");
+    let config = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    let update = || {
+        Command::new(env!("CARGO_BIN_EXE_axsift"))
+            .args(["-q", "reduce", "--config", config, "--state"])
+            .arg(&state_dir)
+            .arg("--out")
+            .arg(dir.path().join("out"))
+            .arg(&n)
+            .env("HDF5_USE_FILE_LOCKING", "FALSE")
+            .output()
+            .unwrap()
+    };
+    let held = State::lock_folder(&state_dir).unwrap();
+    let refused = update();
+    let err = String::from_utf8_lossy(&refused.stderr);
+    assert_eq!(refused.status.code(), Some(2), "{err}");
+    assert!(err.contains(".lock") && err.contains("another axsift is updating this state"), "{err}");
+    assert!(!state_dir.join("state.json").exists() && !state_dir.join("blocks").exists());
+    drop(held);
+    let done = update();
+    assert!(done.status.success(), "{}", String::from_utf8_lossy(&done.stderr));
+    assert_eq!(State::load(&state_dir).unwrap().unwrap().nights.len(), 1);
+}

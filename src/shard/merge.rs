@@ -82,6 +82,8 @@ pub fn merge(plan_path: &Path, out: &Path, state_dir: Option<&Path>, calibration
     match &plan.work {
         Work::Reduction { .. } => {
             let state_dir = state_dir.ok_or_else(|| ShardError::BadInput("a reduction merge needs --state DIR for the new analysis state".into()))?;
+            // Held until the merged state is saved.
+            let _lock = State::lock_folder(state_dir).map_err(|e| ShardError::BadInput(e.to_string()))?;
             if state_dir.join("state.json").exists() {
                 return Err(ShardError::BadInput(format!("{}: already holds a state; the merge builds a new one, give an empty folder", state_dir.display())));
             }

@@ -197,6 +197,23 @@ impl State {
         }
     }
 
+    /// Takes the update lock of the state folder `dir` (created if new): an exclusive lock
+    /// on `dir/.lock`, held until the returned file is dropped, so that two updates of one
+    /// state cannot interleave their files. Refused, naming the file, while another process
+    /// holds it.
+    pub fn lock_folder(dir: &Path) -> Result<std::fs::File, StateError> {
+        std::fs::create_dir_all(dir).map_err(|e| io(dir, e))?;
+        let path = dir.join(".lock");
+        let file = std::fs::OpenOptions::new().create(true).truncate(false).write(true).open(&path).map_err(|e| io(&path, e))?;
+        match file.try_lock() {
+            Ok(()) => Ok(file),
+            Err(std::fs::TryLockError::WouldBlock) => {
+                Err(StateError::Refused(format!("{}: another axsift is updating this state; wait for it to finish", path.display())))
+            }
+            Err(std::fs::TryLockError::Error(e)) => Err(io(&path, e)),
+        }
+    }
+
     /// Writes the blocks of the sums an update finishes into `dir` (the folder the state is
     /// to be saved to) as soon as they are finished, under the next generation's names,
     /// instead of holding them in memory until [`State::save`]: memory then stays bounded
