@@ -443,15 +443,9 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
     // The outputs are written block by block as the RF grid is finished, the limits too (a
     // bin's limit needs only its own values in a single night): memory stays bounded by the
     // steps in flight, whatever the night's span.
-    let mut outputs = match &calibration {
+    let mut outputs = match limit_basis(&plan, config_name, calibration.as_ref())? {
         None => output::BlockOutputs::new(out)?,
-        Some(cal) => {
-            if !plan.stages.iter().any(|s| s.entry.kind == "flag") {
-                return Err(Failure::BadInput(anyhow::anyhow!("{config_name}: limits need a flag stage (its threshold)")));
-            }
-            let basis = axsift::limits::LimitBasis::new(&plan, cal, axsift::limits::DEFAULT_CONFIDENCE).map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))?;
-            output::BlockOutputs::calibrated(out, basis)?
-        }
+        Some(basis) => output::BlockOutputs::calibrated(out, basis)?,
     };
     let mut results = outputs.results_sink();
     let (reduction, provenance) = with_provenance(config_text, runs, || {
@@ -472,6 +466,16 @@ fn reduce(config_text: &str, config_name: &str, runs: &[PathBuf], calibration: O
         print!("{}", output::console::night_report_for(&reduction, &summary, calibration.as_ref().map(|c| (c, &done.peaks)), &done.written));
     }
     Ok(())
+}
+
+/// What the limits of a reduction with `calibration` assume (None without one); the plan
+/// needs a flag stage, whose threshold they use.
+fn limit_basis(plan: &config::Plan, config_name: &str, calibration: Option<&calib::Calibration>) -> Result<Option<axsift::limits::LimitBasis>, Failure> {
+    let Some(cal) = calibration else { return Ok(None) };
+    if !plan.stages.iter().any(|s| s.entry.kind == "flag") {
+        return Err(Failure::BadInput(anyhow::anyhow!("{config_name}: limits need a flag stage (its threshold)")));
+    }
+    axsift::limits::LimitBasis::new(plan, cal, axsift::limits::DEFAULT_CONFIDENCE).map(Some).map_err(|e| Failure::BadInput(anyhow::anyhow!(e)))
 }
 
 /// Warns, one line per run file, of bins without data that the file's mask does not mark.
@@ -515,10 +519,7 @@ fn reduce_into_state(
     // The recomputed span is written tile by tile as it is made, its limits too (in the
     // outputs every candidate of the span blocks its bins, so a bin's limit needs only its
     // own values); the limit range the state records is tallied on the way.
-    let basis = calibration.as_ref().map(|cal| axsift::limits::LimitBasis::new(&plan, cal, axsift::limits::DEFAULT_CONFIDENCE)).transpose().map_err(bad)?;
-    if basis.is_some() && !plan.stages.iter().any(|s| s.entry.kind == "flag") {
-        return Err(bad(format!("{config_name}: limits need a flag stage (its threshold)")));
-    }
+    let basis = limit_basis(&plan, config_name, calibration.as_ref())?;
     let mut tally = basis.clone().map(axsift::state::LimitTally::new);
     let mut outputs = match basis {
         None => output::BlockOutputs::new(out)?,

@@ -165,7 +165,7 @@ pub fn bin_limit(a: &LimitAssumptions, freq_hz: f64, sigma_eff: f64, grand: f64,
 
 /// Line-start frequency of grid bin `j` (its lower edge), Hz, for bin centres at
 /// `origin_hz + j * bin_width_hz`.
-fn line_start_hz(origin_hz: f64, bin_width_hz: f64, j: usize) -> f64 {
+pub fn line_start_hz(origin_hz: f64, bin_width_hz: f64, j: usize) -> f64 {
     origin_hz + j as f64 * bin_width_hz - bin_width_hz / 2.0
 }
 

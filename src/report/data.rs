@@ -253,7 +253,7 @@ impl ReportData {
                 for first in (0..n_bins).step_by(crate::output::CHUNK_BINS) {
                     let r = first..(first + crate::output::CHUNK_BINS).min(n_bins);
                     let points = read(&g_gamma, r)?.into_iter().enumerate().map(|(i, g)| {
-                        let mass = mass_uev_from_freq_hz(rf_start_hz + (first + i) as f64 * bin_width_hz - bin_width_hz / 2.0);
+                        let mass = mass_uev_from_freq_hz(crate::limits::line_start_hz(rf_start_hz, bin_width_hz, first + i));
                         (mass, g_agg_from_g_gamma_per_gev(g, mass).abs())
                     });
                     columns.add(first, points);

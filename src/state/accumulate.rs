@@ -190,15 +190,7 @@ pub fn add_night(
         })?;
         night_red.if_scan.if_profile_sigma = sigma;
     }
-    let night_start = night_bins.start;
-    let covered = |bin: i64| usize::try_from(bin - night_start).is_ok_and(|k| coverage.get(k));
-    let record = NightRecord {
-        index: night_index,
-        files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
-        n_steps_used: night_red.used_steps.len(),
-        if_lines: night_red.if_scan.lines.clone(),
-    };
-    finish_update(state, plan, record, night_red, night_bins, &covered, out)
+    finish_update(state, plan, (inputs, n_steps), night_red, night_bins, &coverage, out)
 }
 
 /// Adds a night reduced by [`reduce_night`] to the state: the same operations, in the same
@@ -224,38 +216,37 @@ pub fn add_reduced_night(state: &mut State, plan: &Plan, night: ReducedNight, ou
     // What follows needs the night's facts, not its per-bin arrays.
     night_red.spectrum = Spectrum { combined: Vec::new(), combined_sigma: Vec::new(), coverage: Vec::new(), ..night_red.spectrum };
     night_red.if_scan = IfScan { removed_weight: Vec::new(), removed_weighted_sum: Vec::new(), removed_if_bin: Vec::new(), ..night_red.if_scan };
-    let night_start = night_bins.start;
-    let covered = |bin: i64| usize::try_from(bin - night_start).is_ok_and(|k| coverage.get(k));
-    let records = NightRecord {
+    finish_update(state, plan, (inputs, n_steps), night_red, night_bins, &coverage, out)
+}
+
+/// After a night's sums are merged (over grid bins `night_bins`, `coverage` telling which of
+/// them tonight's data reached): records the night (its run files as given with their
+/// SHA-256, and the steps read from each), recomputes the span and tracks the candidates
+/// there.
+fn finish_update(
+    state: &mut State,
+    plan: &Plan,
+    (inputs, n_steps): (Vec<(String, String)>, Vec<usize>),
+    night_red: Reduction,
+    night_bins: Range<i64>,
+    coverage: &NightCoverage,
+    out: &mut dyn FnMut(&Block) -> Result<(), String>,
+) -> Result<Update, StateError> {
+    let night_index = state.nights.len();
+    state.nights.push(NightRecord {
         index: night_index,
         files: inputs.into_iter().zip(n_steps).map(|((path, sha256), n_steps)| FileRecord { path, sha256, n_steps }).collect(),
         n_steps_used: night_red.used_steps.len(),
         if_lines: night_red.if_scan.lines.clone(),
-    };
-    finish_update(state, plan, records, night_red, night_bins, &covered, out)
-}
-
-/// After a night's sums are merged (over grid bins `night_bins`, `covered` telling which of
-/// them tonight's data reached): records the night, recomputes the span and tracks the
-/// candidates there.
-fn finish_update(
-    state: &mut State,
-    plan: &Plan,
-    record: NightRecord,
-    night_red: Reduction,
-    night_bins: Range<i64>,
-    covered: &dyn Fn(i64) -> bool,
-    out: &mut dyn FnMut(&Block) -> Result<(), String>,
-) -> Result<Update, StateError> {
-    let night_index = record.index;
-    state.nights.push(record);
+    });
+    let covered = |bin: i64| usize::try_from(bin - night_bins.start).is_ok_and(|k| coverage.get(k));
     let profile = IfProfileRecord { if_profile_sigma: night_red.if_scan.if_profile_sigma.clone(), if_steps: night_red.if_scan.if_steps.clone() };
     state.put_profile(night_index, profile);
 
     let stages = Stages::new(plan).map_err(refused)?;
     let plan_info = PlanInfo::from_plan(plan).map_err(refused)?;
     let grid = state.grid_bins.map(|(a, b)| state.block_of(a)..=state.block_of(b - 1)).ok_or_else(|| refused("the state's grid is empty".into()))?;
-    let changed = stages.tiles_reading(state, night_bins);
+    let changed = stages.tiles_reading(state, night_bins.clone());
     let planned = (*changed.start() - 1).max(*grid.start())..=(*changed.end() + 1).min(*grid.end());
     let mut tiler = Tiler::new(&stages, &night_red.used_steps, night_red.spectrum.step_span_hz);
     let tiles = tiler.extent(state, planned)?;

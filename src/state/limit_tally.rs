@@ -7,7 +7,7 @@
 //! candidate is open.
 
 use super::{LimitRange, State, StateError};
-use crate::limits::{LimitAssumptions, LimitBasis, Limits};
+use crate::limits::{LimitAssumptions, LimitBasis, Limits, line_start_hz};
 use crate::output::Bins;
 use crate::physics::constants::G_GAMMA_KSVZ;
 use crate::stage::{Candidate, Spectrum};
@@ -28,11 +28,7 @@ impl Extremes {
     const NONE: Self = Self { count: 0, rel_ksvz: (f64::INFINITY, f64::NEG_INFINITY), freq_hz: (f64::INFINITY, f64::NEG_INFINITY) };
 
     fn with(self, rel: f64, freq_hz: f64) -> Self {
-        Self {
-            count: self.count + 1,
-            rel_ksvz: (self.rel_ksvz.0.min(rel), self.rel_ksvz.1.max(rel)),
-            freq_hz: (self.freq_hz.0.min(freq_hz), self.freq_hz.1.max(freq_hz)),
-        }
+        self.and(Self { count: 1, rel_ksvz: (rel, rel), freq_hz: (freq_hz, freq_hz) })
     }
 
     fn and(self, o: Self) -> Self {
@@ -82,7 +78,7 @@ impl LimitTally {
         // (limit / KSVZ, line-start frequency) of bin i if it has a limit when unblocked.
         let limit_of = |i: usize| {
             let sigma_eff = bins.sigma_a[i] * bins.predicted_spread[i];
-            let freq_hz = bins.origin_hz + (bins.first_bin + i) as f64 * bins.bin_width_hz - bins.bin_width_hz / 2.0;
+            let freq_hz = line_start_hz(bins.origin_hz, bins.bin_width_hz, bins.first_bin + i);
             let rel = a.g_gamma_at(sigma_eff) / G_GAMMA_KSVZ.abs();
             (sigma_eff.is_finite() && bins.grand[i].is_finite() && rel.is_finite()).then_some((rel, freq_hz))
         };

@@ -176,26 +176,25 @@ impl<'a> Tiler<'a> {
         let threshold = self.stages.threshold();
         let last = st.block_bins - 1;
         let mut lo = *planned.start();
+        // The edge tiles found are kept for the pass (the first one also while the upper edge
+        // is searched from it).
         loop {
             let pair = self.compute(st, lo)?;
-            let extend = Self::above(&pair, 0, threshold) && lo > *grid.start();
-            self.computed.insert(lo, pair);
-            if !extend {
+            if !(Self::above(&pair, 0, threshold) && lo > *grid.start()) {
+                self.computed.insert(lo, pair);
                 break;
             }
-            self.computed.remove(&lo);
             lo -= 1;
         }
         let mut hi = *planned.end();
         loop {
             let pair = self.compute(st, hi)?;
             let extend = Self::above(&pair, last, threshold) && hi < *grid.end();
-            self.computed.insert(hi, pair);
+            if !extend || hi == lo {
+                self.computed.insert(hi, pair);
+            }
             if !extend {
                 break;
-            }
-            if hi != lo {
-                self.computed.remove(&hi);
             }
             hi += 1;
         }
