@@ -6,6 +6,9 @@ Usage: check_results.py OUTPUT_FOLDER   (written by `axsift demo` or `axsift red
 - every dataset in results.h5 carries non-empty `units` and `description` attributes;
 - the frequency axis (root attributes rf_start_hz, bin_width_hz, n_rf_bins) spans the
   summary's rf_start_hz to rf_stop_hz;
+- the predicted spread's runs expand to one value per bin, and with them A / (sigma_A *
+  spread) from the amplitude and sigma_a datasets is the stored grand spectrum, within the
+  four single-precision roundings (5 x 2^-24 relative);
 - one MHz of the grand spectrum is read without reading the file: the datasets are chunked
   and a 1 MHz slice touches at most two chunks;
 - the candidates listed in summary.json are the strongest of those in results.h5 (frequencies
@@ -46,6 +49,20 @@ def main(folder: Path) -> int:
             problems.append(f"grand: chunks {chunk}; one MHz ({one_mhz} bins) should touch at most two")
         cand_f = f["candidates/frequency_hz"][()]
         cand_s = f["candidates/significance"][()]
+        # The predicted spread's runs, expanded as the README says; the grand spectrum is
+        # A / (sigma_A * spread), each of the four rounded by 2^-24 of itself when stored.
+        first_bin, value = f["predicted_spread/first_bin"][()], f["predicted_spread/value"][()]
+        spread = np.repeat(value, np.diff(first_bin, append=int(f.attrs["n_rf_bins"])))
+        if len(spread) != n or first_bin[0] != 0:
+            problems.append(f"predicted_spread: runs from bin {first_bin[0]} expand to {len(spread)} bins, not {n}")
+        else:
+            amplitude, sigma_a = f["amplitude"][()].astype(np.float64), f["sigma_a"][()].astype(np.float64)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                recomputed = amplitude / (sigma_a * spread)
+            both = np.isfinite(grand) & np.isfinite(recomputed)
+            worst = np.max(np.abs(recomputed[both] - grand[both]) / np.maximum(np.abs(grand[both]), 1e-30), initial=0.0)
+            if not np.array_equal(np.isfinite(grand), np.isfinite(recomputed)) or worst > 5 * 2.0**-24:
+                problems.append(f"grand: A / (sigma_A * predicted_spread) departs from it by {worst:.2e} relative (bound 5 x 2^-24)")
     if n != len(grand) or abs(start - summary["rf_start_hz"]) > 1e-6 or abs(start + (n - 1) * width - summary["rf_stop_hz"]) > 1e-3:
         problems.append(f"frequency axis: {n} bins from {start} Hz by {width} Hz; summary.json has {summary['n_rf_bins']} bins, {summary['rf_start_hz']} to {summary['rf_stop_hz']} Hz")
     want_f = np.array([c["frequency_hz"] for c in summary["candidates"]], dtype=float)

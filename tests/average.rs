@@ -321,10 +321,13 @@ fn simulated_axion_is_found_at_the_expected_significance() {
         let results = hdf5::File::open(out.join("results.h5")).unwrap();
         let read = |name: &str| results.dataset(name).unwrap().read_raw::<f32>().unwrap();
         let axis = |name: &str| results.attr(name).unwrap().read_scalar::<f64>().unwrap();
-        let (grand, sigma_a, spread) = (read("grand"), read("sigma_a"), read("predicted_spread"));
+        let (grand, sigma_a) = (read("grand"), read("sigma_a"));
         let (rf_start_hz, bin_width_hz) = (axis("rf_start_hz"), axis("bin_width_hz"));
         let j = (0..grand.len()).position(|j| (rf_start_hz + j as f64 * bin_width_hz - axion_hz).abs() < 50.0).expect("the axion's bin is on the grid");
-        let (grand, sigma_a, spread) = (f64::from(grand[j]), f64::from(sigma_a[j]), f64::from(spread[j]));
+        // The predicted spread is stored as runs: the last run starting at or before bin j.
+        let first_bins: Vec<i64> = results.dataset("predicted_spread/first_bin").unwrap().read_raw().unwrap();
+        let run = first_bins.iter().rposition(|&f| f <= j as i64).expect("a run covers bin j");
+        let (grand, sigma_a, spread) = (f64::from(grand[j]), f64::from(sigma_a[j]), f64::from(read("predicted_spread/value")[run]));
         let expected = 0.6286 * 16.0 / (sigma_a * spread);
         let tolerance = 4.0 + 0.03 * expected;
         eprintln!("{window}: grand {grand:.2} at the axion, expected {expected:.2} +- {tolerance:.2}");

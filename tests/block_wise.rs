@@ -96,6 +96,20 @@ fn spectrum_columns(sp: &Spectrum) -> [(&'static str, &[f64]); 6] {
     ]
 }
 
+/// A per-bin dataset of results.h5 as stored, and `predicted_spread` expanded from its runs
+/// (README "Outputs": bins `first_bin[i]` up to the next run's first bin hold `value[i]`).
+fn stored_per_bin(file: &hdf5::File, name: &str) -> Vec<f32> {
+    if name != "predicted_spread" {
+        return file.dataset(name).unwrap().read_raw().unwrap();
+    }
+    let n = file.attr("n_rf_bins").unwrap().read_scalar::<u64>().unwrap() as i64;
+    let first: Vec<i64> = file.dataset("predicted_spread/first_bin").unwrap().read_raw().unwrap();
+    let value: Vec<f32> = file.dataset("predicted_spread/value").unwrap().read_raw().unwrap();
+    assert_eq!(first.len(), value.len(), "one value per run");
+    let ends = first.iter().skip(1).copied().chain([n]);
+    first.iter().zip(ends).zip(&value).flat_map(|((&a, b), &v)| std::iter::repeat_n(v, (b - a) as usize)).collect()
+}
+
 fn bits(v: &[f64]) -> Vec<u64> {
     v.iter().map(|x| x.to_bits()).collect()
 }
@@ -202,9 +216,9 @@ fn results_file_rounds_each_value_once_to_single_precision() {
     assert_eq!((axis("rf_start_hz"), axis("bin_width_hz")), (sp.rf_start_hz, sp.bin_width_hz), "frequency axis");
     assert_eq!(file.attr("n_rf_bins").unwrap().read_scalar::<u64>().unwrap(), sp.grand.len() as u64);
     for (name, exact) in spectrum_columns(sp) {
-        let ds = file.dataset(name).unwrap();
+        let ds = file.dataset(if name == "predicted_spread" { "predicted_spread/value" } else { name }).unwrap();
         assert_eq!(ds.dtype().unwrap().size(), 4, "{name} is stored in single precision");
-        let stored: Vec<f32> = ds.read_raw().unwrap();
+        let stored = stored_per_bin(&file, name);
         assert_eq!(stored.len(), exact.len(), "{name}: bins");
         let mut worst_rel: f64 = 0.0;
         for (j, (&s, &x)) in stored.iter().zip(exact.iter()).enumerate() {
@@ -302,7 +316,7 @@ fn csv_rows(path: &Path) -> Vec<Vec<String>> {
 ///   within 2^-24 of it (IEEE 754 binary32 unit roundoff, as for the other datasets above);
 ///   the mass, |g_agg| and the limits relative to KSVZ and DFSZ derived from it with the
 ///   dataset's attributes equal the in-memory ones to that rounding; no other per-bin limit
-///   dataset (24 bytes a bin in all);
+///   dataset (20 bytes a bin in all);
 /// - limits.csv: every bin's row as formatted from the in-memory limits;
 /// - limit_blocks.csv: per 1 MHz block counted from the first bin's line start (10 000 bins
 ///   of 100 Hz, so blocks cross the 65 536-bin edges), the excluded fraction, the upper
@@ -348,9 +362,11 @@ fn calibrated_block_wise_outputs_equal_the_in_memory_limits() {
             }
         }
     }
-    // The per-bin datasets: six of the reduction and the limit, 4 bytes a bin each.
+    // The per-bin datasets: five of the reduction and the limit, 4 bytes a bin each (the
+    // predicted spread is stored as runs, a few values).
     let per_bin: Vec<String> = file.member_names().unwrap().into_iter().filter(|m| file.dataset(m).is_ok_and(|d| d.size() == n)).collect();
-    assert_eq!(per_bin.len(), 7, "{per_bin:?}");
+    assert_eq!(per_bin.len(), 6, "{per_bin:?}");
+    assert!(file.dataset("predicted_spread/value").unwrap().size() < n / 1000, "the predicted spread is stored as runs");
     assert!(per_bin.iter().all(|m| file.dataset(m).unwrap().dtype().unwrap().size() == 4), "{per_bin:?}");
     let excluded: Vec<f64> = limits.bins.iter().filter(|b| b.excluded).map(|b| b.rel_ksvz).collect();
     let blocked = limits.bins.iter().filter(|b| !b.excluded && b.mass_uev.is_finite()).count();
@@ -425,8 +441,9 @@ fn calibrated_block_wise_outputs_are_bit_identical_across_thread_counts() {
         assert!(std::fs::read(one.join(name)).unwrap() == std::fs::read(two.join(name)).unwrap(), "{name} differs between 1 and 2 threads");
     }
     let (a, b) = (hdf5::File::open(one.join("results.h5")).unwrap(), hdf5::File::open(two.join("results.h5")).unwrap());
-    let datasets = a.member_names().unwrap().into_iter().filter(|m| a.dataset(m).is_ok()).collect::<Vec<_>>();
-    assert!(datasets.len() >= 7 && datasets.iter().any(|d| d == "limit_g_gamma"), "{datasets:?}");
+    let mut datasets = a.member_names().unwrap().into_iter().filter(|m| a.dataset(m).is_ok()).collect::<Vec<_>>();
+    assert!(datasets.len() >= 6 && datasets.iter().any(|d| d == "limit_g_gamma"), "{datasets:?}");
+    datasets.extend(["predicted_spread/first_bin".to_string(), "predicted_spread/value".to_string()]);
     for name in datasets {
         let (x, y): (Vec<f64>, Vec<f64>) = (a.dataset(&name).unwrap().read_raw().unwrap(), b.dataset(&name).unwrap().read_raw().unwrap());
         assert!(bits(&x) == bits(&y), "results.h5 {name} differs between 1 and 2 threads");

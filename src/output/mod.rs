@@ -24,7 +24,7 @@ pub use bins::Bins;
 pub use limit_outputs::LIMITS_CSV_MAX_BINS;
 use limit_outputs::{LIMIT_BLOCKS_CSV, LIMITS_CSV, LimitOutputs};
 pub use plot::Columns;
-pub use results_file::{CHUNK_BINS, ResultBlock, ResultsFile};
+pub use results_file::{CHUNK_BINS, ResultBlock, ResultsFile, SPREAD_GROUP, SpreadRuns};
 pub use stats::{GrandStats, Moments};
 
 /// Candidates listed in `summary.json`: the strongest, by significance (all of them are in
@@ -309,7 +309,7 @@ pub struct ResultsSink {
 impl ResultsSink {
     /// Writes one run of bins (the first one makes the file).
     pub fn write(&mut self, block: ResultBlock) -> hdf5::Result<()> {
-        match &self.file {
+        match &mut self.file {
             Some(file) => file.write(&block),
             None => {
                 self.file = Some(ResultsFile::create(&self.path, &block)?);

@@ -7,29 +7,40 @@
 //! [`CHUNK_BINS`] bins, so a reader of one MHz reads one or two chunks. Single precision
 //! rounds each value by at most 2^-24 of itself (the grand spectrum by < 3e-7 for
 //! |grand| < 5, against a null spread of 1); candidates are found in double precision
-//! before rounding. `predicted_spread` is constant over each filter segment and is stored
-//! deflated (level 1: 10.5 MB -> 56 kB per 2.6 M bins on the wide night); the other datasets
-//! are stored plain (measured with h5py on the 3000-step night: deflate saved 21 % of the
-//! noise-like datasets at 30-45x the write time, and shrank the two sigmas 8-9x at about
-//! 10x the write time, too slow for the one writing thread).
+//! before rounding. The per-bin datasets are stored plain (measured with h5py on the
+//! 3000-step night: deflate saved 21 % of the noise-like datasets at 30-45x the write time,
+//! and shrank the two sigmas 8-9x at about 10x the write time, too slow for the one writing
+//! thread).
+//!
+//! `predicted_spread` is constant over each filter segment (thousands of bins), so it is
+//! stored as runs, not per bin: the group `predicted_spread` holds `first_bin` (i64, the index type of numpy) and
+//! `value` (f32), and bins `first_bin[i]` up to `first_bin[i + 1] - 1` (the last run up to
+//! the grid's end) have `value[i]`. In numpy: `np.repeat(value, np.diff(first_bin,
+//! append=int(n_rf_bins)))`. Stored per bin and deflated, its compression took 4 % of the wide
+//! night's CPU time; as runs it is a few kB.
 //!
 //! With a calibration, one more per-bin dataset, `limit_g_gamma` (the upper limit on
 //! |g_gamma|; NaN where a bin is not excluded), in the same chunks and written with the same
 //! blocks, in single precision: the double-precision value rounded once to nearest (within
 //! 2^-24 of itself, far below the limits' own statistical spread). What follows from it and
 //! the frequency axis is not stored per bin but given by attributes of the dataset, so the
-//! file stays at 24 bytes per bin: `mass_uev_per_hz` (the axion mass of bin j is
+//! file stays at 20 bytes per bin: `mass_uev_per_hz` (the axion mass of bin j is
 //! `mass_uev_per_hz * (rf_start_hz + (j - 1/2) * bin_width_hz)`, the line starting at the
 //! bin's lower edge; h / e, CODATA 2018), `g_agg_per_gev_per_uev` (|g_agg| in GeV^-1 =
 //! `g_agg_per_gev_per_uev * limit_g_gamma * mass_uev`), `g_gamma_ksvz` and `g_gamma_dfsz` (the
 //! limit relative to either model is `limit_g_gamma` divided by it), and `derived`, the same
 //! in words.
+//!
+//! Writing: no fill values (every bin is written) and no chunk cache (the blocks are whole
+//! chunks), so each block goes from its buffer to the file without being copied or zeroed
+//! in the library first.
 
 use super::bins::Bins;
 use crate::limits::BinLimit;
 use crate::physics::constants::{G_GAMMA_DFSZ, G_GAMMA_KSVZ};
 use crate::physics::units::{g_agg_from_g_gamma_per_gev, mass_uev_from_freq_hz};
 use crate::simd::per_bin_loop;
+use hdf5::plist::dataset_create::FillTime;
 use hdf5::types::VarLenUnicode;
 use rayon::prelude::*;
 use std::path::Path;
@@ -38,15 +49,17 @@ use std::str::FromStr;
 /// Bins per chunk of every per-bin dataset (256 kB of f32; 6.6 MHz of 100 Hz bins).
 pub const CHUNK_BINS: usize = 1 << 16;
 
-/// The per-bin datasets: name, units, description, compressed.
-const DATASETS: [(&str, &str, &str, bool); 6] = [
-    ("combined", "reference-axion power", "maximum-likelihood combined excess power", false),
-    ("combined_sigma", "reference-axion power", "standard deviation of combined", false),
-    ("amplitude", "reference-axion power", "filtered amplitude A for a line starting at the bin's lower edge", false),
-    ("sigma_a", "reference-axion power", "standard deviation of the filtered amplitude", false),
-    ("predicted_spread", "1", "predicted null spread of A/sigma_A", true),
-    ("grand", "1", "grand spectrum A / (sigma_A * predicted spread)", false),
+/// The per-bin datasets: name, units, description.
+const DATASETS: [(&str, &str, &str); 5] = [
+    ("combined", "reference-axion power", "maximum-likelihood combined excess power"),
+    ("combined_sigma", "reference-axion power", "standard deviation of combined"),
+    ("amplitude", "reference-axion power", "filtered amplitude A for a line starting at the bin's lower edge"),
+    ("sigma_a", "reference-axion power", "standard deviation of the filtered amplitude"),
+    ("grand", "1", "grand spectrum A / (sigma_A * predicted spread)"),
 ];
+
+/// The group of the predicted spread's runs (see the module documentation).
+pub const SPREAD_GROUP: &str = "predicted_spread";
 
 /// The per-bin limit dataset: name, units, description.
 const LIMIT_DATASET: (&str, &str, &str) = ("limit_g_gamma", "1", "upper limit on |g_gamma| (NaN: not excluded)");
@@ -59,7 +72,9 @@ pub struct ResultBlock {
     origin_hz: f64,
     bin_width_hz: f64,
     /// In the order of [`DATASETS`].
-    columns: [Vec<f32>; 6],
+    columns: [Vec<f32>; 5],
+    /// The predicted spread's runs that start in these bins: (first grid bin, value).
+    spread_runs: Vec<(i64, f32)>,
     /// With a calibration, the limit on |g_gamma| per bin ([`LIMIT_DATASET`]).
     limits: Option<Vec<f32>>,
 }
@@ -67,10 +82,11 @@ pub struct ResultBlock {
 impl ResultBlock {
     /// The bins' values in single precision (the datasets narrowed in parallel).
     pub fn of(b: &Bins<'_>) -> Self {
-        let sources = [b.combined, b.combined_sigma, b.amplitude, b.sigma_a, b.predicted_spread, b.grand];
-        let mut columns: [Vec<f32>; 6] = Default::default();
+        let sources = [b.combined, b.combined_sigma, b.amplitude, b.sigma_a, b.grand];
+        let mut columns: [Vec<f32>; 5] = Default::default();
         columns.par_iter_mut().zip(sources).for_each(|(column, source)| narrow(source, column));
-        Self { first_bin: b.first_bin, grid_bins: b.grid_bins, origin_hz: b.origin_hz, bin_width_hz: b.bin_width_hz, columns, limits: None }
+        let spread_runs = runs_of(b.first_bin, b.predicted_spread);
+        Self { first_bin: b.first_bin, grid_bins: b.grid_bins, origin_hz: b.origin_hz, bin_width_hz: b.bin_width_hz, columns, spread_runs, limits: None }
     }
 
     /// Adds the limits of the same bins (`limits[i]` of bin `first_bin + i`), each rounded
@@ -81,10 +97,47 @@ impl ResultBlock {
     }
 }
 
+/// The runs of equal single-precision values (bit for bit) of `values`, bin `first_bin + i`
+/// holding `values[i]`: each as (its first bin, the value).
+fn runs_of(first_bin: usize, values: &[f64]) -> Vec<(i64, f32)> {
+    let mut runs: Vec<(i64, f32)> = Vec::new();
+    for (i, &v) in values.iter().enumerate() {
+        let v = v as f32;
+        if runs.last().is_none_or(|&(_, last)| last.to_bits() != v.to_bits()) {
+            runs.push(((first_bin + i) as i64, v));
+        }
+    }
+    runs
+}
+
 per_bin_loop! {
     /// Appends `values` to `out`, each rounded to the nearest single-precision value.
     fn narrow(values: &[f64], out: &mut Vec<f32>) {
         out.extend(values.iter().map(|&v| v as f32));
+    }
+}
+
+/// The predicted spread's runs as read back from a results file.
+pub struct SpreadRuns {
+    first_bins: Vec<i64>,
+    values: Vec<f32>,
+}
+
+impl SpreadRuns {
+    /// Reads the group [`SPREAD_GROUP`] of `file`.
+    pub fn read(file: &hdf5::File) -> hdf5::Result<Self> {
+        let g = file.group(SPREAD_GROUP)?;
+        let (first_bins, values) = (g.dataset("first_bin")?.read_raw::<i64>()?, g.dataset("value")?.read_raw::<f32>()?);
+        if first_bins.len() != values.len() || first_bins.first().is_some_and(|&f| f != 0) || !first_bins.is_sorted() {
+            return Err(hdf5::Error::from("group `predicted_spread`: `first_bin` must start at 0 and rise, with one `value` per run"));
+        }
+        Ok(Self { first_bins, values })
+    }
+
+    /// The predicted spread of grid bin `j` (None if there are no runs).
+    pub fn at(&self, j: usize) -> Option<f64> {
+        let run = self.first_bins.partition_point(|&f| f <= j as i64).checked_sub(1)?;
+        Some(f64::from(self.values[run]))
     }
 }
 
@@ -104,6 +157,8 @@ pub struct ResultsFile {
     datasets: Vec<hdf5::Dataset>,
     /// With a calibration, the dataset of [`LIMIT_DATASET`].
     limit_dataset: Option<hdf5::Dataset>,
+    /// The predicted spread's runs so far, written by [`ResultsFile::close`].
+    spread_runs: Vec<(i64, f32)>,
 }
 
 impl ResultsFile {
@@ -113,12 +168,11 @@ impl ResultsFile {
         let file = hdf5::File::create(path)?;
         let n = first.grid_bins;
         let chunk = CHUNK_BINS.min(n.max(1));
+        let per_bin = |name: &str| file.new_dataset::<f32>().chunk(chunk).fill_time(FillTime::Never).chunk_cache(0, 0, 1.0).shape(n).create(name);
         let datasets = DATASETS
             .iter()
-            .map(|&(name, units, description, compressed)| {
-                let builder = file.new_dataset::<f32>().chunk(chunk);
-                let builder = if compressed { builder.deflate(1) } else { builder };
-                let ds = builder.shape(n).create(name)?;
+            .map(|&(name, units, description)| {
+                let ds = per_bin(name)?;
                 describe(&ds, units, description)?;
                 Ok(ds)
             })
@@ -127,7 +181,7 @@ impl ResultsFile {
             None => None,
             Some(_) => {
                 let (name, units, description) = LIMIT_DATASET;
-                let ds = file.new_dataset::<f32>().chunk(chunk).shape(n).create(name)?;
+                let ds = per_bin(name)?;
                 describe(&ds, units, description)?;
                 let number = |name: &str, value: f64| ds.new_attr::<f64>().create(name)?.write_scalar(&value);
                 number("mass_uev_per_hz", mass_uev_from_freq_hz(1.0))?;
@@ -144,15 +198,21 @@ impl ResultsFile {
         file.new_attr::<f64>().create("bin_width_hz")?.write_scalar(&first.bin_width_hz)?;
         file.new_attr::<u64>().create("n_rf_bins")?.write_scalar(&(n as u64))?;
         file.new_attr::<VarLenUnicode>().create("rf_axis")?.write_scalar(&text("bin j has bin-centre RF frequency rf_start_hz + j * bin_width_hz (Hz)"))?;
-        let results = Self { file, datasets, limit_dataset };
+        let mut results = Self { file, datasets, limit_dataset, spread_runs: Vec::new() };
         results.write(first)?;
         Ok(results)
     }
 
-    /// Writes one run of bins.
-    pub fn write(&self, b: &ResultBlock) -> hdf5::Result<()> {
+    /// Writes one run of bins (the runs of bins in grid order).
+    pub fn write(&mut self, b: &ResultBlock) -> hdf5::Result<()> {
         for (ds, column) in self.datasets.iter().zip(&b.columns) {
             ds.write_slice(column.as_slice(), b.first_bin..b.first_bin + column.len())?;
+        }
+        for &(first, value) in &b.spread_runs {
+            // A run open at the previous block's end goes on.
+            if self.spread_runs.last().is_none_or(|&(_, last)| last.to_bits() != value.to_bits()) {
+                self.spread_runs.push((first, value));
+            }
         }
         match (&b.limits, &self.limit_dataset) {
             (None, None) => Ok(()),
@@ -177,8 +237,18 @@ impl ResultsFile {
         self.file.new_attr::<VarLenUnicode>().create(name)?.write_scalar(&text(value))
     }
 
-    /// Closes the file.
+    /// Writes the predicted spread's runs and closes the file.
     pub fn close(self) -> hdf5::Result<()> {
+        let g = self.file.create_group(SPREAD_GROUP)?;
+        let (first_bins, values): (Vec<i64>, Vec<f32>) = self.spread_runs.iter().copied().unzip();
+        Self::described(
+            &g,
+            "first_bin",
+            &first_bins,
+            "1",
+            "first grid bin of each run of equal predicted spread (a run ends where the next begins, the last at n_rf_bins)",
+        )?;
+        Self::described(&g, "value", &values, "1", "predicted null spread of A/sigma_A over each run")?;
         drop(self.datasets);
         drop(self.limit_dataset);
         self.file.close()

@@ -236,10 +236,13 @@ impl ReportData {
         let eta = summary.calibration.as_ref().map(|c| c.eta);
         let implied = match eta {
             Some(eta) => {
-                let (amp, sigma_a, spread) = (dataset("amplitude")?, dataset("sigma_a")?, dataset("predicted_spread")?);
+                let (amp, sigma_a) = (dataset("amplitude")?, dataset("sigma_a")?);
+                let spread =
+                    crate::output::SpreadRuns::read(&file).with_context(|| format!("{}: group `{}`", results.display(), crate::output::SPREAD_GROUP))?;
                 let at = |ds: &hdf5::Dataset, j: usize| read(ds, j..j + 1).map(|v| v[0]);
                 let implied_at = |j: usize| -> anyhow::Result<Option<(f64, f64)>> {
-                    Ok(Some(((at(&amp, j)?.max(0.0) / eta).sqrt(), eta / (at(&sigma_a, j)? * at(&spread, j)?))))
+                    let spread = spread.at(j).with_context(|| format!("{}: group `{}` has no runs", results.display(), crate::output::SPREAD_GROUP))?;
+                    Ok(Some(((at(&amp, j)?.max(0.0) / eta).sqrt(), eta / (at(&sigma_a, j)? * spread))))
                 };
                 summary.candidates.iter().map(|c| implied_at(c.peak_bin)).collect::<anyhow::Result<_>>()?
             }

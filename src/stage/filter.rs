@@ -16,12 +16,13 @@
 //! the minimum-variance one.
 //! The night's own spread is reported beside it but never used.
 
-use super::{BLOCK_BINS, Block, NightInfo, SpectrumStage};
+use super::{BLOCK_BINS, Block, NightInfo, SpectrumStage, finite};
 use crate::config::{BuildContext, Built, StageConfig};
 use crate::dsp::correlate::{CorrelationScratch, Correlator, Planners};
 use crate::dsp::spread::filtered_noise_spread;
 use crate::physics::lineshape::HaloModel;
 use crate::runfile::StepMeta;
+use crate::simd::per_bin_loop;
 use rayon::prelude::*;
 use serde::Deserialize;
 
@@ -159,8 +160,8 @@ impl SpectrumStage for OptimalFilter {
         debug_assert!(sp.first_bin.is_multiple_of(PIECE_BINS) && BLOCK_BINS.is_multiple_of(PIECE_BINS));
         // The bins the block holds: its own and those read past its end.
         let n = sp.combined.len();
-        let weights: Vec<f64> = sp.combined_sigma.iter().map(|s| if s.is_finite() { 1.0 / (s * s) } else { 0.0 }).collect();
-        let data: Vec<f64> = sp.combined.iter().zip(&weights).map(|(r, w)| if *w > 0.0 { r * w } else { 0.0 }).collect();
+        let (mut weights, mut data) = (Vec::with_capacity(n), Vec::with_capacity(n));
+        weigh(&sp.combined, &sp.combined_sigma, &mut weights, &mut data);
         // with_data[j]: bins with data before j. Every L_k is positive (the lineshape's power
         // fraction in a bin), so the denominator is zero exactly when no bin under the kernel
         // holds data; this decides it without the FFT's rounding.
@@ -196,14 +197,14 @@ impl SpectrumStage for OptimalFilter {
                 let (lo, hi) = (a - start, b - start);
                 seg.line.correlate_with(&data[a..reach], &mut num[lo..hi], &mut scratch);
                 seg.line_squared.correlate_with(&weights[a..reach], &mut den[lo..hi], &mut scratch);
-                let outputs = num[lo..hi].iter_mut().zip(&mut den[lo..hi]).zip(&mut spread[lo..hi]).zip(&mut grand[lo..hi]);
-                for (j, (((num, den), spread), grand)) in outputs.enumerate() {
-                    let covered = with_data[(a + j + seg.line.kernel_len()).min(n)] > with_data[a + j];
-                    (*num, *den) = if covered { (*num / *den, den.sqrt().recip()) } else { (f64::NAN, f64::INFINITY) };
-                    *spread = seg.spread;
-                    // The grand spectrum A / (sigma_A * predicted spread).
-                    *grand = *num / (*den * seg.spread);
-                }
+                // The counts of bins with data before each bin and before the kernel's end
+                // (the grid's end where the kernel reaches past it).
+                let ahead_start = (a + seg.line.kernel_len()).min(n);
+                let inside = (n - ahead_start).min(b - a);
+                let (with_data_here, mut with_data_ahead) = (&with_data[a..b], with_data[ahead_start..ahead_start + inside].to_vec());
+                with_data_ahead.resize(b - a, with_data[n]);
+                let outputs = Outputs { num: &mut num[lo..hi], den: &mut den[lo..hi], spread: &mut spread[lo..hi], grand: &mut grand[lo..hi] };
+                finish_outputs(outputs, with_data_here, &with_data_ahead, seg.spread);
                 a = b;
             }
         });
@@ -214,5 +215,41 @@ impl SpectrumStage for OptimalFilter {
         sp.sigma_a = sigma_a;
         sp.predicted_spread = spread;
         Ok(())
+    }
+}
+
+per_bin_loop! {
+    /// The filter's inputs from the combined spectrum: the weight 1 / sigma^2 of each bin (0
+    /// without data) into `weights` and the weighted excess R / sigma^2 (0 without data)
+    /// into `data`, appended.
+    fn weigh(combined: &[f64], combined_sigma: &[f64], weights: &mut Vec<f64>, data: &mut Vec<f64>) {
+        weights.extend(combined_sigma.iter().map(|&s| if finite(s) { 1.0 / (s * s) } else { 0.0 }));
+        data.extend(combined.iter().zip(weights.iter()).map(|(&r, &w)| if w > 0.0 { r * w } else { 0.0 }));
+    }
+}
+
+/// The filter's per-bin outputs over one run of bins with one kernel: on entry `num` and
+/// `den` hold the two correlations.
+struct Outputs<'a> {
+    num: &'a mut [f64],
+    den: &'a mut [f64],
+    spread: &'a mut [f64],
+    grand: &'a mut [f64],
+}
+
+per_bin_loop! {
+    /// Turns the correlations into A (in `num`), sigma_A (in `den`), the predicted spread and
+    /// the grand spectrum A / (sigma_A * predicted spread); A is NaN and sigma_A infinite
+    /// where no bin under the kernel holds data (`with_data_ahead[j]`, the bins with data
+    /// before the kernel's end, equals `with_data_here[j]`, those before bin j).
+    fn finish_outputs<'a>(out: Outputs<'a>, with_data_here: &[u32], with_data_ahead: &[u32], predicted_spread: f64) {
+        let Outputs { num, den, spread, grand } = out;
+        let bins = num.iter_mut().zip(den.iter_mut()).zip(spread.iter_mut()).zip(grand.iter_mut());
+        for ((((num, den), spread), grand), (&here, &ahead)) in bins.zip(with_data_here.iter().zip(with_data_ahead)) {
+            let covered = ahead > here;
+            (*num, *den) = if covered { (*num / *den, den.sqrt().recip()) } else { (f64::NAN, f64::INFINITY) };
+            *spread = predicted_spread;
+            *grand = *num / (*den * predicted_spread);
+        }
     }
 }
