@@ -188,13 +188,19 @@ impl Injection {
     }
 }
 
-/// Reduces the given run files with a plan. `progress` is called with (steps done, total).
-pub fn reduce(plan: &Plan, paths: &[PathBuf], progress: &dyn Fn(usize, usize)) -> Result<Reduction, ReduceError> {
+/// Reduces the given run files with a plan. `progress` is called with (steps done, total),
+/// from a thread of the pool.
+pub fn reduce(plan: &Plan, paths: &[PathBuf], progress: &(dyn Fn(usize, usize) + Sync)) -> Result<Reduction, ReduceError> {
     reduce_injected(plan, paths, None, progress)
 }
 
 /// As [`reduce`], with synthetic axions added to the raw spectra first (for calibration).
-pub fn reduce_injected(plan: &Plan, paths: &[PathBuf], injection: Option<&Injection>, progress: &dyn Fn(usize, usize)) -> Result<Reduction, ReduceError> {
+pub fn reduce_injected(
+    plan: &Plan,
+    paths: &[PathBuf],
+    injection: Option<&Injection>,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<Reduction, ReduceError> {
     let mut buffers: [Vec<Step>; 2] = Default::default();
     let Prepared { readers, night, step_stages, mut combiner, spectrum_stages, total } = prepare(plan, paths, injection, &mut buffers)?;
     let mut cuts = Vec::new();
@@ -397,7 +403,7 @@ fn stream_chunks<J: Send>(
     buffers: &mut [Vec<Step>; 2],
     mut process: impl FnMut(&mut [Step], &Fresh<'_>) -> Vec<bool> + Send,
     mut absorb: impl FnMut(&[&Step], usize) -> Result<Vec<J>, ReduceError> + Send,
-    mut done: impl FnMut(usize),
+    mut done: impl FnMut(usize) + Send,
     write: Option<Writer<'_, J>>,
 ) -> Result<(), ReduceError> {
     let chunk_steps = STEPS_PER_THREAD * rayon::current_num_threads();
@@ -428,7 +434,11 @@ fn stream_chunks<J: Send>(
             job_queue.iter().try_for_each(&mut write_one)
         });
         // Moves `jobs` in, so the queue closes when the computation ends.
-        let computed = (move || -> Result<(), ReduceError> {
+        // On a worker of the pool: each chunk's join then hands one half to the other worker
+        // directly, where from outside the pool every join would put the calling thread to
+        // sleep and wake it again (2.5x the context switches and 10-20 % more CPU time on the
+        // wide night).
+        let computed = rayon::scope(move |_| -> Result<(), ReduceError> {
             let [even, odd] = buffers;
             // The previous chunk: its first global index, number of steps and which were kept.
             let mut previous_chunk: Option<(usize, usize, Vec<bool>)> = None;
@@ -454,7 +464,7 @@ fn stream_chunks<J: Send>(
             let last = if current_is_odd { &*even } else { &*odd };
             send(absorb_kept(last, previous_chunk.as_ref(), &mut absorb)?);
             Ok(())
-        })();
+        });
         let written = reading.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic));
         computed?;
         written.map_err(|e| ReduceError::Night(format!("writing the outputs: {e}")))

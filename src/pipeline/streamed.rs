@@ -23,7 +23,7 @@ use std::path::PathBuf;
 pub fn reduce_streamed<J: Send>(
     plan: &Plan,
     paths: &[PathBuf],
-    progress: &dyn Fn(usize, usize),
+    progress: &(dyn Fn(usize, usize) + Sync),
     finished: &mut (dyn FnMut(&Block) -> Result<Option<J>, String> + Send),
     write: Writer<'_, J>,
 ) -> Result<Reduction, ReduceError> {
@@ -42,7 +42,7 @@ pub type ProfiledBlockDone<'a, J> = dyn FnMut(&Block, Option<TopSamples>) -> Res
 pub fn reduce_streamed_profiled<J: Send>(
     plan: &Plan,
     paths: &[PathBuf],
-    progress: &dyn Fn(usize, usize),
+    progress: &(dyn Fn(usize, usize) + Sync),
     finished: &mut ProfiledBlockDone<'_, J>,
     write: Writer<'_, J>,
 ) -> Result<Reduction, ReduceError> {
@@ -52,7 +52,7 @@ pub fn reduce_streamed_profiled<J: Send>(
 fn reduce_blocks<J: Send>(
     plan: &Plan,
     paths: &[PathBuf],
-    progress: &dyn Fn(usize, usize),
+    progress: &(dyn Fn(usize, usize) + Sync),
     with_profile: bool,
     finished: &mut ProfiledBlockDone<'_, J>,
     write: Writer<'_, J>,

@@ -141,7 +141,7 @@ pub fn add_night(
     state: &mut State,
     plan: &Plan,
     paths: &[PathBuf],
-    progress: &dyn Fn(usize, usize),
+    progress: &(dyn Fn(usize, usize) + Sync),
     out: &mut dyn FnMut(&Block) -> Result<(), String>,
 ) -> Result<Update, StateError> {
     check_config(state, plan)?;
