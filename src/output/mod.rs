@@ -67,16 +67,20 @@ impl Provenance {
 /// the hasher reads the page cache itself, where reading into a buffer would copy every byte
 /// once more (a third of the copying of a wide night's reduction, which reads its input
 /// twice besides), and only the piece being hashed need be resident, whatever the file's
-/// size. An empty file is hashed without a map (a map of length zero is refused).
+/// size. An empty file is hashed without a map (a map of length zero is refused), and a file
+/// that cannot be mapped (some network or special file systems) through buffered reads.
 fn sha256_of_file(path: &Path) -> std::io::Result<Vec<u8>> {
-    let file = std::fs::File::open(path)?;
+    let mut file = std::fs::File::open(path)?;
     let mut hasher = Sha256::new();
     if file.metadata()?.len() > 0 {
         // SAFETY: the map is read only and lives while it is read. A run file rewritten by
         // another process meanwhile gives a hash of neither version, as buffered reads would;
         // one truncated meanwhile ends the process (SIGBUS) before any output is renamed
         // into place.
-        let map = unsafe { memmap2::Mmap::map(&file)? };
+        let Ok(map) = (unsafe { memmap2::Mmap::map(&file) }) else {
+            std::io::copy(&mut std::io::BufReader::with_capacity(1 << 20, &mut file), &mut hasher)?;
+            return Ok(hasher.finalize().to_vec());
+        };
         #[cfg(unix)]
         let _ = map.advise(memmap2::Advice::Sequential);
         for (i, piece) in map.chunks(HASHED_PIECE_BYTES).enumerate() {
