@@ -703,3 +703,50 @@ fn a_second_update_of_a_locked_state_is_refused() {
     assert!(done.status.success(), "{}", String::from_utf8_lossy(&done.stderr));
     assert_eq!(State::load(&state_dir).unwrap().unwrap().nights.len(), 1);
 }
+
+/// A run file added again through `reduce --state` (the night streamed into the state while
+/// its files are hashed beside it) is refused before anything of it reaches the state: exit 2,
+/// the message names the file and the night that holds it, and the state folder is unchanged
+/// file for file.
+#[test]
+fn a_file_streamed_in_again_is_refused_and_changes_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let n = night(92, 5.2e9, dir.path(), false);
+    let state_dir = dir.path().join("state");
+    let config = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    let update = || {
+        Command::new(env!("CARGO_BIN_EXE_axsift"))
+            .args(["-q", "reduce", "--config", config, "--state"])
+            .arg(&state_dir)
+            .arg("--out")
+            .arg(dir.path().join("out"))
+            .arg(&n)
+            .env("HDF5_USE_FILE_LOCKING", "FALSE")
+            .output()
+            .unwrap()
+    };
+    let first = update();
+    assert!(first.status.success(), "{}", String::from_utf8_lossy(&first.stderr));
+    let snapshot = |root: &Path| -> Vec<(PathBuf, Vec<u8>)> {
+        let mut files = Vec::new();
+        let mut pending = vec![root.to_path_buf()];
+        while let Some(d) = pending.pop() {
+            for entry in std::fs::read_dir(&d).unwrap() {
+                let path = entry.unwrap().path();
+                if path.is_dir() {
+                    pending.push(path);
+                } else {
+                    files.push((path.clone(), std::fs::read(&path).unwrap()));
+                }
+            }
+        }
+        files.sort();
+        files
+    };
+    let before = snapshot(&state_dir);
+    let again = update();
+    let err = String::from_utf8_lossy(&again.stderr);
+    assert_eq!(again.status.code(), Some(2), "{err}");
+    assert!(err.contains("already in the state") && err.contains("night-92.h5") && err.contains("night 0"), "{err}");
+    assert!(snapshot(&state_dir) == before, "the refused update changed the state folder");
+}

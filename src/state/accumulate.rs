@@ -145,9 +145,36 @@ pub fn add_night(
     out: &mut dyn FnMut(&Block) -> Result<(), String>,
 ) -> Result<Update, StateError> {
     check_config(state, plan)?;
-    let inputs = hash_inputs(plan, paths)?;
-    check_new(state, &inputs)?;
     let front = up_to_combine(plan)?;
+    // The run files are hashed beside the streaming (the hash reads them once more), and
+    // checked against the state's files before the first block is merged into its sums.
+    std::thread::scope(|scope| {
+        let hashing = scope.spawn(|| hash_inputs(plan, paths));
+        stream_night(state, plan, &front, paths, hashing, progress, out)
+    })
+}
+
+/// The body of [`add_night`], with the run files' hashes coming from `hashing`.
+fn stream_night(
+    state: &mut State,
+    plan: &Plan,
+    front: &Plan,
+    paths: &[PathBuf],
+    hashing: std::thread::ScopedJoinHandle<'_, Result<Vec<(String, String)>, StateError>>,
+    progress: &(dyn Fn(usize, usize) + Sync),
+    out: &mut dyn FnMut(&Block) -> Result<(), String>,
+) -> Result<Update, StateError> {
+    let mut hashing = Some(hashing);
+    let mut inputs: Option<Vec<(String, String)>> = None;
+    // Waits for the hashes (once) and refuses files the state holds already.
+    let mut hashed = |state: &State, inputs: &mut Option<Vec<(String, String)>>| -> Result<(), StateError> {
+        if let Some(handle) = hashing.take() {
+            let hashes = handle.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic))?;
+            check_new(state, &hashes)?;
+            *inputs = Some(hashes);
+        }
+        Ok(())
+    };
     let started = std::time::Instant::now();
     let (readers, info) = crate::pipeline::open_night(paths).map_err(|e| refused(e.to_string()))?;
     let n_steps: Vec<usize> = readers.iter().map(|r| r.steps().len()).collect();
@@ -160,14 +187,16 @@ pub fn add_night(
     // A failure of the merge (reading or writing the state's blocks), with its file.
     let mut failed: Option<StateError> = None;
     let reduced = crate::pipeline::reduce_streamed_profiled(
-        &front,
+        front,
         paths,
         progress,
         &mut |block, top| {
             Ok(Some((block.first_bin, block.combined[..block.len].to_vec(), block.combined_sigma[..block.len].to_vec(), block.coverage.clone(), top)))
         },
         &mut |(first, combined, sigma, coverage, top)| {
-            let merged = merger.add(state, first, &combined, &sigma, &coverage).and_then(|()| spill.push(first / BLOCK_BINS, top.as_ref()));
+            let merged = hashed(state, &mut inputs)
+                .and_then(|()| merger.add(state, first, &combined, &sigma, &coverage))
+                .and_then(|()| spill.push(first / BLOCK_BINS, top.as_ref()));
             merged.map_err(|e| {
                 let message = e.to_string();
                 failed = Some(e);
@@ -179,6 +208,8 @@ pub fn add_night(
         (Err(_), Some(e)) => return Err(e),
         (reduced, _) => reduced.map_err(|e| refused(e.to_string()))?,
     };
+    hashed(state, &mut inputs)?;
+    let inputs = inputs.expect("the hashes were taken");
     let coverage = merger.finish(state)?;
     tracing::debug!("night streamed into the state's sums in {:.2} s", started.elapsed().as_secs_f64());
     let in_line = night_red.if_scan.in_line();
