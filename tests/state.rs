@@ -675,23 +675,26 @@ fn a_night_streamed_into_a_staged_state_equals_the_night_reduced_whole() {
 /// Two updates of one state folder cannot interleave: while one holds the folder's update
 /// lock, `reduce --state` is refused (exit status 2, naming the lock file) and changes
 /// nothing; once the lock is released the same update goes through.
+/// `axsift reduce --state STATE --out OUT NIGHT` with the default pipeline.
+fn reduce_into_state(state_dir: &Path, out: &Path, night: &Path) -> std::process::Output {
+    let config = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
+    Command::new(env!("CARGO_BIN_EXE_axsift"))
+        .args(["-q", "reduce", "--config", config, "--state"])
+        .arg(state_dir)
+        .arg("--out")
+        .arg(out)
+        .arg(night)
+        .env("HDF5_USE_FILE_LOCKING", "FALSE")
+        .output()
+        .unwrap()
+}
+
 #[test]
 fn a_second_update_of_a_locked_state_is_refused() {
     let dir = tempfile::tempdir().unwrap();
     let n = night(91, 5.2e9, dir.path(), false);
     let state_dir = dir.path().join("state");
-    let config = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
-    let update = || {
-        Command::new(env!("CARGO_BIN_EXE_axsift"))
-            .args(["-q", "reduce", "--config", config, "--state"])
-            .arg(&state_dir)
-            .arg("--out")
-            .arg(dir.path().join("out"))
-            .arg(&n)
-            .env("HDF5_USE_FILE_LOCKING", "FALSE")
-            .output()
-            .unwrap()
-    };
+    let update = || reduce_into_state(&state_dir, &dir.path().join("out"), &n);
     let held = State::lock_folder(&state_dir).unwrap();
     let refused = update();
     let err = String::from_utf8_lossy(&refused.stderr);
@@ -713,18 +716,7 @@ fn a_file_streamed_in_again_is_refused_and_changes_nothing() {
     let dir = tempfile::tempdir().unwrap();
     let n = night(92, 5.2e9, dir.path(), false);
     let state_dir = dir.path().join("state");
-    let config = concat!(env!("CARGO_MANIFEST_DIR"), "/pipeline.toml");
-    let update = || {
-        Command::new(env!("CARGO_BIN_EXE_axsift"))
-            .args(["-q", "reduce", "--config", config, "--state"])
-            .arg(&state_dir)
-            .arg("--out")
-            .arg(dir.path().join("out"))
-            .arg(&n)
-            .env("HDF5_USE_FILE_LOCKING", "FALSE")
-            .output()
-            .unwrap()
-    };
+    let update = || reduce_into_state(&state_dir, &dir.path().join("out"), &n);
     let first = update();
     assert!(first.status.success(), "{}", String::from_utf8_lossy(&first.stderr));
     let snapshot = |root: &Path| -> Vec<(PathBuf, Vec<u8>)> {
