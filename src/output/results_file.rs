@@ -100,14 +100,19 @@ impl ResultBlock {
 /// The runs of equal single-precision values (bit for bit) of `values`, bin `first_bin + i`
 /// holding `values[i]`: each as (its first bin, the value).
 fn runs_of(first_bin: usize, values: &[f64]) -> Vec<(i64, f32)> {
-    let mut runs: Vec<(i64, f32)> = Vec::new();
+    let mut runs = Vec::new();
     for (i, &v) in values.iter().enumerate() {
-        let v = v as f32;
-        if runs.last().is_none_or(|&(_, last)| last.to_bits() != v.to_bits()) {
-            runs.push(((first_bin + i) as i64, v));
-        }
+        extend_runs(&mut runs, (first_bin + i) as i64, v as f32);
     }
     runs
+}
+
+/// Adds bin `bin` holding `value` to the runs of the bins before it: a new run unless the
+/// last one holds the same value, bit for bit.
+fn extend_runs(runs: &mut Vec<(i64, f32)>, bin: i64, value: f32) {
+    if runs.last().is_none_or(|&(_, last)| last.to_bits() != value.to_bits()) {
+        runs.push((bin, value));
+    }
 }
 
 per_bin_loop! {
@@ -210,9 +215,7 @@ impl ResultsFile {
         }
         for &(first, value) in &b.spread_runs {
             // A run open at the previous block's end goes on.
-            if self.spread_runs.last().is_none_or(|&(_, last)| last.to_bits() != value.to_bits()) {
-                self.spread_runs.push((first, value));
-            }
+            extend_runs(&mut self.spread_runs, first, value);
         }
         match (&b.limits, &self.limit_dataset) {
             (None, None) => Ok(()),

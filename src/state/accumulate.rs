@@ -167,11 +167,11 @@ fn stream_night(
     let mut hashing = Some(hashing);
     let mut inputs: Option<Vec<(String, String)>> = None;
     // Waits for the hashes (once) and refuses files the state holds already.
-    let mut hashed = |state: &State, inputs: &mut Option<Vec<(String, String)>>| -> Result<(), StateError> {
+    let mut hashed = |state: &State| -> Result<(), StateError> {
         if let Some(handle) = hashing.take() {
             let hashes = handle.join().unwrap_or_else(|panic| std::panic::resume_unwind(panic))?;
             check_new(state, &hashes)?;
-            *inputs = Some(hashes);
+            inputs = Some(hashes);
         }
         Ok(())
     };
@@ -194,9 +194,8 @@ fn stream_night(
             Ok(Some((block.first_bin, block.combined[..block.len].to_vec(), block.combined_sigma[..block.len].to_vec(), block.coverage.clone(), top)))
         },
         &mut |(first, combined, sigma, coverage, top)| {
-            let merged = hashed(state, &mut inputs)
-                .and_then(|()| merger.add(state, first, &combined, &sigma, &coverage))
-                .and_then(|()| spill.push(first / BLOCK_BINS, top.as_ref()));
+            let merged =
+                hashed(state).and_then(|()| merger.add(state, first, &combined, &sigma, &coverage)).and_then(|()| spill.push(first / BLOCK_BINS, top.as_ref()));
             merged.map_err(|e| {
                 let message = e.to_string();
                 failed = Some(e);
@@ -208,7 +207,7 @@ fn stream_night(
         (Err(_), Some(e)) => return Err(e),
         (reduced, _) => reduced.map_err(|e| refused(e.to_string()))?,
     };
-    hashed(state, &mut inputs)?;
+    hashed(state)?;
     let inputs = inputs.expect("the hashes were taken");
     let coverage = merger.finish(state)?;
     tracing::debug!("night streamed into the state's sums in {:.2} s", started.elapsed().as_secs_f64());
