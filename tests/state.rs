@@ -169,6 +169,7 @@ fn a_killed_update_leaves_a_usable_state() {
         let _ = child.wait();
         let after = State::load(&state_dir).unwrap().expect("a state survives");
         assert!(after.nights.len() == 1 || after.nights.len() == 2);
+        let committed_before_the_kill = after.nights.len() == 2;
         // Every candidate block it names is there and reads.
         assert_eq!(after.candidates.all().unwrap().len(), after.candidates.len(), "kill after {delay_ms} ms");
         if after.nights.len() == 1 {
@@ -179,10 +180,36 @@ fn a_killed_update_leaves_a_usable_state() {
         assert_eq!(bits(&whole(&done).weighted_sum), bits(&whole(&expected).weighted_sum), "kill after {delay_ms} ms");
         assert!(!expected.candidates.is_empty());
         assert_eq!(done.candidates, expected.candidates);
-        // What the killed run left behind is gone once an update has committed.
-        assert_eq!(files_in(&state_dir.join("blocks")), named_blocks(&done), "kill after {delay_ms} ms");
-        assert_eq!(files_in(&state_dir.join("candidates")), named_candidate_blocks(&done), "kill after {delay_ms} ms");
+        if committed_before_the_kill {
+            // Killed between its commit and its clean-up: every file the index names is there,
+            // and the others are earlier generations of named blocks, which the next update
+            // removes.
+            assert_superseded_at_most(&files_in(&state_dir.join("blocks")), &named_blocks(&done), delay_ms);
+            assert_superseded_at_most(&files_in(&state_dir.join("candidates")), &named_candidate_blocks(&done), delay_ms);
+        } else {
+            // What the killed run left behind is gone once an update has committed.
+            assert_eq!(files_in(&state_dir.join("blocks")), named_blocks(&done), "kill after {delay_ms} ms");
+            assert_eq!(files_in(&state_dir.join("candidates")), named_candidate_blocks(&done), "kill after {delay_ms} ms");
+        }
         assert_eq!(files_in(&state_dir.join("nights")), vec!["night-0.h5".to_string(), "night-1.h5".to_string()]);
+    }
+}
+
+/// `present` holds every name of `named`, and each other name is an earlier generation of a
+/// named one (`<kind><index>-g<generation>.<ext>`, the same kind, index and extension).
+fn assert_superseded_at_most(present: &[String], named: &[String], delay_ms: u64) {
+    let parts = |name: &str| -> Option<(String, u64, String)> {
+        let (stem, ext) = name.rsplit_once('.')?;
+        let (block, generation) = stem.rsplit_once("-g")?;
+        Some((block.to_string(), generation.parse().ok()?, ext.to_string()))
+    };
+    for name in named {
+        assert!(present.contains(name), "kill after {delay_ms} ms: {name} is named but missing");
+    }
+    for name in present.iter().filter(|p| !named.contains(p)) {
+        let newer =
+            parts(name).is_some_and(|(block, generation, ext)| named.iter().filter_map(|n| parts(n)).any(|(b, g, e)| b == block && e == ext && g > generation));
+        assert!(newer, "kill after {delay_ms} ms: {name} is neither named nor an earlier generation of a named file");
     }
 }
 
